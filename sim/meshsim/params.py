@@ -1,0 +1,197 @@
+"""The simulator's physical parameters, read from the ``simulator`` section and converted to SI.
+
+Every key names its unit. Missing keys take the documented defaults below, which describe our
+own demo chip: a silicon photonic lattice whose tunable couplers are parallel-plate actuators
+(a dielectric-coated electrode under a moving plate) and whose phase shifters are comb drives
+that move a dielectric beam toward the waveguide. See docs/simulator.md.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass, fields
+from typing import Any
+
+
+class ParamsError(ValueError):
+    """A simulator section with an unknown key or an unusable value."""
+
+
+@dataclass(frozen=True)
+class CouplerDevice:
+    """A tunable coupler on a parallel-plate electrostatic actuator."""
+
+    spring_n_per_m: float = 27.7
+    air_gap_m: float = 3.0e-6
+    dielectric_m: float = 100e-9
+    dielectric_eps_r: float = 7.5
+    area_m2: float = 1.0e-8
+    resonance_hz: float = 500e3
+    quality_factor: float = 50.0
+    optical_gap_rest_m: float = 700e-9
+    coupling_length_m: float = 20e-6
+    coupling_ref_per_m: float = math.pi / 2 / 20e-6
+    coupling_ref_gap_m: float = 330e-9
+    coupling_decay_m: float = 113e-9
+    loss_db: float = 0.15
+    charging_fraction: float = 0.02
+    charging_time_s: float = 300.0
+    stiction_probability: float = 0.3
+
+
+@dataclass(frozen=True)
+class PhaseDevice:
+    """A phase shifter: a comb drive moving a dielectric beam toward the waveguide."""
+
+    fingers: float = 100.0
+    thickness_m: float = 10e-6
+    finger_gap_m: float = 2e-6
+    spring_n_per_m: float = 7.0
+    resonance_hz: float = 500e3
+    quality_factor: float = 200.0
+    lateral_snap_volts: float = 55.0
+    optical_gap_rest_m: float = 1.3e-6
+    index_shift_contact: float = 0.031
+    index_decay_m: float = 250e-9
+    length_m: float = 200e-6
+    loss_db: float = 0.2
+    charging_fraction: float = 0.005
+    charging_time_s: float = 600.0
+    stiction_probability: float = 0.3
+
+
+@dataclass(frozen=True)
+class Spread:
+    """Relative standard deviations of fabrication spread, drawn once per actuator (seeded)."""
+
+    spring_rel: float = 0.03
+    gap_rel: float = 0.02
+    optical_gap_rel: float = 0.01
+
+
+@dataclass(frozen=True)
+class Detectors:
+    quantum_efficiency: float = 0.72
+    dark_current_a: float = 5e-9
+    temperature_k: float = 300.0
+    adc_full_scale_volts: float = 2.5
+
+
+@dataclass(frozen=True)
+class Laser:
+    wavelength_m: float = 1550e-9
+    power_w: float = 1e-3
+    input_modes: tuple[int, ...] = (0,)
+
+
+@dataclass(frozen=True)
+class BoardFirmware:
+    model: str = "MW-HVD64-SIM"
+    firmware: tuple[int, int, int] = (1, 0, 0)
+    watchdog_ramp_volts_per_s: float = 20.0
+    sense_noise_volts: float = 0.002
+
+
+@dataclass(frozen=True)
+class LatticeSpec:
+    modes: int
+    columns: tuple[tuple[tuple[str, int], ...], ...]
+    taps: tuple[tuple[str, int, int], ...]
+    tap_fraction: float = 0.01
+    transition_loss_db: float = 0.05
+
+
+@dataclass(frozen=True)
+class SimParams:
+    seed: int
+    coupler: CouplerDevice
+    phase: PhaseDevice
+    spread: Spread
+    detectors: Detectors
+    laser: Laser
+    board: BoardFirmware
+    lattice: LatticeSpec | None
+
+
+# key in YAML -> (field name, factor to SI)
+_UNIT_SUFFIXES = {
+    "_per_um": 1e6,
+    "_um": 1e-6,
+    "_nm": 1e-9,
+    "_um2": 1e-12,
+    "_khz": 1e3,
+    "_mw": 1e-3,
+    "_na": 1e-9,
+    "_mv": 1e-3,
+}
+
+
+def _section(cls: type[Any], raw: Any, where: str) -> Any:
+    """Build ``cls`` from a YAML mapping whose keys carry units (``air_gap_um`` -> ``air_gap_m``)."""
+    if raw is None:
+        return cls()
+    if not isinstance(raw, dict):
+        raise ParamsError(f"simulator.{where}: expected a mapping")
+    names = {f.name for f in fields(cls)}
+    values: dict[str, Any] = {}
+    for key, value in raw.items():
+        name, factor = key, 1.0
+        for suffix, f in _UNIT_SUFFIXES.items():
+            if key.endswith(suffix):
+                stem = key[: -len(suffix)]
+                si = {
+                    "_um": "_m",
+                    "_nm": "_m",
+                    "_um2": "_m2",
+                    "_khz": "_hz",
+                    "_mw": "_w",
+                    "_na": "_a",
+                    "_per_um": "_per_m",
+                    "_mv": "_volts",
+                }[suffix]
+                name, factor = stem + si, f
+                break
+        if name not in names:
+            raise ParamsError(f"simulator.{where}: unknown key '{key}'")
+        if isinstance(value, list):
+            values[name] = tuple(value)
+        elif isinstance(value, bool) or not isinstance(value, int | float | str):
+            raise ParamsError(f"simulator.{where}.{key}: expected a number")
+        else:
+            values[name] = value * factor if isinstance(value, int | float) else value
+    return cls(**values)
+
+
+def _lattice(raw: Any) -> LatticeSpec | None:
+    if raw is None:
+        return None
+    try:
+        columns = tuple(tuple((str(g), int(m)) for g, m in col.items()) for col in raw["columns"])
+        taps = tuple((str(mid), int(pos[0]), int(pos[1])) for mid, pos in raw["taps"].items())
+        return LatticeSpec(
+            modes=int(raw["modes"]),
+            columns=columns,
+            taps=taps,
+            tap_fraction=float(raw.get("tap_fraction", 0.01)),
+            transition_loss_db=float(raw.get("transition_loss_db", 0.05)),
+        )
+    except (KeyError, TypeError, ValueError, AttributeError) as exc:
+        raise ParamsError(f"simulator.lattice: expected modes, columns and taps ({exc!r})") from None
+
+
+def parse_params(raw: dict[str, Any], seed: int | None = None) -> SimParams:
+    """The simulator section as :class:`SimParams`; ``seed`` overrides the section's seed."""
+    known = {"seed", "coupler", "phase", "spread", "detectors", "laser", "board", "lattice"}
+    for key in raw:
+        if key not in known:
+            raise ParamsError(f"simulator: unknown key '{key}' (known: {', '.join(sorted(known))})")
+    return SimParams(
+        seed=int(seed if seed is not None else raw.get("seed", 0)),
+        coupler=_section(CouplerDevice, raw.get("coupler"), "coupler"),
+        phase=_section(PhaseDevice, raw.get("phase"), "phase"),
+        spread=_section(Spread, raw.get("spread"), "spread"),
+        detectors=_section(Detectors, raw.get("detectors"), "detectors"),
+        laser=_section(Laser, raw.get("laser"), "laser"),
+        board=_section(BoardFirmware, raw.get("board"), "board"),
+        lattice=_lattice(raw.get("lattice")),
+    )

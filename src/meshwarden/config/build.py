@@ -1,0 +1,228 @@
+"""Turn the plain values of a configuration file into typed objects, section by section.
+
+Cross-references (boards named by channels, gate members, duplicate wiring) are checked
+afterwards by :mod:`meshwarden.config.checks`, once every section has been read.
+"""
+
+from __future__ import annotations
+
+from pathlib import Path
+from typing import Any
+
+from meshwarden.config import fields as f
+from meshwarden.config.model import (
+    ACTUATOR_KINDS,
+    WATCHDOG_ACTIONS,
+    ActuatorConfig,
+    BoardConfig,
+    ChipConfig,
+    ClientKey,
+    Config,
+    GateConfig,
+    JournalConfig,
+    MonitorConfig,
+    RackConfig,
+    SafetyConfig,
+    ServiceConfig,
+    WatchdogConfig,
+)
+from meshwarden.config.source import PathKey
+from meshwarden.units import AMPS_PER_WATT, HERTZ, OHMS, SECONDS, VOLTS
+
+TOP_KEYS = ("rack", "chip", "calibration", "safety", "service", "journal", "simulator")
+BOARD_KEYS = (
+    "id",
+    "url",
+    "driver",
+    "address",
+    "outputs",
+    "monitor_inputs",
+    "dac_bits",
+    "full_scale_volts",
+    "adc_bits",
+    "monitor_gains_ohms",
+    "watchdog",
+    "timeout_s",
+    "retries",
+)
+ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
+ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
+MONITOR_KEYS = ("id", "input", "responsivity_a_per_w", "transimpedance_ohms")
+MONITOR_DEFAULT_KEYS = ("responsivity_a_per_w", "transimpedance_ohms")
+
+VOLTS_FIELD = f.quantity(VOLTS)
+SECONDS_FIELD = f.quantity(SECONDS)
+OHMS_FIELD = f.quantity(OHMS)
+
+
+def _gains(value: Any) -> tuple[float, ...]:
+    if not isinstance(value, list) or not value:
+        raise ValueError("expected a non-empty list of transimpedance gains")
+    return tuple(OHMS_FIELD(v) for v in value)
+
+
+def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
+    s = f.Section(p, raw, path, BOARD_KEYS, what="board")
+    w = s.sub("watchdog", ("timeout_s", "action"))
+    defaults = BoardConfig(id="", url="")
+    board: dict[str, Any] = dict(
+        id=s.get("id", f.identifier),
+        url=s.get("url", f.url_in(p.directory((*path, "url")))),
+        driver=s.get("driver", f.identifier, defaults.driver),
+        address=s.get("address", f.integer(1, 254), defaults.address),
+        outputs=s.get("outputs", f.integer(1, 1024), defaults.outputs),
+        monitor_inputs=s.get("monitor_inputs", f.integer(0, 1024), defaults.monitor_inputs),
+        dac_bits=s.get("dac_bits", f.integer(8, 24), defaults.dac_bits),
+        full_scale_volts=s.get("full_scale_volts", f.quantity(VOLTS, maximum=1000.0), defaults.full_scale_volts),
+        adc_bits=s.get("adc_bits", f.integer(8, 24), defaults.adc_bits),
+        monitor_gains_ohms=s.get("monitor_gains_ohms", _gains, defaults.monitor_gains_ohms),
+        watchdog=WatchdogConfig(
+            timeout_s=w.get("timeout_s", f.quantity(SECONDS, maximum=3600.0), defaults.watchdog.timeout_s),
+            action=w.get("action", f.choice(*WATCHDOG_ACTIONS), defaults.watchdog.action),  # type: ignore[arg-type]
+        ),
+        timeout_s=s.get("timeout_s", f.quantity(SECONDS, maximum=60.0), defaults.timeout_s),
+        retries=s.get("retries", f.integer(0, 10), defaults.retries),
+    )
+    if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
+        return None
+    return BoardConfig(**board)
+
+
+def _defaults(s: f.Section, key: str, groups: tuple[str, ...], converters: dict[str, Any]) -> dict[str, dict[str, Any]]:
+    """Per-group default values (e.g. per actuator kind), converted once so a bad one is reported once."""
+    top = s.sub(key, groups)
+    out: dict[str, dict[str, Any]] = {}
+    for group in groups:
+        g = top.sub(group, converters)
+        out[group] = {k: g.get(k, conv) for k, conv in converters.items() if k in g.value}
+    return out
+
+
+def _actuators(s: f.Section, calibration_dir: Path | None) -> list[ActuatorConfig]:
+    converters = {
+        "limit_volts": VOLTS_FIELD,
+        "pull_in_volts": VOLTS_FIELD,
+        "step_limit_volts": VOLTS_FIELD,
+        "dwell_s": f.quantity(SECONDS, positive=False, maximum=60.0),
+    }
+    defaults = _defaults(s, "actuator_defaults", ACTUATOR_KINDS, converters)
+    out = []
+    for path, raw in s.items("actuators"):
+        a = f.Section(s.problems, raw, path, ACTUATOR_KEYS, what="actuator")
+        kind = a.get("kind", f.choice(*ACTUATOR_KINDS))
+        group = defaults.get(kind, {}) if kind is not f.BAD else {}
+        values: dict[str, Any] = dict(
+            id=a.get("id", f.identifier),
+            kind=kind,
+            output=a.get("output", f.terminal),
+        )
+        for key, conv in converters.items():
+            values[key] = a.get(key, conv, group.get(key, f.MISSING)) if kind is not f.BAD or key in a.value else f.BAD
+        if "calibration" in a.value:
+            values["calibration"] = a.get("calibration", f.path_in(s.problems.directory((*path, "calibration"))))
+        elif calibration_dir is not None and values["id"] is not f.BAD:
+            values["calibration"] = calibration_dir / f"{values['id']}.yaml"
+        else:
+            if calibration_dir is None and a.ok:
+                s.problems.add(path, "no calibration file: set calibration.directory or this actuator's calibration")
+            values["calibration"] = f.BAD
+        if a.ok and all(v is not f.BAD for v in values.values()):
+            out.append(ActuatorConfig(**values))
+    return out
+
+
+def _gates(s: f.Section) -> list[GateConfig]:
+    out = []
+    for path, raw in s.items("gates"):
+        g = f.Section(s.problems, raw, path, ("id", "coupler", "phase"), what="gate")
+        values: dict[str, Any] = dict(
+            id=g.get("id", f.identifier), coupler=g.get("coupler", f.identifier), phase=g.get("phase", f.identifier)
+        )
+        if g.ok and f.BAD not in values.values():
+            out.append(GateConfig(**values))
+    return out
+
+
+def _monitors(s: f.Section) -> list[MonitorConfig]:
+    converters = {"responsivity_a_per_w": f.quantity(AMPS_PER_WATT, maximum=10.0), "transimpedance_ohms": OHMS_FIELD}
+    defaults = _defaults(s, "monitor_defaults", ("all",), converters)["all"]
+    out = []
+    for path, raw in s.items("monitors"):
+        m = f.Section(s.problems, raw, path, MONITOR_KEYS, what="monitor")
+        values: dict[str, Any] = dict(id=m.get("id", f.identifier), input=m.get("input", f.terminal))
+        for key, conv in converters.items():
+            values[key] = m.get(key, conv, defaults.get(key, f.MISSING))
+        if m.ok and f.BAD not in values.values():
+            out.append(MonitorConfig(**values))
+    return out
+
+
+def _service(p: f.Problems, raw: Any) -> ServiceConfig:
+    s = f.Section(
+        p,
+        raw,
+        ("service",),
+        ("bind", "pub", "max_message_bytes", "telemetry_rate_hz", "server_secret_key_file", "clients"),
+    )
+    d = ServiceConfig()
+    clients = []
+    for path, item in s.items("clients"):
+        c = f.Section(p, item, path, ("name", "public_key_file", "role"), what="client")
+        values: dict[str, Any] = dict(
+            name=c.get("name", f.identifier),
+            public_key_file=c.get("public_key_file", f.path_in(p.directory((*path, "public_key_file")))),
+            role=c.get("role", f.choice("observer", "operator", "admin")),
+        )
+        if c.ok and f.BAD not in values.values():
+            clients.append(ClientKey(**values))
+    secret = s.get("server_secret_key_file", f.path_in(p.directory(("service", "server_secret_key_file"))), None)
+    return ServiceConfig(
+        bind=s.get("bind", f.endpoint, d.bind),
+        pub=s.get("pub", f.endpoint, d.pub),
+        max_message_bytes=s.get("max_message_bytes", f.integer(1024, 64 << 20), d.max_message_bytes),
+        telemetry_rate_hz=s.get("telemetry_rate_hz", f.quantity(HERTZ, maximum=1000.0), d.telemetry_rate_hz),
+        server_secret_key_file=secret,
+        clients=tuple(clients),
+    )
+
+
+def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
+    """Read every section; return the config, or None when a problem was recorded."""
+    top = f.Section(p, raw, (), TOP_KEYS, what="configuration")
+    if not top.ok:
+        return None
+    for key in ("rack", "chip", "journal"):
+        if key not in top.value:
+            p.add((), f"missing required section '{key}'")
+    rack = top.sub("rack", ("boards",))
+    boards = [b for b in (_board(p, path, item) for path, item in rack.items("boards")) if b is not None]
+    if "rack" in top.value and rack.ok and not rack.items("boards"):
+        p.add(("rack", "boards"), "the rack needs at least one board")
+
+    cal = top.sub("calibration", ("directory",))
+    cal_dir = cal.get("directory", f.path_in(p.directory(("calibration", "directory"))), None)
+    chip = top.sub("chip", ("actuator_defaults", "actuators", "gates", "monitor_defaults", "monitors"))
+    actuators = _actuators(chip, None if cal_dir is f.BAD else cal_dir)
+    gates = _gates(chip)
+    monitors = _monitors(chip)
+    if "chip" in top.value and chip.ok and not chip.items("actuators"):
+        p.add(("chip", "actuators"), "the chip needs at least one actuator")
+
+    safety = top.sub("safety", ("pull_in_margin",))
+    margin = safety.get("pull_in_margin", f.fraction, SafetyConfig().pull_in_margin)
+    journal = top.sub("journal", ("path",))
+    journal_path = journal.get("path", f.path_in(p.directory(("journal", "path"))))
+    service = _service(p, top.value.get("service"))
+    if "simulator" in top.value and not isinstance(top.value["simulator"], dict):
+        p.add(("simulator",), "expected a mapping (read only by the simulator)")
+
+    if p.issues:
+        return None
+    return Config(
+        rack=RackConfig(tuple(boards)),
+        chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors)),
+        journal=JournalConfig(journal_path),
+        safety=SafetyConfig(margin),
+        service=service,
+        source=source,
+    )

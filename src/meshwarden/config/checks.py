@@ -1,0 +1,175 @@
+"""Checks across sections: the wiring and the limits must make sense together.
+
+These are the mistakes that put a voltage on the wrong channel or past a pull-in voltage:
+a channel wired twice, a reference to a board that does not exist, a limit above what the
+board can output or too close to pull-in, a gate whose coupler is really a phase shifter.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Callable
+from typing import Any
+
+from meshwarden.calibration import load_calibration
+from meshwarden.config import fields as f
+from meshwarden.config.model import Config, Terminal
+from meshwarden.config.source import PathKey, dotted
+from meshwarden.errors import CalibrationError
+
+
+def _index_of(path_of: Callable[[int], PathKey], ids: list[str], problems: f.Problems, what: str) -> None:
+    seen: dict[str, int] = {}
+    for i, item_id in enumerate(ids):
+        if item_id in seen:
+            problems.add((*path_of(i), "id"), f"duplicate {what} id '{item_id}' (first used at index {seen[item_id]})")
+        else:
+            seen[item_id] = i
+
+
+def check_config(config: Config, p: f.Problems) -> None:
+    """Record every cross-reference problem of ``config`` in ``p``."""
+    _check_boards(config, p)
+    _check_ids(config, p)
+    _check_actuators(config, p)
+    _check_gates(config, p)
+    _check_monitors(config, p)
+    _check_service(config, p)
+
+
+def _check_boards(config: Config, p: f.Problems) -> None:
+    _index_of(lambda i: ("rack", "boards", i), [b.id for b in config.rack.boards], p, "board")
+    seen_links: dict[tuple[str, int], str] = {}
+    for i, board in enumerate(config.rack.boards):
+        link = (board.url, board.address)
+        if link in seen_links and seen_links[link] != board.id:
+            p.add(
+                ("rack", "boards", i, "url"),
+                f"board '{board.id}' has the same url and address as board '{seen_links[link]}'",
+            )
+        seen_links.setdefault(link, board.id)
+        if board.watchdog.timeout_s < 2 * board.timeout_s:
+            p.add(
+                ("rack", "boards", i, "watchdog", "timeout_s"),
+                f"watchdog timeout {board.watchdog.timeout_s:g} s is shorter than two link timeouts "
+                f"({2 * board.timeout_s:g} s): the board would trip on one slow reply",
+            )
+
+
+def _check_ids(config: Config, p: f.Problems) -> None:
+    """One namespace for actuators, gates and monitors: `set ID=VALUE` must never be ambiguous."""
+    chip = config.chip
+    named: dict[str, PathKey] = {}
+    path: PathKey
+    items: Any
+    for group, items in (("actuators", chip.actuators), ("gates", chip.gates), ("monitors", chip.monitors)):
+        for i, item in enumerate(items):
+            path = ("chip", group, i, "id")
+            if item.id in named:
+                p.add(path, f"duplicate id '{item.id}' (already used at {dotted(named[item.id])})")
+            else:
+                named[item.id] = path
+
+
+def _check_actuators(config: Config, p: f.Problems) -> None:
+    boards = {b.id: b for b in config.rack.boards}
+    outputs: dict[Terminal, str] = {}
+    for i, act in enumerate(config.chip.actuators):
+        at = ("chip", "actuators", i)
+        board = boards.get(act.output.board)
+        if board is None:
+            p.add((*at, "output"), f"board '{act.output.board}' does not exist{f.suggest(act.output.board, boards)}")
+            continue
+        if act.output.index >= board.outputs:
+            p.add((*at, "output"), f"board '{board.id}' has outputs 0 to {board.outputs - 1}, not {act.output.index}")
+        elif act.output in outputs:
+            p.add((*at, "output"), f"output {act.output} is already wired to actuator '{outputs[act.output]}'")
+        else:
+            outputs[act.output] = act.id
+        if act.limit_volts > board.full_scale_volts:
+            p.add(
+                (*at, "limit_volts"),
+                f"limit {act.limit_volts:g} V is above board '{board.id}' full scale {board.full_scale_volts:g} V",
+            )
+        ceiling = (1.0 - config.safety.pull_in_margin) * act.pull_in_volts
+        if act.limit_volts > ceiling:
+            p.add(
+                (*at, "limit_volts"),
+                f"limit {act.limit_volts:g} V is above {ceiling:.4g} V, the pull-in voltage "
+                f"{act.pull_in_volts:g} V less the {config.safety.pull_in_margin:g} safety margin",
+            )
+        if act.step_limit_volts > act.limit_volts:
+            p.add(
+                (*at, "step_limit_volts"),
+                f"step limit {act.step_limit_volts:g} V is above the actuator's limit {act.limit_volts:g} V",
+            )
+        try:
+            table = load_calibration(act.calibration)
+        except CalibrationError as exc:
+            p.add((*at, "calibration"), exc.message)
+        else:
+            if table.actuator != act.id:
+                p.add(
+                    (*at, "calibration"),
+                    f"{act.calibration.name} is the calibration of '{table.actuator}', not '{act.id}'",
+                )
+            elif table.kind != act.kind:
+                p.add(
+                    (*at, "calibration"),
+                    f"{act.calibration.name} calibrates a {table.kind}, but '{act.id}' is a {act.kind}",
+                )
+
+
+def _check_gates(config: Config, p: f.Problems) -> None:
+    kinds = {a.id: a.kind for a in config.chip.actuators}
+    member_of: dict[str, str] = {}
+    for i, gate in enumerate(config.chip.gates):
+        for role in ("coupler", "phase"):
+            member = getattr(gate, role)
+            at = ("chip", "gates", i, role)
+            if member not in kinds:
+                p.add(at, f"actuator '{member}' does not exist{f.suggest(member, kinds)}")
+            elif kinds[member] != role:
+                p.add(at, f"actuator '{member}' is a {kinds[member]}, but a gate's {role} must be a {role}")
+            elif member in member_of:
+                p.add(at, f"actuator '{member}' already belongs to gate '{member_of[member]}'")
+            else:
+                member_of[member] = gate.id
+
+
+def _check_monitors(config: Config, p: f.Problems) -> None:
+    boards = {b.id: b for b in config.rack.boards}
+    inputs: dict[Terminal, str] = {}
+    for i, mon in enumerate(config.chip.monitors):
+        at = ("chip", "monitors", i)
+        board = boards.get(mon.input.board)
+        if board is None:
+            p.add((*at, "input"), f"board '{mon.input.board}' does not exist{f.suggest(mon.input.board, boards)}")
+            continue
+        if mon.input.index >= board.monitor_inputs:
+            p.add(
+                (*at, "input"),
+                f"board '{board.id}' has monitor inputs 0 to {board.monitor_inputs - 1}, not {mon.input.index}",
+            )
+        elif mon.input in inputs:
+            p.add((*at, "input"), f"monitor input {mon.input} is already used by monitor '{inputs[mon.input]}'")
+        else:
+            inputs[mon.input] = mon.id
+        if mon.transimpedance_ohms not in board.monitor_gains_ohms:
+            gains = ", ".join(f"{g:g}" for g in board.monitor_gains_ohms)
+            p.add(
+                (*at, "transimpedance_ohms"),
+                f"{mon.transimpedance_ohms:g} ohm is not a gain of board '{board.id}' (it has: {gains})",
+            )
+
+
+def _check_service(config: Config, p: f.Problems) -> None:
+    service = config.service
+    if not all(_is_loopback(e) for e in (service.bind, service.pub)) and service.server_secret_key_file is None:
+        p.add(("service",), "binding beyond loopback needs server_secret_key_file and an allow-list of clients")
+
+
+def _is_loopback(endpoint: str) -> bool:
+    if not endpoint.startswith("tcp://"):
+        return True
+    host = endpoint[len("tcp://") :].rsplit(":", 1)[0]
+    return host in ("localhost", "[::1]", "::1") or host.startswith("127.")

@@ -1,0 +1,194 @@
+"""The configuration as immutable typed objects.
+
+Everything here is already validated: a :class:`Config` only exists when every reference
+resolves, every channel is used once and every limit sits below the board's full scale and the
+actuator's pull-in margin. Units are SI and in the field names. Objects are frozen so that a
+running daemon can hand them to threads and jobs without copies.
+"""
+
+from __future__ import annotations
+
+from collections.abc import Iterator
+from dataclasses import dataclass, field
+from pathlib import Path
+from typing import Literal
+
+ActuatorKind = Literal["phase", "coupler"]
+WatchdogAction = Literal["hold", "ramp_to_zero"]
+
+ACTUATOR_KINDS: tuple[ActuatorKind, ...] = ("phase", "coupler")
+WATCHDOG_ACTIONS: tuple[WatchdogAction, ...] = ("hold", "ramp_to_zero")
+
+
+@dataclass(frozen=True, order=True)
+class Terminal:
+    """One numbered terminal of one board: an output channel or a monitor input (``b0:12``)."""
+
+    board: str
+    index: int
+
+    def __str__(self) -> str:
+        return f"{self.board}:{self.index}"
+
+
+@dataclass(frozen=True)
+class WatchdogConfig:
+    """What a board does on its own when the daemon's heartbeats stop.
+
+    The default ramps outputs to zero after 30 s: long enough for a restarted daemon to adopt
+    the outputs without a jump, short enough that a dead host does not leave high voltage on the
+    chip overnight.
+    """
+
+    timeout_s: float = 30.0
+    action: WatchdogAction = "ramp_to_zero"
+
+
+@dataclass(frozen=True)
+class BoardConfig:
+    """One high-voltage DAC driver board in the rack."""
+
+    id: str
+    url: str
+    driver: str = "reference"
+    address: int = 1
+    outputs: int = 64
+    monitor_inputs: int = 32
+    dac_bits: int = 16
+    full_scale_volts: float = 60.0
+    adc_bits: int = 16
+    monitor_gains_ohms: tuple[float, ...] = (1e3, 1e4, 1e5, 1e6)
+    watchdog: WatchdogConfig = WatchdogConfig()
+    timeout_s: float = 0.5
+    retries: int = 3
+
+
+@dataclass(frozen=True)
+class RackConfig:
+    """The boards, in the order the configuration lists them."""
+
+    boards: tuple[BoardConfig, ...]
+
+    def board(self, board_id: str) -> BoardConfig:
+        for board in self.boards:
+            if board.id == board_id:
+                return board
+        raise KeyError(board_id)
+
+
+@dataclass(frozen=True)
+class ActuatorConfig:
+    """One MEMS actuator: what it moves, where it is wired and how hard it may be driven.
+
+    ``pull_in_volts`` is the static electrostatic instability voltage (parallel plates) or the
+    lateral snap voltage (comb drives): the actuator snaps and may stick above it.
+    ``limit_volts`` is the operator's own ceiling; the guard uses the least of it, the board's
+    full scale and ``(1 - margin) * pull_in_volts``.
+    """
+
+    id: str
+    kind: ActuatorKind
+    output: Terminal
+    limit_volts: float
+    pull_in_volts: float
+    step_limit_volts: float
+    dwell_s: float
+    calibration: Path
+
+
+@dataclass(frozen=True)
+class GateConfig:
+    """A lattice gate: a tunable coupler paired with a phase shifter."""
+
+    id: str
+    coupler: str
+    phase: str
+
+
+@dataclass(frozen=True)
+class MonitorConfig:
+    """A photodetector tap read through a board's monitor input and transimpedance amplifier."""
+
+    id: str
+    input: Terminal
+    responsivity_a_per_w: float
+    transimpedance_ohms: float
+
+
+@dataclass(frozen=True)
+class ChipConfig:
+    """The chip under control: its actuators, gates and monitors."""
+
+    actuators: tuple[ActuatorConfig, ...]
+    gates: tuple[GateConfig, ...] = ()
+    monitors: tuple[MonitorConfig, ...] = ()
+
+    def actuator(self, actuator_id: str) -> ActuatorConfig:
+        for actuator in self.actuators:
+            if actuator.id == actuator_id:
+                return actuator
+        raise KeyError(actuator_id)
+
+    def by_kind(self, kind: ActuatorKind) -> Iterator[ActuatorConfig]:
+        return (a for a in self.actuators if a.kind == kind)
+
+
+@dataclass(frozen=True)
+class SafetyConfig:
+    """Rules that apply to every actuator.
+
+    ``pull_in_margin`` keeps every limit at least this fraction below pull-in: pull-in voltages
+    shift with fabrication spread and dielectric charging, so the nominal value is not a line to
+    walk along.
+    """
+
+    pull_in_margin: float = 0.15
+
+
+@dataclass(frozen=True)
+class ClientKey:
+    """A client allowed on a non-loopback bus: its CURVE public key file and its role."""
+
+    name: str
+    public_key_file: Path
+    role: Literal["observer", "operator", "admin"]
+
+
+@dataclass(frozen=True)
+class ServiceConfig:
+    """Where the daemon listens, and who may talk to it when it listens beyond loopback."""
+
+    bind: str = "tcp://127.0.0.1:7640"
+    pub: str = "tcp://127.0.0.1:7641"
+    max_message_bytes: int = 1 << 20
+    telemetry_rate_hz: float = 2.0
+    server_secret_key_file: Path | None = None
+    clients: tuple[ClientKey, ...] = ()
+
+
+@dataclass(frozen=True)
+class JournalConfig:
+    """The SQLite journal of targets and events."""
+
+    path: Path
+
+
+@dataclass(frozen=True)
+class Config:
+    """The whole validated configuration. ``source`` is informative and not part of equality."""
+
+    rack: RackConfig
+    chip: ChipConfig
+    journal: JournalConfig
+    safety: SafetyConfig = SafetyConfig()
+    service: ServiceConfig = ServiceConfig()
+    source: Path | None = field(default=None, compare=False)
+
+    def hard_limit_volts(self, actuator: ActuatorConfig) -> float:
+        """The ceiling no output of this actuator may pass (rule 1 of the design)."""
+        board = self.rack.board(actuator.output.board)
+        return min(
+            board.full_scale_volts,
+            actuator.limit_volts,
+            (1.0 - self.safety.pull_in_margin) * actuator.pull_in_volts,
+        )

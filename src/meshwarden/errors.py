@@ -1,0 +1,136 @@
+"""The one error tree of meshwarden.
+
+Every error a user can meet is a :class:`MeshwardenError` with a stable ``code`` that the message
+bus sends to clients and that tests assert on. The tree follows the phase of life in which the
+error happens, so a caller can catch "anything wrong with the configuration" or "anything wrong
+on the wire" without knowing the details::
+
+    MeshwardenError                      code
+    ├── ConfigError                      config          bad file, bad value, bad reference
+    ├── CalibrationError                 calibration     a calibration table that cannot be used
+    ├── LinkError                        link            a board cannot be reached or went away
+    │   └── LinkTimeout                  link_timeout    no answer in time
+    ├── ProtocolError                    protocol        bytes that do not decode as a frame
+    │   ├── FramingError                 framing         COBS or length broken
+    │   └── ChecksumError                checksum        CRC mismatch
+    └── RefusedError                     refused         a request that would break a safety rule
+        ├── LimitRefused                 limit           above a voltage limit
+        ├── UnreachableRefused           unreachable     a logical value outside the calibration
+        ├── NotArmedRefused              not_armed       outputs may change only while armed
+        └── LeaseRefused                 lease           another client holds the actuator
+
+Foreign exceptions are re-raised ``from`` the original so the cause stays in the log.
+"""
+
+from __future__ import annotations
+
+from typing import Any
+
+
+class MeshwardenError(Exception):
+    """Root of every error meshwarden raises on purpose."""
+
+    code = "error"
+
+    def __init__(self, message: str, **details: Any) -> None:
+        super().__init__(message)
+        self.message = message
+        self.details = details
+
+    def as_dict(self) -> dict[str, Any]:
+        """The error as the bus sends it: stable code, human message, machine-readable details."""
+        return {"code": self.code, "message": self.message, "details": dict(self.details)}
+
+
+class ConfigError(MeshwardenError):
+    """A configuration that cannot be used; carries every problem found, one per line."""
+
+    code = "config"
+
+    def __init__(self, issues: list[ConfigIssue]) -> None:
+        self.issues = list(issues)
+        super().__init__("\n".join(str(i) for i in self.issues) or "invalid configuration")
+
+
+class ConfigIssue:
+    """One problem in a configuration file, located to a file, a line and a dotted path."""
+
+    __slots__ = ("file", "line", "message", "path")
+
+    def __init__(self, file: str, line: int, path: str, message: str) -> None:
+        self.file = file
+        self.line = line
+        self.path = path
+        self.message = message
+
+    def __str__(self) -> str:
+        return f"{self.file}:{self.line}: {self.path or '<top>'}: {self.message}"
+
+    def __repr__(self) -> str:
+        return f"ConfigIssue({str(self)!r})"
+
+
+class CalibrationError(MeshwardenError):
+    """A calibration table that is malformed, not monotone or for another actuator."""
+
+    code = "calibration"
+
+
+class LinkError(MeshwardenError):
+    """A board cannot be reached, or its link was lost."""
+
+    code = "link"
+
+
+class LinkTimeout(LinkError):
+    """A board did not answer within its timeout (after retries)."""
+
+    code = "link_timeout"
+
+
+class ProtocolError(MeshwardenError):
+    """Bytes that do not form a valid frame of the board protocol."""
+
+    code = "protocol"
+
+
+class FramingError(ProtocolError):
+    """The COBS encoding or the frame length is broken."""
+
+    code = "framing"
+
+
+class ChecksumError(ProtocolError):
+    """The frame's CRC does not match its contents."""
+
+    code = "checksum"
+
+
+class RefusedError(MeshwardenError):
+    """A request refused because it would break a safety rule; nothing was changed."""
+
+    code = "refused"
+
+
+class LimitRefused(RefusedError):
+    """A voltage above the channel's hard limit."""
+
+    code = "limit"
+
+
+class UnreachableRefused(RefusedError):
+    """A logical value outside what the actuator's calibration can reach within its limit."""
+
+    code = "unreachable"
+
+
+class NotArmedRefused(RefusedError):
+    """An output change away from zero while the daemon is disarmed or emergency-stopped."""
+
+    code = "not_armed"
+
+
+class LeaseRefused(RefusedError):
+    """A write to an actuator leased by another client."""
+
+    code = "lease"

@@ -1,0 +1,269 @@
+"""Every configuration rule: a broken file gives exactly one located line, and nothing else."""
+
+from __future__ import annotations
+
+from pathlib import Path
+
+import pytest
+
+from meshwarden.config import load_config
+from meshwarden.errors import ConfigError
+from tests.config.minimal import MAIN, replace_line, write_cal, write_config
+
+C0 = '    - {id: c0, kind: coupler, output: "b0:0", limit_volts: 40, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 0.002}'
+P0 = '    - {id: p0, kind: phase, output: "b0:1", limit_volts: 40, pull_in_volts: 55, step_limit_volts: 4, dwell_s: 0.002}'
+GATE = "    - {id: g0, coupler: c0, phase: p0}"
+MON = '    - {id: m0, input: "b0:0", responsivity_a_per_w: 0.9, transimpedance_ohms: 100000}'
+
+
+@pytest.fixture(autouse=True)
+def _in_tmp(tmp_path: Path, monkeypatch: pytest.MonkeyPatch) -> None:
+    monkeypatch.chdir(tmp_path)
+
+
+def problems(text: str, tmp_path: Path) -> list[str]:
+    path = write_config(tmp_path, text)
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    return [str(i) for i in err.value.issues]
+
+
+def test_minimal_config_is_valid(tmp_path: Path) -> None:
+    """The base file of these tests loads, so each failure below is caused by its one change."""
+    config = load_config(write_config(tmp_path))
+    assert [a.id for a in config.chip.actuators] == ["c0", "p0"]
+    assert config.chip.actuator("c0").dwell_s == 0.002
+
+
+def test_unknown_key_suggests_the_close_known_key(tmp_path: Path) -> None:
+    """A misspelt optional key is an error naming the key it was probably meant to be."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volt: 60")
+    assert problems(text, tmp_path) == [
+        "config.yaml:5: rack.boards[0].full_scale_volt: unknown key 'full_scale_volt' (did you mean 'full_scale_volts'?)"
+    ]
+
+
+def test_unknown_top_level_section(tmp_path: Path) -> None:
+    """An unknown section is reported with the section it resembles."""
+    text = MAIN + "jornal: {}\n"
+    assert problems(text, tmp_path) == ["config.yaml:18: jornal: unknown key 'jornal' (did you mean 'journal'?)"]
+
+
+def test_wrong_type(tmp_path: Path) -> None:
+    """Text where a whole number belongs."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      outputs: many")
+    assert problems(text, tmp_path) == [
+        "config.yaml:6: rack.boards[0].outputs: expected a whole number from 1 to 1024, got 'many'"
+    ]
+
+
+def test_wrong_unit_dimension(tmp_path: Path) -> None:
+    """A voltage given where a time belongs is refused, not read as seconds."""
+    text = replace_line("dwell_s: 0.002}", "dwell_s: 2 V}")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuators[0].dwell_s: unit 'V' is not a time unit (use one of: h, min, ms, ns, s, us, µs)"
+    ]
+
+
+def test_explicit_units_are_converted(tmp_path: Path) -> None:
+    """'2 ms' for dwell_s and '40000 mV' for a limit are read in SI units."""
+    text = replace_line("dwell_s: 0.002}", "dwell_s: 2 ms}")
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: 40000 mV, pull_in_volts: 50", text)
+    config = load_config(write_config(tmp_path, text))
+    assert config.chip.actuator("c0").dwell_s == pytest.approx(0.002)
+    assert config.chip.actuator("c0").limit_volts == pytest.approx(40.0)
+
+
+def test_not_a_number_is_refused(tmp_path: Path) -> None:
+    """NaN compares false against every limit, so it must never get in."""
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: .nan, pull_in_volts: 50")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuators[0].limit_volts: expected a finite voltage, got nan"
+    ]
+
+
+def test_missing_required_key(tmp_path: Path) -> None:
+    """A board without a url cannot be reached; the message names the missing key."""
+    text = replace_line("      url: socket://127.0.0.1:9\n", "")
+    assert problems(text, tmp_path) == ["config.yaml:3: rack.boards[0]: missing required key 'url'"]
+
+
+def test_output_channel_used_twice(tmp_path: Path) -> None:
+    """Two actuators on one output would drive both with one voltage."""
+    text = replace_line('output: "b0:1"', 'output: "b0:0"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:9: chip.actuators[1].output: output b0:0 is already wired to actuator 'c0'"
+    ]
+
+
+def test_monitor_input_used_twice(tmp_path: Path) -> None:
+    text = replace_line(MON, MON + "\n" + MON.replace("m0", "m1"))
+    assert problems(text, tmp_path) == [
+        "config.yaml:14: chip.monitors[1].input: monitor input b0:0 is already used by monitor 'm0'"
+    ]
+
+
+def test_output_beyond_the_board(tmp_path: Path) -> None:
+    text = replace_line('output: "b0:1"', 'output: "b0:64"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:9: chip.actuators[1].output: board 'b0' has outputs 0 to 63, not 64"
+    ]
+
+
+def test_reference_to_missing_board(tmp_path: Path) -> None:
+    text = replace_line('output: "b0:1"', 'output: "b9:1"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:9: chip.actuators[1].output: board 'b9' does not exist (did you mean 'b0'?)"
+    ]
+
+
+def test_reference_to_missing_actuator(tmp_path: Path) -> None:
+    text = replace_line(GATE, "    - {id: g0, coupler: c0, phase: p9}")
+    assert problems(text, tmp_path) == [
+        "config.yaml:11: chip.gates[0].phase: actuator 'p9' does not exist (did you mean 'p0'?)"
+    ]
+
+
+def test_reference_to_missing_monitor_board(tmp_path: Path) -> None:
+    text = replace_line('input: "b0:0"', 'input: "bx:0"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:13: chip.monitors[0].input: board 'bx' does not exist (did you mean 'b0'?)"
+    ]
+
+
+def test_limit_above_full_scale(tmp_path: Path) -> None:
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 30")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuators[0].limit_volts: limit 40 V is above board 'b0' full scale 30 V",
+        "config.yaml:9: chip.actuators[1].limit_volts: limit 40 V is above board 'b0' full scale 30 V",
+    ]
+
+
+def test_limit_too_close_to_pull_in(tmp_path: Path) -> None:
+    """With the default 0.15 margin, a 44 V limit on a 50 V pull-in actuator is refused."""
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: 44, pull_in_volts: 50")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuators[0].limit_volts: limit 44 V is above 42.5 V, "
+        "the pull-in voltage 50 V less the 0.15 safety margin"
+    ]
+
+
+def test_gate_member_of_the_wrong_kind(tmp_path: Path) -> None:
+    text = replace_line(GATE, "    - {id: g0, coupler: p0, phase: c0}")
+    assert problems(text, tmp_path) == [
+        "config.yaml:11: chip.gates[0].coupler: actuator 'p0' is a phase, but a gate's coupler must be a coupler",
+        "config.yaml:11: chip.gates[0].phase: actuator 'c0' is a coupler, but a gate's phase must be a phase",
+    ]
+
+
+def test_duplicate_actuator_id(tmp_path: Path) -> None:
+    text = replace_line(P0, P0.replace("id: p0", "id: c0"))
+    lines = problems(text, tmp_path)
+    assert lines[0] == "config.yaml:9: chip.actuators[1].id: duplicate id 'c0' (already used at chip.actuators[0].id)"
+
+
+def test_duplicate_board_id(tmp_path: Path) -> None:
+    text = replace_line(
+        "      full_scale_volts: 60\n",
+        "      full_scale_volts: 60\n    - id: b0\n      url: socket://127.0.0.1:10\n",
+    )
+    assert problems(text, tmp_path) == [
+        "config.yaml:6: rack.boards[1].id: duplicate board id 'b0' (first used at index 0)"
+    ]
+
+
+def test_yaml_syntax_error(tmp_path: Path) -> None:
+    text = replace_line("  gates:", "  gates: [")
+    lines = problems(text, tmp_path)
+    assert len(lines) == 1
+    assert lines[0].startswith("config.yaml:") and "YAML syntax error" in lines[0]
+
+
+def test_missing_include(tmp_path: Path) -> None:
+    text = MAIN.replace("journal:\n  path: journal.sqlite\n", "journal: !include nowhere.yaml\n")
+    assert problems(text, tmp_path) == ["config.yaml:16: journal: file not found: nowhere.yaml"]
+
+
+def test_include_cycle(tmp_path: Path) -> None:
+    (tmp_path / "a.yaml").write_text("path: !include b.yaml\n", encoding="utf-8")
+    (tmp_path / "b.yaml").write_text("x: !include a.yaml\n", encoding="utf-8")
+    text = MAIN.replace("journal:\n  path: journal.sqlite\n", "journal: !include a.yaml\n")
+    assert problems(text, tmp_path) == [
+        "b.yaml:1: journal.path.x: include cycle: config.yaml -> a.yaml -> b.yaml -> a.yaml"
+    ]
+
+
+def test_include_is_resolved_and_located(tmp_path: Path) -> None:
+    """Errors inside an included file point into that file."""
+    (tmp_path / "rack.yaml").write_text(
+        "boards:\n  - id: b0\n    url: socket://127.0.0.1:9\n    dac_bits: 40\n", encoding="utf-8"
+    )
+    text = MAIN.replace(MAIN[: MAIN.index("chip:")], "rack: !include rack.yaml\n")
+    assert problems(text, tmp_path) == ["rack.yaml:4: rack.boards[0].dac_bits: 40 is out of range (allowed 8 to 24)"]
+
+
+def test_transimpedance_must_be_a_board_gain(tmp_path: Path) -> None:
+    text = replace_line("transimpedance_ohms: 100000", "transimpedance_ohms: 50 kohm")
+    assert problems(text, tmp_path) == [
+        "config.yaml:13: chip.monitors[0].transimpedance_ohms: 50000 ohm is not a gain of board 'b0' "
+        "(it has: 1000, 10000, 100000, 1e+06)"
+    ]
+
+
+def test_calibration_for_another_actuator(tmp_path: Path) -> None:
+    path = write_config(tmp_path)
+    write_cal(tmp_path / "cal", "c0", "coupler").write_text(
+        (tmp_path / "cal" / "c0.yaml").read_text().replace("actuator: c0", "actuator: c1")
+    )
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert [str(i) for i in err.value.issues] == [
+        "config.yaml:8: chip.actuators[0].calibration: c0.yaml is the calibration of 'c1', not 'c0'"
+    ]
+
+
+def test_calibration_not_monotone(tmp_path: Path) -> None:
+    path = write_config(tmp_path)
+    write_cal(tmp_path / "cal", "p0", "phase", "[0.0, 0.5, 0.4, 3.5, 7.0]")
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert [str(i) for i in err.value.issues] == [
+        "config.yaml:9: chip.actuators[1].calibration: values must increase strictly with volts: values[2] = 0.4 <= 0.5"
+    ]
+
+
+def test_missing_calibration_file(tmp_path: Path) -> None:
+    path = write_config(tmp_path)
+    (tmp_path / "cal" / "p0.yaml").unlink()
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    (line,) = [str(i) for i in err.value.issues]
+    assert line.startswith("config.yaml:9: chip.actuators[1].calibration: calibration file not found: ")
+
+
+def test_bind_beyond_loopback_needs_keys(tmp_path: Path) -> None:
+    text = MAIN + "service:\n  bind: tcp://0.0.0.0:7640\n"
+    assert problems(text, tmp_path) == [
+        "config.yaml:18: service: binding beyond loopback needs server_secret_key_file and an allow-list of clients"
+    ]
+
+
+def test_actuator_defaults_apply_by_kind(tmp_path: Path) -> None:
+    """Per-kind defaults fill what an actuator leaves out; its own value wins."""
+    text = MAIN.replace(C0, '    - {id: c0, kind: coupler, output: "b0:0", limit_volts: 30}').replace(
+        "  actuators:\n",
+        "  actuator_defaults:\n"
+        "    coupler: {limit_volts: 40, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 3 ms}\n"
+        "  actuators:\n",
+    )
+    config = load_config(write_config(tmp_path, text))
+    c0 = config.chip.actuator("c0")
+    assert (c0.limit_volts, c0.pull_in_volts, c0.dwell_s) == (30.0, 50.0, pytest.approx(0.003))
+
+
+def test_boolean_is_not_a_voltage(tmp_path: Path) -> None:
+    """YAML reads 'yes' as true; a boolean must not become 1 V."""
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: yes, pull_in_volts: 50")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuators[0].limit_volts: expected a voltage in V, got a boolean"
+    ]
