@@ -7,6 +7,7 @@ import sys
 from collections.abc import Sequence
 from pathlib import Path
 
+from meshsim.faults import FaultSpecError
 from meshsim.params import ParamsError, parse_params
 from meshsim.scenario import ScenarioError, load_scenario
 
@@ -28,9 +29,51 @@ def _cmd_nominal(args: argparse.Namespace) -> int:
     return 0
 
 
+def _cmd_serve(args: argparse.Namespace) -> int:
+    import signal
+    import threading
+
+    from meshsim.clock import SimClock
+    from meshsim.rack import SimRack
+    from meshsim.serve import RackServer
+
+    rack = SimRack.from_config(args.config, seed=args.seed, faults=args.faults or "", clock=SimClock(args.time_scale))
+    stop = threading.Event()
+    for sig in (signal.SIGINT, signal.SIGTERM):
+        signal.signal(sig, lambda *_: stop.set())
+    with RackServer(rack, args.transport) as server:
+        server.write_ports_file(args.ports_file)
+        ports = ", ".join(f"{b}={u}" for b, u in server.ports().items())
+        print(
+            f"meshsim: serving {len(server.links)} boards over {args.transport}: {ports}", file=sys.stderr, flush=True
+        )
+        while not stop.wait(0.2):
+            pass
+    print("meshsim: stopped", file=sys.stderr, flush=True)
+    return 0
+
+
+def _positive(text: str) -> float:
+    try:
+        value = float(text)
+    except ValueError:
+        raise argparse.ArgumentTypeError(f"expected a number, got {text!r}") from None
+    if not value > 0:
+        raise argparse.ArgumentTypeError(f"must be positive, got {text}")
+    return value
+
+
 def build_parser() -> argparse.ArgumentParser:
     parser = _Parser(prog="meshsim", description="Simulated MEMS driver rack and photonic chip.")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
+    serve = sub.add_parser("serve", help="serve a simulated rack over ptys or TCP until stopped")
+    serve.add_argument("--config", required=True, help="the configuration (rack, chip and simulator sections)")
+    serve.add_argument("--transport", choices=("pty", "tcp"), default="pty", help="pty devices or TCP on 127.0.0.1")
+    serve.add_argument("--ports-file", required=True, help='write {"board_id": "url", ...} here once ready')
+    serve.add_argument("--seed", type=int, default=None, help="override the simulator section's seed")
+    serve.add_argument("--faults", default="", help="faults to inject, e.g. 'stuck:c03;corrupt:*=0.01'")
+    serve.add_argument("--time-scale", type=_positive, default=1.0, help="simulated seconds per wall second")
+    serve.set_defaults(run=_cmd_serve)
     nominal = sub.add_parser("nominal-calibration", help="write design-nominal calibration tables")
     nominal.add_argument("--config", required=True, help="the configuration (with a simulator section)")
     nominal.add_argument("--out", required=True, help="folder for one file per actuator")
@@ -48,7 +91,7 @@ def main(argv: Sequence[str] | None = None) -> int:
     try:
         code: int = args.run(args)
         return code
-    except (ScenarioError, ParamsError) as exc:
+    except (ScenarioError, ParamsError, FaultSpecError, OSError) as exc:
         print(f"meshsim: {exc}", file=sys.stderr)
         return 2
     except KeyboardInterrupt:

@@ -11,7 +11,6 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.constants import epsilon_0
 
 from meshsim.params import CouplerDevice, PhaseDevice
 from meshsim.physics import electrostatics as es
@@ -45,16 +44,9 @@ class PlateArrays:
     def pull_out_volts(self) -> F:
         return es.pull_out_volts(self.spring, self.air_gap, self.dielectric_gap, self.area)
 
-    def equilibrium(self, volts: F) -> F:
-        """Static displacement in m; NaN above pull-in."""
-        return es.equilibrium_fraction(volts / self.pull_in_volts) * self.electrical_gap
-
-    def force(self, volts: F, x: F) -> F:
-        return es.parallel_plate_force(volts, self.area, self.electrical_gap, x)
-
-    def force_gradient(self, volts: F, x: F) -> F:
-        """dF/dx, which softens the spring near pull-in."""
-        return np.asarray(epsilon_0 * self.area * volts**2 / (self.electrical_gap - x) ** 3)
+    def equilibrium(self, volts: F, index: NDArray[np.int64] | slice = slice(None)) -> F:
+        """Static displacement in m of the actuators ``index`` at ``volts``; NaN above pull-in."""
+        return es.equilibrium_fraction(volts / self.pull_in_volts[index]) * self.electrical_gap[index]
 
     def kappa(self, x: F) -> F:
         d = self.device

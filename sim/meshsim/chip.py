@@ -1,0 +1,318 @@
+"""The simulated chip: every actuator's motion, charging and failure, and the light through the lattice.
+
+The chip knows nothing about boards or bytes. It is told, at a simulated time, which voltage
+each actuator's terminals now see (:meth:`SimChip.apply_volts`), and answers what the light
+does (:meth:`SimChip.tap_powers_w`). Ground truth - true displacements, phases, couplings,
+pulled-in and stuck actuators - is available through :meth:`SimChip.truth` for tests only; the
+daemon sees the chip only through monitors and sense readings, as in a lab.
+
+Failure physics:
+
+* parallel-plate couplers pull in statically above V_PI, or dynamically when a step's first
+  overshoot reaches the contact (dynamic pull-in); in contact they stay down until the voltage
+  falls below the pull-out voltage; at release, with the device's stiction probability, they
+  stay stuck for good;
+* comb-drive phase shifters snap sideways when the (peak) displacement passes their lateral
+  snap displacement; they release below half the snap voltage, or stay stuck likewise;
+* dielectric charging: the effective voltage is V - V_shift, where V_shift relaxes toward
+  ``charging_fraction * V`` with the device's time constant (minutes), and back to zero when
+  the bias is removed - a first-order stand-in for the linear-then-logarithmic charging of
+  Wibbeler et al. 1998.
+"""
+
+from __future__ import annotations
+
+from dataclasses import dataclass
+
+import numpy as np
+from numpy.typing import NDArray
+from scipy.constants import epsilon_0
+
+from meshsim.devices import CombArrays, PlateArrays, comb_arrays, plate_arrays
+from meshsim.dynamics import Ringing, first_peak
+from meshsim.params import SimParams
+from meshsim.physics import optics
+from meshsim.physics.electrostatics import parallel_plate_force
+from meshsim.scenario import Scenario
+
+F = NDArray[np.float64]
+I = NDArray[np.int64]  # noqa: E741
+
+
+@dataclass(frozen=True)
+class ChipTruth:
+    """A snapshot of the chip's real state, for tests and inspection."""
+
+    time_s: float
+    actuator_ids: tuple[str, ...]
+    terminal_volts: F
+    effective_volts: F
+    displacement_m: F
+    pulled_in: NDArray[np.bool_]
+    stuck: NDArray[np.bool_]
+    gate_ids: tuple[str, ...]
+    kappa: F
+    phase_rad: F
+    tap_power_w: F
+
+
+class SimChip:
+    """All actuators of one chip, the optical lattice and its taps."""
+
+    def __init__(self, scenario: Scenario, params: SimParams, rng: np.random.Generator) -> None:
+        self.params = params
+        self.ids = tuple(a.id for a in scenario.actuators)
+        self.index = {aid: i for i, aid in enumerate(self.ids)}
+        kinds = np.array([a.kind for a in scenario.actuators])
+        self.couplers: I = np.flatnonzero(kinds == "coupler")
+        self.phases: I = np.flatnonzero(kinds == "phase")
+        n = len(self.ids)
+        spread = params.spread
+        # Fabrication spread, drawn once per actuator in a fixed order so a seed reproduces a chip.
+        spring_scale = 1.0 + spread.spring_rel * rng.standard_normal(n)
+        gap_scale = 1.0 + spread.gap_rel * rng.standard_normal(n)
+        optical_scale = 1.0 + spread.optical_gap_rel * rng.standard_normal(n)
+        c, p = self.couplers, self.phases
+        self.plate: PlateArrays = plate_arrays(params.coupler, len(c), spring_scale[c], gap_scale[c], optical_scale[c])
+        self.comb: CombArrays = comb_arrays(params.phase, len(p), spring_scale[p], optical_scale[p])
+
+        self.terminal_volts = np.zeros(n)
+        self.shift_volts = np.zeros(n)
+        self.shift_time = 0.0
+        self.charging_fraction = np.zeros(n)
+        self.charging_time = np.ones(n)
+        self.charging_fraction[c] = params.coupler.charging_fraction
+        self.charging_time[c] = params.coupler.charging_time_s
+        self.charging_fraction[p] = params.phase.charging_fraction
+        self.charging_time[p] = params.phase.charging_time_s
+        self.stiction = np.zeros(n)
+        self.stiction[c] = params.coupler.stiction_probability
+        self.stiction[p] = params.phase.stiction_probability
+
+        self.pulled_in = np.zeros(n, dtype=bool)
+        self.stuck = np.zeros(n, dtype=bool)
+        self.stuck_at = np.zeros(n)
+        self.ringing = Ringing(n)
+        self._rng = rng
+        self._set_linear(np.arange(n), np.zeros(n))
+
+        self.gate_ids = tuple(g[0] for g in scenario.gates)
+        self.gate_coupler = np.array([self.index[g[1]] for g in scenario.gates], dtype=int)
+        self.gate_phase = np.array([self.index[g[2]] for g in scenario.gates], dtype=int)
+        self.monitor_ids = tuple(m.id for m in scenario.monitors)
+        self.lattice = self._build_lattice(scenario, params)
+        loss_db = (
+            params.coupler.loss_db
+            + params.phase.loss_db
+            + 2 * (params.lattice.transition_loss_db if params.lattice else 0.0)
+        )
+        self.gate_loss_amplitude = np.full(len(self.gate_ids), float(optics.db_to_amplitude(loss_db)))
+
+    # ---------------------------------------------------------------- construction helpers
+
+    def _build_lattice(self, scenario: Scenario, params: SimParams) -> optics.Lattice | None:
+        spec = params.lattice
+        if spec is None:
+            return None
+        gate_index = {gid: i for i, gid in enumerate(self.gate_ids)}
+        monitor_index = {mid: i for i, mid in enumerate(self.monitor_ids)}
+        columns = tuple(tuple((gate_index[g], top) for g, top in col) for col in spec.columns)
+        taps: list[tuple[int, int]] = [(-2, 0)] * len(self.monitor_ids)
+        for mid, after, mode in spec.taps:
+            taps[monitor_index[mid]] = (after, mode)
+        layout = optics.LatticeLayout(spec.modes, columns, tuple(taps), spec.tap_fraction)
+        return optics.Lattice(layout)
+
+    # ---------------------------------------------------------------- mechanics
+
+    def _equilibrium(self, effective: F) -> F:
+        """Static displacement for every actuator at ``effective`` volts (NaN above plate pull-in)."""
+        x = np.zeros(len(self.ids))
+        x[self.couplers] = self.plate.equilibrium(effective[self.couplers])
+        x[self.phases] = self.comb.equilibrium(effective[self.phases])
+        return x
+
+    def _set_linear(self, index: I, effective: F) -> tuple[F, F]:
+        """Linearised frequency and damping ratio about the equilibrium at ``effective`` volts."""
+        w = np.zeros(len(index))
+        zeta = np.zeros(len(index))
+        is_c = np.isin(index, self.couplers)
+        ci = np.searchsorted(self.couplers, index[is_c])
+        pi = np.searchsorted(self.phases, index[~is_c])
+        if ci.size:
+            xe = np.nan_to_num(self.plate.equilibrium(effective[is_c], ci), nan=0.0)
+            k_eff = self.plate.spring[ci] - _plate_gradient(self.plate, ci, effective[is_c], xe)
+            k_eff = np.maximum(k_eff, 1e-6 * self.plate.spring[ci])
+            w[is_c] = np.sqrt(k_eff / self.plate.mass[ci])
+            zeta[is_c] = self.plate.damping[ci] / (2.0 * np.sqrt(k_eff * self.plate.mass[ci]))
+        if pi.size:
+            w[~is_c] = np.sqrt(self.comb.spring[pi] / self.comb.mass[pi])
+            zeta[~is_c] = self.comb.damping[pi] / (2.0 * np.sqrt(self.comb.spring[pi] * self.comb.mass[pi]))
+        return w, zeta
+
+    def _advance_charging(self, t: float) -> None:
+        dt = t - self.shift_time
+        if dt <= 0.0:
+            return
+        target = self.charging_fraction * self.terminal_volts
+        self.shift_volts = target + (self.shift_volts - target) * np.exp(-dt / self.charging_time)
+        self.shift_time = t
+
+    def effective_volts(self, t: float) -> F:
+        """Terminal voltage less the dielectric charging shift."""
+        self._advance_charging(t)
+        return self.terminal_volts - self.shift_volts
+
+    def displacement(self, t: float) -> F:
+        """True displacement of every actuator at time ``t``."""
+        eff = self.effective_volts(t)
+        x = np.nan_to_num(self._equilibrium(eff), nan=0.0)
+        y, _ = self.ringing.state(t)
+        x = x + y
+        x[self.couplers] = np.where(self.pulled_in[self.couplers], self.plate.air_gap, x[self.couplers])
+        x[self.phases] = np.where(self.pulled_in[self.phases], self.comb.snap_displacement, x[self.phases])
+        return np.where(self.stuck, self.stuck_at, x)
+
+    def apply_volts(self, index: I, volts: F, t: float) -> None:
+        """The terminals of actuators ``index`` see ``volts`` from time ``t`` on (a step)."""
+        index = np.asarray(index, dtype=int)
+        volts = np.asarray(volts, dtype=float)
+        changed = self.terminal_volts[index] != volts
+        index, volts = index[changed], volts[changed]
+        if index.size == 0:
+            return
+        self._advance_charging(t)
+        x_before = self.displacement(t)[index]
+        _, v_before = self.ringing.state(t, index)
+        self.terminal_volts[index] = volts
+        eff = self.terminal_volts[index] - self.shift_volts[index]
+        self._release_check(index, eff)
+        free = ~self.pulled_in[index] & ~self.stuck[index]
+        self._step_dynamics(index[free], x_before[free], v_before[free], eff[free], t)
+
+    def _release_check(self, index: I, eff: F) -> None:
+        """Pulled-in actuators whose voltage fell low enough spring back - or stay stuck."""
+        is_c = np.isin(index, self.couplers)
+        release_v = np.zeros(len(index))
+        ci = np.searchsorted(self.couplers, index[is_c])
+        pi = np.searchsorted(self.phases, index[~is_c])
+        release_v[is_c] = self.plate.pull_out_volts[ci]
+        release_v[~is_c] = 0.5 * self.comb.lateral_snap_volts[pi]
+        releasing = self.pulled_in[index] & (np.abs(eff) < release_v)
+        for i in index[releasing]:
+            self.pulled_in[i] = False
+            if self._rng.random() < self.stiction[i]:
+                self.stuck[i] = True
+                self.stuck_at[i] = self._contact_displacement(i)
+            else:
+                self.ringing.restart(np.array([i]), self.shift_time, np.zeros(1), np.zeros(1), np.ones(1), np.ones(1))
+
+    def _contact_displacement(self, i: int) -> float:
+        if i in self.couplers:
+            return float(self.plate.air_gap[np.searchsorted(self.couplers, i)])
+        return float(self.comb.snap_displacement[np.searchsorted(self.phases, i)])
+
+    def _step_dynamics(self, index: I, x0: F, v0: F, eff: F, t: float) -> None:
+        if index.size == 0:
+            return
+        is_c = np.isin(index, self.couplers)
+        snapped = np.zeros(len(index), dtype=bool)
+        if is_c.any():
+            ci = np.searchsorted(self.couplers, index[is_c])
+            plate = self.plate
+
+            def force(v: F, x: F) -> F:
+                return _plate_force(plate, ci, v, x)
+
+            static_beyond = np.abs(eff[is_c]) >= plate.pull_in_volts[ci]
+            _, hit = first_peak(
+                x0[is_c],
+                v0[is_c],
+                eff[is_c],
+                plate.mass[ci],
+                plate.damping[ci],
+                plate.spring[ci],
+                force,
+                plate.air_gap[ci],
+            )
+            snapped[is_c] = hit | static_beyond
+        if (~is_c).any():
+            pi = np.searchsorted(self.phases, index[~is_c])
+            comb = self.comb
+            x_eq = comb.force(eff[~is_c]) / comb.spring[pi]
+            w = np.sqrt(comb.spring[pi] / comb.mass[pi])
+            zeta = comb.damping[pi] / (2.0 * np.sqrt(comb.spring[pi] * comb.mass[pi]))
+            amplitude = _linear_peak(x0[~is_c] - x_eq, v0[~is_c], w, zeta)
+            snapped[~is_c] = x_eq + amplitude >= comb.snap_displacement[pi]
+        self.pulled_in[index[snapped]] = True
+        keep = ~snapped
+        if keep.any():
+            idx = index[keep]
+            x_eq = np.nan_to_num(self._equilibrium_for(idx, eff[keep]), nan=0.0)
+            w, zeta = self._set_linear(idx, eff[keep])
+            self.ringing.restart(idx, t, x0[keep] - x_eq, v0[keep], w, zeta)
+
+    def _equilibrium_for(self, index: I, eff: F) -> F:
+        full = np.zeros(len(self.ids))
+        full[index] = eff
+        return self._equilibrium(full)[index]
+
+    # ---------------------------------------------------------------- faults and optics
+
+    def force_stuck(self, actuator_id: str, t: float) -> None:
+        """Fault injection: the actuator stays where it is now, whatever it is driven with."""
+        i = self.index[actuator_id]
+        self.stuck_at[i] = self.displacement(t)[i]
+        self.stuck[i] = True
+
+    def optical_state(self, t: float) -> tuple[F, F]:
+        """Power coupling and phase of every gate at time ``t``."""
+        x = self.displacement(t)
+        kappa_all = np.zeros(len(self.ids))
+        phase_all = np.zeros(len(self.ids))
+        kappa_all[self.couplers] = self.plate.kappa(x[self.couplers])
+        phase_all[self.phases] = self.comb.phase(x[self.phases], self.params.laser.wavelength_m)
+        return kappa_all[self.gate_coupler], phase_all[self.gate_phase]
+
+    def tap_powers_w(self, t: float) -> F:
+        """Optical power at each monitor tap, in monitor order."""
+        if self.lattice is None:
+            return np.zeros(len(self.monitor_ids))
+        kappa, phase = self.optical_state(t)
+        laser = self.params.laser
+        field = np.zeros(self.lattice.layout.modes, dtype=complex)
+        modes = list(laser.input_modes)
+        field[modes] = np.sqrt(laser.power_w / len(modes))
+        _, taps = self.lattice.propagate(field, kappa, phase, self.gate_loss_amplitude)
+        return taps
+
+    def truth(self, t: float) -> ChipTruth:
+        kappa, phase = self.optical_state(t)
+        return ChipTruth(
+            time_s=t,
+            actuator_ids=self.ids,
+            terminal_volts=self.terminal_volts.copy(),
+            effective_volts=self.effective_volts(t).copy(),
+            displacement_m=self.displacement(t),
+            pulled_in=self.pulled_in.copy(),
+            stuck=self.stuck.copy(),
+            gate_ids=self.gate_ids,
+            kappa=kappa,
+            phase_rad=phase,
+            tap_power_w=self.tap_powers_w(t),
+        )
+
+
+def _plate_force(plate: PlateArrays, ci: I, volts: F, x: F) -> F:
+    return parallel_plate_force(volts, plate.area[ci], plate.electrical_gap[ci], x)
+
+
+def _plate_gradient(plate: PlateArrays, ci: I, volts: F, x: F) -> F:
+    """dF/dx of the plate force, which softens the spring near pull-in."""
+    return np.asarray(epsilon_0 * plate.area[ci] * volts**2 / (plate.electrical_gap[ci] - x) ** 3)
+
+
+def _linear_peak(y0: F, v0: F, w: F, zeta: F) -> F:
+    """Upper bound of the first overshoot above equilibrium: the initial energy amplitude
+    sqrt(y0^2 + (v0/w)^2) (no damping credit; conservative)."""
+    return np.asarray(np.sqrt(y0 * y0 + (v0 / w) ** 2))
