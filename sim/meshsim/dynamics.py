@@ -47,10 +47,9 @@ def first_peak(
     x = np.array(x0, dtype=float)
     v = np.array(v0, dtype=float)
     peak = x.copy()
-    hit = x >= contact
+    # A plate that starts at the contact (just released) has hit nothing unless it moves into it.
+    hit = np.zeros(x.shape, dtype=bool)
     done = hit.copy()
-    if done.all():
-        return peak, hit
     w0 = np.sqrt(spring / mass)
     dt = float(np.min(2.0 * np.pi / w0)) / steps_per_period
     steps = int(max_periods * steps_per_period * float(np.max(w0) / np.min(w0)))
@@ -59,6 +58,7 @@ def first_peak(
         return (force(volts, xx) - damping * vv - spring * xx) / mass
 
     moving_up = v > 0
+    fastest = np.abs(v)
     for _ in range(steps):
         active = ~done
         if not active.any():
@@ -70,10 +70,13 @@ def first_peak(
         x = np.where(active, x + dt / 6.0 * (k1x + 2 * k2x + 2 * k3x + k4x), x)
         v_new = np.where(active, v + dt / 6.0 * (k1v + 2 * k2v + 2 * k3v + k4v), v)
         peak = np.where(active, np.maximum(peak, x), peak)
-        reached = active & (x >= contact)
+        reached = active & (x >= contact) & (v_new >= 0.0)
         hit |= reached
         turned = active & moving_up & (v_new <= 0.0)
-        done |= reached | turned
+        fastest = np.maximum(fastest, np.abs(v_new))
+        # Overdamped motion never turns back: it has stopped once its speed has all but died away.
+        stopped = active & (np.abs(v_new) <= 1e-3 * fastest)
+        done |= reached | turned | stopped
         moving_up |= v_new > 0
         v = v_new
     return peak, hit
@@ -82,8 +85,8 @@ def first_peak(
 class Ringing:
     """The decaying oscillation of each actuator about its equilibrium, evaluated exactly at any time.
 
-    y(t) = e^{-zeta w t} (y0 cos(w_d t) + (v0 + zeta w y0) / w_d sin(w_d t)),  w_d = w sqrt(1 - zeta^2),
-    with complex w_d covering the overdamped case (cos and sin turn into cosh and sinh).
+    Underdamped, this is y(t) = e^{-zeta w t} (y0 cos(w_d t) + (v0 + zeta w y0) / w_d sin(w_d t)),
+    w_d = w sqrt(1 - zeta^2).
     """
 
     def __init__(self, n: int) -> None:
@@ -102,22 +105,25 @@ class Ringing:
         self.zeta[index] = zeta
 
     def state(self, t: float, index: NDArray[np.int64] | slice = slice(None)) -> tuple[F, F]:
-        """Deviation from equilibrium and velocity at time ``t``."""
+        """Deviation from equilibrium and velocity at time ``t``.
+
+        Written as y = c1 e^{s1 t} + c2 e^{s2 t} with the characteristic roots
+        s = -zeta w +- w sqrt(zeta^2 - 1) (complex when underdamped): no term can overflow, since
+        both roots have non-positive real parts, and the overdamped case needs no special branch.
+        """
         tau = np.maximum(t - self.t0[index], 0.0)
         w, z, y0, v0 = self.w[index], self.zeta[index], self.y0[index], self.v0[index]
-        decay_arg = z * w * tau
-        settled = decay_arg > 60.0
+        z = np.where(np.abs(z - 1.0) < 1e-7, 1.0 + 1e-7, z)  # critically damped: nudge off the double root
+        root = w * np.sqrt((z * z - 1.0).astype(complex))
+        s1, s2 = -z * w + root, -z * w - root
+        c1 = (v0 - s2 * y0) / (s1 - s2)
+        c2 = (s1 * y0 - v0) / (s1 - s2)
+        slowest = np.maximum(s1.real, s2.real)
+        settled = slowest * tau < -50.0
         tau = np.where(settled, 0.0, tau)
-        wd = w * np.sqrt((1.0 - z * z).astype(complex))
-        wd = np.where(np.abs(wd) < 1e-9 * w, 1e-9 * w, wd)
-        env = np.exp(-z * w * tau)
-        c, s = np.cos(wd * tau), np.sin(wd * tau)
-        a = y0
-        bcoef = (v0 + z * w * y0) / wd
-        y = env * (a * c + bcoef * s)
-        dy = env * (-z * w * (a * c + bcoef * s) + (-a * wd * s + bcoef * wd * c))
-        y = np.where(settled, 0.0, y.real)
-        dy = np.where(settled, 0.0, dy.real)
+        e1, e2 = np.exp(s1 * tau), np.exp(s2 * tau)
+        y = np.where(settled, 0.0, (c1 * e1 + c2 * e2).real)
+        dy = np.where(settled, 0.0, (c1 * s1 * e1 + c2 * s2 * e2).real)
         return np.asarray(y, dtype=float), np.asarray(dy, dtype=float)
 
     def settled(self, t: float, tolerance: float) -> B:

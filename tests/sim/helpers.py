@@ -1,0 +1,91 @@
+"""Small simulated racks built in code, and a bare protocol client for talking to them.
+
+The client uses only pyserial and the codec - nothing of the daemon - so these tests check the
+simulator on its own, as a lab would check a new board with a terminal program.
+"""
+
+from __future__ import annotations
+
+import time
+from dataclasses import replace
+
+import serial
+
+from meshsim.clock import ManualClock
+from meshsim.params import CouplerDevice, LatticeSpec, PhaseDevice, SimParams, Spread, parse_params
+from meshsim.rack import SimRack
+from meshsim.scenario import ActuatorSpec, BoardSpec, MonitorSpec, Scenario
+from meshwarden.errors import ProtocolError
+from meshwarden.protocol import Frame, FrameDecoder, decode_reply, encode_frame
+from meshwarden.protocol import messages as m
+
+
+def small_scenario() -> Scenario:
+    """One board; gate g0 = coupler c0 on output 0 + phase p0 on output 1; g1 on outputs 2, 3;
+    monitors m0, m1 on the two outputs of a 2-mode, 2-column lattice."""
+    return Scenario(
+        boards=(BoardSpec("b0", address=1, outputs=8, monitor_inputs=4),),
+        actuators=(
+            ActuatorSpec("c0", "coupler", "b0", 0),
+            ActuatorSpec("p0", "phase", "b0", 1),
+            ActuatorSpec("c1", "coupler", "b0", 2),
+            ActuatorSpec("p1", "phase", "b0", 3),
+        ),
+        gates=(("g0", "c0", "p0"), ("g1", "c1", "p1")),
+        monitors=(MonitorSpec("m0", "b0", 0), MonitorSpec("m1", "b0", 1)),
+    )
+
+
+def small_params(**changes: object) -> SimParams:
+    """Nominal demo devices, no fabrication spread, no stiction unless asked."""
+    base = parse_params({"seed": 3})
+    lattice = LatticeSpec(
+        modes=2, columns=((("g0", 0),), (("g1", 0),)), taps=(("m0", 1, 0), ("m1", 1, 1)), tap_fraction=0.01
+    )
+    params = replace(
+        base,
+        spread=Spread(0.0, 0.0, 0.0),
+        lattice=lattice,
+        coupler=replace(CouplerDevice(), stiction_probability=0.0),
+        phase=replace(PhaseDevice(), stiction_probability=0.0),
+    )
+    return replace(params, **changes)  # type: ignore[arg-type]
+
+
+def small_rack(**changes: object) -> tuple[SimRack, ManualClock]:
+    clock = ManualClock()
+    return SimRack(small_scenario(), small_params(**changes), clock), clock
+
+
+class BareClient:
+    """Request/response over any pyserial port, with the protocol codec and nothing else."""
+
+    def __init__(self, port: serial.SerialBase, address: int = 1) -> None:
+        self.port = port
+        self.address = address
+        self.seq = 0
+        self.decoder = FrameDecoder()
+
+    def send_raw(self, data: bytes) -> None:
+        self.port.write(data)
+
+    def receive(self, timeout: float = 2.0) -> Frame | ProtocolError | None:
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            chunk = self.port.read(max(1, self.port.in_waiting))
+            for item in self.decoder.feed(chunk):
+                return item
+        return None
+
+    def request(self, message: m.Message, seq: int | None = None, timeout: float = 2.0) -> m.Message:
+        """Send ``message`` and return the decoded reply to it (skipping NAKs for garbage)."""
+        if seq is None:
+            self.seq = (self.seq + 1) % 256
+            seq = self.seq
+        self.port.write(encode_frame(Frame(self.address, seq, message.CODE, message.pack())))
+        deadline = time.monotonic() + timeout
+        while time.monotonic() < deadline:
+            item = self.receive(max(deadline - time.monotonic(), 0.01))
+            if isinstance(item, Frame) and item.seq == seq:
+                return decode_reply(item.command, item.payload)
+        raise TimeoutError(f"no reply to {type(message).__name__} seq {seq}")
