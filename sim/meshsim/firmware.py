@@ -75,11 +75,13 @@ class SimBoard:
         self.rng = rng
         self.faults = ChannelFaults()
         self.boot_count = 0
+        self.writes_executed = 0  # inspection: how many write commands really ran
         self.crc_errors = 0
         self.framing_errors = 0
         self.decoder = FrameDecoder()
         self.lsb_volts = spec.full_scale_volts / (1 << spec.dac_bits)
         self._boot(0.0)
+        self.booted_at = -BOOT_TIME_S  # the rack was powered before the simulation began
 
     # ------------------------------------------------------------------ life cycle
 
@@ -240,6 +242,7 @@ class SimBoard:
         if self.tripped_at is not None and (new > current).any():
             return m.Nak(0, NakReason.WATCHDOG_TRIPPED)
         self.codes[req.first : req.first + count] = new
+        self.writes_executed += 1
         self._drive(now)
         return m.OutputsReply(req.first, tuple(int(c) for c in self.codes[req.first : req.first + count]))
 

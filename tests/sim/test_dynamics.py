@@ -2,6 +2,7 @@
 
 from __future__ import annotations
 
+import itertools
 import math
 
 import numpy as np
@@ -144,5 +145,5 @@ def test_dynamic_pull_in_rises_toward_static_as_damping_grows() -> None:
     overshoot), and never exceeds the static pull-in voltage."""
     thresholds = [_threshold(q) for q in (None, 10.0, 2.0, 0.7)]
     assert thresholds[0] == pytest.approx(math.sqrt(27 / 32), abs=2e-3)
-    assert all(a < b for a, b in zip(thresholds, thresholds[1:], strict=False))
+    assert all(a < b for a, b in itertools.pairwise(thresholds))
     assert thresholds[-1] <= 1.0 + 1e-3
