@@ -336,7 +336,7 @@ def test_in_process_url_is_exclusive_and_reports_bad_urls(url_rack: SimRack) -> 
             serial.serial_for_url("meshsim://unit/b0")
         with pytest.raises(serial.SerialException, match="no board 'b9'"):
             serial.serial_for_url("meshsim://unit/b9")
-        with pytest.raises(serial.SerialException, match="no simulated rack 'nope'|gives no config"):
+        with pytest.raises(serial.SerialException, match="gives no config"):
             serial.serial_for_url("meshsim://nope/b0")
     finally:
         port.close()
