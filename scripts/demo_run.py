@@ -50,7 +50,9 @@ def main() -> int:
                 port = serial.serial_for_url(url, timeout=1.0, exclusive=True)
                 decoder = FrameDecoder()
 
-                def ask(seq: int, message: m.Message) -> m.Message:
+                def ask(
+                    seq: int, message: m.Message, port: serial.SerialBase = port, decoder: FrameDecoder = decoder
+                ) -> m.Message:
                     port.write(encode_frame(Frame(1, seq, message.CODE, message.pack())))
                     while True:
                         for item in decoder.feed(port.read(1)):
