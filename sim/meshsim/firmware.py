@@ -12,6 +12,7 @@ actuators, read tap powers), so the firmware knows nothing of MEMS or optics.
 
 from __future__ import annotations
 
+from collections import deque
 from collections.abc import Callable
 from dataclasses import dataclass, field
 
@@ -76,6 +77,8 @@ class SimBoard:
         self.faults = ChannelFaults()
         self.boot_count = 0
         self.writes_executed = 0  # inspection: how many write commands really ran
+        # inspection: (sim time, "write" | "zero" | "boot", first channel, codes), newest last
+        self.write_log: deque[tuple[float, str, int, tuple[int, ...]]] = deque(maxlen=200_000)
         self.crc_errors = 0
         self.framing_errors = 0
         self.decoder = FrameDecoder()
@@ -97,6 +100,7 @@ class SimBoard:
         self.flags = StatusFlag.POWER_ON
         self.boot_count += 1
         self.booted_at = now
+        self.write_log.append((now, "boot", 0, ()))
         self.last_request: tuple[int, int, bytes] | None = None
         self.last_reply = b""
         self.decoder.reset()
@@ -243,13 +247,16 @@ class SimBoard:
             return m.Nak(0, NakReason.WATCHDOG_TRIPPED)
         self.codes[req.first : req.first + count] = new
         self.writes_executed += 1
+        self.write_log.append((now, "write", req.first, tuple(int(c) for c in new)))
         self._drive(now)
         return m.OutputsReply(req.first, tuple(int(c) for c in self.codes[req.first : req.first + count]))
 
     def _on_ReadOutputs(self, req: m.ReadOutputs, now: float) -> m.Message:
         if not self._range_ok(req.first, req.count, self.spec.outputs):
             return m.Nak(0, NakReason.BAD_CHANNEL, req.first)
-        return m.OutputsReply(req.first, tuple(int(c) for c in self.codes[req.first : req.first + req.count]))
+        # During a watchdog ramp the outputs are below the latched codes: report what is really out.
+        effective = np.round(self.commanded_volts(now) / self.lsb_volts).astype(np.int64)
+        return m.OutputsReply(req.first, tuple(int(c) for c in effective[req.first : req.first + req.count]))
 
     def _on_ReadSense(self, req: m.ReadSense, now: float) -> m.Message:
         if not self._range_ok(req.first, req.count, self.spec.outputs):
@@ -312,6 +319,7 @@ class SimBoard:
         return m.HeartbeatReply(self._uptime_ms(now), self.boot_count)
 
     def _on_ZeroAll(self, _: m.ZeroAll, now: float) -> m.Message:
+        self.write_log.append((now, "zero", 0, ()))
         self.codes[:] = 0
         self._drive(now)
         return m.Ack()

@@ -9,15 +9,20 @@ on the wire" without knowing the details::
     ├── ConfigError                      config          bad file, bad value, bad reference
     ├── CalibrationError                 calibration     a calibration table that cannot be used
     ├── LinkError                        link            a board cannot be reached or went away
-    │   └── LinkTimeout                  link_timeout    no answer in time
+    │   ├── LinkTimeout                  link_timeout    no answer in time
+    │   └── BoardFaulted                 board_faulted   too many link errors: the board is out
     ├── ProtocolError                    protocol        bytes that do not decode as a frame
     │   ├── FramingError                 framing         COBS or length broken
-    │   └── ChecksumError                checksum        CRC mismatch
+    │   ├── ChecksumError                checksum        CRC mismatch
+    │   └── BoardNakError                board_nak       the board refused a command
+    ├── ReadbackError                    readback        a board latched other codes than written
     └── RefusedError                     refused         a request that would break a safety rule
         ├── LimitRefused                 limit           above a voltage limit
         ├── UnreachableRefused           unreachable     a logical value outside the calibration
         ├── NotArmedRefused              not_armed       outputs may change only while armed
-        └── LeaseRefused                 lease           another client holds the actuator
+        ├── LeaseRefused                 lease           another client holds the actuator
+        ├── UnknownTargetRefused         unknown_target  no actuator, gate or attribute of that name
+        └── FaultedRefused               faulted         a board needed for the request is faulted or unreachable
 
 Foreign exceptions are re-raised ``from`` the original so the cause stays in the log.
 """
@@ -88,6 +93,12 @@ class LinkTimeout(LinkError):
     code = "link_timeout"
 
 
+class BoardFaulted(LinkError):
+    """A board whose link error rate passed its limit; the rack goes to its safe state."""
+
+    code = "board_faulted"
+
+
 class ProtocolError(MeshwardenError):
     """Bytes that do not form a valid frame of the board protocol."""
 
@@ -104,6 +115,18 @@ class ChecksumError(ProtocolError):
     """The frame's CRC does not match its contents."""
 
     code = "checksum"
+
+
+class BoardNakError(ProtocolError):
+    """The board answered with a negative acknowledgement (bad channel, bad value, tripped ...)."""
+
+    code = "board_nak"
+
+
+class ReadbackError(MeshwardenError):
+    """Codes read back from a board differ from what was written: a fault, never retried silently."""
+
+    code = "readback"
 
 
 class RefusedError(MeshwardenError):
@@ -134,3 +157,15 @@ class LeaseRefused(RefusedError):
     """A write to an actuator leased by another client."""
 
     code = "lease"
+
+
+class UnknownTargetRefused(RefusedError):
+    """A request naming an actuator, gate or attribute that does not exist."""
+
+    code = "unknown_target"
+
+
+class FaultedRefused(RefusedError):
+    """A request that needs a board which is faulted, unreachable or waiting to be restored."""
+
+    code = "faulted"

@@ -199,7 +199,7 @@ def test_include_is_resolved_and_located(tmp_path: Path) -> None:
         "boards:\n  - id: b0\n    url: socket://127.0.0.1:9\n    dac_bits: 40\n", encoding="utf-8"
     )
     text = MAIN.replace(MAIN[: MAIN.index("chip:")], "rack: !include rack.yaml\n")
-    assert problems(text, tmp_path) == ["rack.yaml:4: rack.boards[0].dac_bits: 40 is out of range (allowed 8 to 24)"]
+    assert problems(text, tmp_path) == ["rack.yaml:4: rack.boards[0].dac_bits: 40 is out of range (allowed 8 to 16)"]
 
 
 def test_transimpedance_must_be_a_board_gain(tmp_path: Path) -> None:

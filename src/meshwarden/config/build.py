@@ -44,6 +44,7 @@ BOARD_KEYS = (
     "watchdog",
     "timeout_s",
     "retries",
+    "error_rate_limit",
 )
 ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
 ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
@@ -72,7 +73,7 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
         address=s.get("address", f.integer(1, 254), defaults.address),
         outputs=s.get("outputs", f.integer(1, 1024), defaults.outputs),
         monitor_inputs=s.get("monitor_inputs", f.integer(0, 1024), defaults.monitor_inputs),
-        dac_bits=s.get("dac_bits", f.integer(8, 24), defaults.dac_bits),
+        dac_bits=s.get("dac_bits", f.integer(8, 16), defaults.dac_bits),
         full_scale_volts=s.get("full_scale_volts", f.quantity(VOLTS, maximum=1000.0), defaults.full_scale_volts),
         adc_bits=s.get("adc_bits", f.integer(8, 24), defaults.adc_bits),
         monitor_gains_ohms=s.get("monitor_gains_ohms", _gains, defaults.monitor_gains_ohms),
@@ -82,6 +83,7 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
         ),
         timeout_s=s.get("timeout_s", f.quantity(SECONDS, maximum=60.0), defaults.timeout_s),
         retries=s.get("retries", f.integer(0, 10), defaults.retries),
+        error_rate_limit=s.get("error_rate_limit", f.fraction, defaults.error_rate_limit),
     )
     if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
         return None

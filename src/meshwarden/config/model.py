@@ -61,6 +61,7 @@ class BoardConfig:
     watchdog: WatchdogConfig = WatchdogConfig()
     timeout_s: float = 0.5
     retries: int = 3
+    error_rate_limit: float = 0.25
 
 
 @dataclass(frozen=True)

@@ -1,0 +1,538 @@
+"""The controller: the single owner of the rack. Every output change goes through it.
+
+Flow of a ``set``: resolve names -> map logical values to volts (refusing the unreachable) ->
+codes -> guard (hard limits, ramp plan in steps within the step limit and the dynamic check)
+-> journal (targets recorded and synced before any write) -> per-board writes, concurrently
+across boards, each verified against the codes the board reports latched -> state.
+
+State rules (docs/architecture.md): the controller starts disarmed; outputs change only while
+armed, except toward zero; an emergency stop latches, cancels any ramp in progress and queued
+work, zeroes every board first, and holds until an explicit re-arm; on start nothing is written:
+boards still holding the journaled codes are adopted, a board that was reset stays at zero until
+``restore``. Every refusal changes nothing and says why.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+import time
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from meshwarden.calibration import load_calibration
+from meshwarden.config.model import ActuatorConfig, BoardConfig, Config
+from meshwarden.drivers.base import BoardDriver, BoardIdentity
+from meshwarden.drivers.rack import EMERGENCY, Rack
+from meshwarden.errors import (
+    FaultedRefused,
+    LinkError,
+    MeshwardenError,
+    NotArmedRefused,
+    UnknownTargetRefused,
+    UnreachableRefused,
+)
+from meshwarden.guard import ChannelLimit, RampPlan, check_targets, plan_ramp
+from meshwarden.journal import Journal, TargetRecord
+from meshwarden.logsetup import get_logger
+from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
+
+Listener = Callable[[str, dict[str, Any]], None]
+
+
+@dataclass
+class ActuatorState:
+    """What the controller knows of one actuator."""
+
+    config: ActuatorConfig
+    board: BoardConfig
+    map: ActuatorMap
+    limit: ChannelLimit
+    calibration_version: str
+    value: float | None = None  # the logical value last requested (None: set in volts or unknown)
+    last_write: float = -math.inf  # monotonic time of the last write to this channel
+
+
+@dataclass
+class BoardState:
+    config: BoardConfig
+    codes: list[int]  # last codes confirmed latched, every output
+    identity: BoardIdentity | None = None
+    boot_count: int | None = None
+    needs_restore: bool = False
+    faulted: bool = False
+    notes: list[str] = field(default_factory=list)
+
+
+class Controller:
+    """Owns the rack; use :func:`meshwarden.api.open_controller` to get one started."""
+
+    def __init__(
+        self, config: Config, rack: Rack, journal: Journal, monotonic: Callable[[], float] = time.monotonic
+    ) -> None:
+        self.config = config
+        self.rack = rack
+        self.journal = journal
+        self.monotonic = monotonic
+        self.log = get_logger(component="controller")
+        self.armed = False
+        self.estopped = False
+        self._motion = asyncio.Lock()
+        self._heartbeat_task: asyncio.Task[None] | None = None
+        self._last_step_time = -math.inf
+        self.listeners: list[Listener] = []
+        self.boards = {b.id: BoardState(b, [0] * b.outputs) for b in config.rack.boards}
+        self.actuators: dict[str, ActuatorState] = {}
+        for act in config.chip.actuators:
+            board = config.rack.board(act.output.board)
+            table = load_calibration(act.calibration)
+            hard = config.hard_limit_volts(act)
+            lsb = board.full_scale_volts / (1 << board.dac_bits)
+            self.actuators[act.id] = ActuatorState(
+                act,
+                board,
+                ActuatorMap(act.id, act.kind, table, hard),
+                ChannelLimit(
+                    act.id,
+                    act.kind,
+                    lsb,
+                    hard,
+                    act.step_limit_volts,
+                    act.dwell_s,
+                    act.pull_in_volts,
+                    config.safety.pull_in_margin,
+                ),
+                table.version,
+            )
+        self.gates = {g.id: g for g in config.chip.gates}
+
+    # ------------------------------------------------------------------ events
+
+    def _emit(self, kind: str, client: str | None = None, **detail: Any) -> None:
+        self.journal.event(
+            kind,
+            client=client,
+            board=detail.get("board"),
+            actuator=detail.get("actuator"),
+            **{k: v for k, v in detail.items() if k not in ("board", "actuator")},
+        )
+        for listener in list(self.listeners):
+            listener(kind, detail)
+
+    # ------------------------------------------------------------------ start and stop
+
+    async def start(self) -> None:
+        """Open every board, check it is the board the configuration describes, configure its
+        watchdog and monitor gains, and adopt its outputs without writing any."""
+        self.rack.start()
+        journaled = self.journal.latest_targets()
+        boots = self.journal.board_boot_counts()
+        results = await self.rack.each(self._bring_up)
+        for board_id, result in results.items():
+            state = self.boards[board_id]
+            if isinstance(result, BaseException):
+                state.faulted = True
+                self._emit("board_unreachable", board=board_id, error=str(result))
+                self.log.error("board unreachable at start", board=board_id, error=str(result))
+                continue
+            identity, codes, tripped = result
+            state.identity, state.boot_count = identity, identity.boot_count
+            state.codes = list(codes)
+            self._adopt(state, journaled, boots.get(board_id), tripped)
+            self.journal.record_board(board_id, identity.boot_count, identity.serial)
+        for aid, record in journaled.items():
+            if aid in self.actuators:
+                act = self.actuators[aid]
+                if self.boards[act.board.id].codes[act.config.output.index] == record.code:
+                    act.value = record.value
+        self._emit(
+            "start", armed=False, calibration_versions=sorted({a.calibration_version for a in self.actuators.values()})
+        )
+        self._heartbeat_task = asyncio.create_task(self._heartbeat_loop(), name="heartbeat")
+
+    def _bring_up(self, driver: BoardDriver) -> tuple[BoardIdentity, tuple[int, ...], bool]:
+        board = driver.config
+        driver.open()
+        identity = driver.identify()
+        expected = (board.outputs, board.monitor_inputs, board.dac_bits, round(board.full_scale_volts, 3))
+        found = (identity.outputs, identity.monitor_inputs, identity.dac_bits, round(identity.full_scale_volts, 3))
+        if expected != found:
+            raise MeshwardenError(
+                f"board {board.id} reports outputs/inputs/DAC bits/full scale {found}, the configuration says {expected}"
+            )
+        driver.configure_watchdog(board.watchdog.timeout_s, board.watchdog.action)
+        gains = [round(g) for g in board.monitor_gains_ohms]
+        indices = [0] * board.monitor_inputs
+        for mon in self.config.chip.monitors:
+            if mon.input.board == board.id and round(mon.transimpedance_ohms) in gains:
+                indices[mon.input.index] = gains.index(round(mon.transimpedance_ohms))
+        if board.monitor_inputs:
+            driver.set_monitor_gains(0, tuple(indices))
+        tripped = driver.status().watchdog_tripped
+        codes = driver.read_codes(0, board.outputs)
+        return identity, codes, tripped
+
+    def _adopt(
+        self, state: BoardState, journaled: dict[str, TargetRecord], old_boot: int | None, tripped: bool
+    ) -> None:
+        board_id = state.config.id
+        expected = [0] * state.config.outputs
+        for record in journaled.values():
+            if record.board == board_id and record.channel < len(expected):
+                expected[record.channel] = record.code
+        if old_boot is not None and state.boot_count != old_boot:
+            state.needs_restore = any(expected)
+            self._emit("board_reset_detected", board=board_id, old_boot=old_boot, boot=state.boot_count)
+        elif tripped:
+            state.needs_restore = any(expected)
+            self._emit("watchdog_tripped", board=board_id)
+        elif state.codes == expected:
+            self._emit("adopted", board=board_id, channels_on=sum(1 for c in state.codes if c))
+            return
+        else:
+            state.needs_restore = any(expected)
+            differ = [i for i, (a, b) in enumerate(zip(state.codes, expected, strict=True)) if a != b]
+            self._emit("adoption_mismatch", board=board_id, channels=differ[:16])
+        self.log.warning("board not adopted; outputs left as found", board=board_id, needs_restore=state.needs_restore)
+
+    async def close(self) -> None:
+        """Stop background work and the board threads; outputs stay as they are (the boards'
+        watchdogs take over if no daemon comes back; a restarted daemon adopts them)."""
+        if self._heartbeat_task is not None:
+            self._heartbeat_task.cancel()
+            await asyncio.gather(self._heartbeat_task, return_exceptions=True)
+            self._heartbeat_task = None
+        await asyncio.to_thread(self.rack.stop)
+        self._emit("stop")
+
+    # ------------------------------------------------------------------ heartbeat
+
+    def heartbeat_interval_s(self) -> float:
+        return max(0.2, min(min(b.watchdog.timeout_s for b in self.config.rack.boards) / 4.0, 5.0))
+
+    async def _heartbeat_loop(self) -> None:
+        while True:
+            await asyncio.sleep(self.heartbeat_interval_s())
+            await self.heartbeat_once()
+
+    async def heartbeat_once(self) -> None:
+        """Feed every watchdog; notice resets (boot counter) and faulted links."""
+        results = await self.rack.each(lambda d: d.heartbeat())
+        for board_id, result in results.items():
+            state = self.boards[board_id]
+            if isinstance(result, asyncio.CancelledError):
+                continue
+            if isinstance(result, BaseException):
+                self._emit("link_fault", board=board_id, error=str(result))
+                if self.rack.drivers[board_id].faulted and not state.faulted:
+                    state.faulted = True
+                    self._emit("board_faulted", board=board_id)
+                    await self.estop(reason=f"board {board_id} faulted")
+                continue
+            if state.boot_count is not None and result.boot_count != state.boot_count:
+                await self._board_was_reset(state, result.boot_count)
+
+    async def _board_was_reset(self, state: BoardState, boot: int) -> None:
+        board_id = state.config.id
+        old = state.boot_count
+        state.boot_count = boot
+        state.codes = [0] * state.config.outputs
+        state.needs_restore = True
+        for act in self.actuators.values():
+            if act.board.id == board_id:
+                act.value = None
+        self.journal.record_board(board_id, boot, state.identity.serial if state.identity else None)
+        self._emit("board_reset_detected", board=board_id, old_boot=old, boot=boot)
+        self.log.error("board was reset; its outputs are at zero until restore", board=board_id)
+        try:
+            await self.rack.call(
+                board_id, lambda d: d.configure_watchdog(state.config.watchdog.timeout_s, state.config.watchdog.action)
+            )
+        except MeshwardenError as exc:
+            self._emit("link_fault", board=board_id, error=str(exc))
+
+    # ------------------------------------------------------------------ arm, disarm, stop
+
+    async def arm(self, client: str | None = None) -> None:
+        """Allow outputs to change; clears a latched emergency stop and the boards' fault flags."""
+        faulted = [b for b, s in self.boards.items() if s.faulted]
+        if faulted:
+            self._emit("refused", client=client, op="arm", reason="faulted boards", boards=faulted)
+            raise FaultedRefused(f"cannot arm: board(s) {', '.join(faulted)} faulted or unreachable", boards=faulted)
+        results = await self.rack.each(lambda d: d.clear_faults())
+        failed = {b: str(r) for b, r in results.items() if isinstance(r, BaseException)}
+        if failed:
+            raise FaultedRefused(f"cannot arm: {failed}", boards=sorted(failed))
+        self.estopped = False
+        self.armed = True
+        self._emit("arm", client=client)
+
+    async def disarm(self, client: str | None = None) -> None:
+        """Ramp every output to zero within the guard's steps, then stay disarmed."""
+        async with self._motion:
+            targets = {aid: 0 for aid in self.actuators}
+            plan = plan_ramp(self._limits(), self._current_codes(), targets)
+            try:
+                await self._execute(plan, client, allow_disarmed=True)
+            finally:
+                self.armed = False
+                self._emit("disarm", client=client)
+
+    async def estop(self, client: str | None = None, reason: str = "") -> dict[str, str]:
+        """Latch the emergency stop and zero every board now, before any queued work. Never raises."""
+        self.estopped = True
+        self.armed = False
+        results = await self.rack.each(lambda d: d.zero_all(), priority=EMERGENCY)
+        outcome = {}
+        for board_id, result in results.items():
+            if isinstance(result, BaseException):
+                outcome[board_id] = f"not confirmed: {result} (its watchdog will act)"
+            else:
+                self.boards[board_id].codes = [0] * self.boards[board_id].config.outputs
+                outcome[board_id] = "zero"
+        for act in self.actuators.values():
+            if outcome.get(act.board.id) == "zero":
+                act.value = None
+        self._emit("estop", client=client, reason=reason, boards=outcome)
+        self.log.warning("emergency stop", reason=reason, boards=outcome)
+        return outcome
+
+    # ------------------------------------------------------------------ set and restore
+
+    def resolve(self, name: str) -> tuple[str, str | None]:
+        """``c03`` -> (c03, None); ``g05.kappa`` -> (coupler of g05, "kappa"); ``g05.phase`` likewise."""
+        if name in self.actuators:
+            return name, None
+        gate_id, _, attribute = name.partition(".")
+        if gate_id in self.gates and attribute in ("kappa", "phase"):
+            gate = self.gates[gate_id]
+            return (gate.coupler if attribute == "kappa" else gate.phase), attribute
+        raise UnknownTargetRefused(f"unknown target '{name}' (an actuator id, or GATE.kappa / GATE.phase)", target=name)
+
+    def prepare(self, values: dict[str, float], *, volts: bool = False) -> dict[str, tuple[int, float | None]]:
+        """Validate a whole request without touching anything: actuator -> (code, logical value)."""
+        out: dict[str, tuple[int, float | None]] = {}
+        for name, raw in values.items():
+            actuator_id, _ = self.resolve(name)
+            if actuator_id in out:
+                raise UnknownTargetRefused(
+                    f"'{name}' sets actuator {actuator_id} a second time in one request", target=name
+                )
+            if isinstance(raw, bool) or not isinstance(raw, int | float) or not math.isfinite(raw):
+                raise UnreachableRefused(f"{name}: value must be a finite number, got {raw!r}", target=name)
+            act = self.actuators[actuator_id]
+            target_volts = float(raw) if volts else act.map.volts_for(float(raw))
+            code = volts_to_code(target_volts, act.board.full_scale_volts, act.board.dac_bits)
+            if code == act.limit.hard_limit_code + 1 and target_volts <= act.limit.hard_limit_volts:
+                code -= 1  # rounding to the nearest code must not step over the limit
+            check_targets({actuator_id: act.limit}, {actuator_id: code})
+            value = None if volts else float(raw)
+            if volts:
+                try:
+                    value = act.map.value_at(code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits))
+                except MeshwardenError:
+                    value = None
+            out[actuator_id] = (code, value)
+        return out
+
+    async def set(
+        self, values: dict[str, float], *, volts: bool = False, client: str | None = None, request: str | None = None
+    ) -> dict[str, dict[str, Any]]:
+        """Apply a whole request, or refuse it whole before the first write."""
+        try:
+            if self.estopped:
+                raise NotArmedRefused("emergency stop is latched: arm again first")
+            prepared = self.prepare(values, volts=volts)
+            current = self._current_codes()
+            if not self.armed and any(code > current[a] for a, (code, _) in prepared.items()):
+                raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
+            blocked = sorted({self.actuators[a].board.id for a in prepared} & self._unavailable_boards())
+            if blocked:
+                raise FaultedRefused(f"board(s) {', '.join(blocked)} faulted or waiting for restore", boards=blocked)
+        except MeshwardenError as exc:
+            self._emit("refused", client=client, op="set", code=exc.code, reason=exc.message)
+            raise
+        async with self._motion:
+            plan = plan_ramp(self._limits(), self._current_codes(), {a: c for a, (c, _) in prepared.items()})
+            now = time.time()
+            self.journal.record_targets(
+                [self._record(a, code, value, now) for a, (code, value) in prepared.items()], request, client
+            )
+            await self._execute(plan, client, allow_disarmed=not self.armed)
+            for aid, (_, value) in prepared.items():
+                self.actuators[aid].value = value
+        return {aid: self.describe(aid) for aid in prepared}
+
+    def _record(self, actuator_id: str, code: int, value: float | None, ts: float) -> TargetRecord:
+        act = self.actuators[actuator_id]
+        return TargetRecord(
+            actuator_id,
+            act.board.id,
+            act.config.output.index,
+            code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits),
+            code,
+            value,
+            act.calibration_version,
+            ts,
+        )
+
+    async def restore(self, client: str | None = None) -> dict[str, dict[str, Any]]:
+        """Ramp boards that were reset (or tripped) back to their journaled targets; needs arming."""
+        if not self.armed:
+            raise NotArmedRefused("restore needs the daemon armed")
+        waiting = [b for b, s in self.boards.items() if s.needs_restore and not s.faulted]
+        journaled = self.journal.latest_targets()
+        targets = {a: r for a, r in journaled.items() if a in self.actuators and self.actuators[a].board.id in waiting}
+        async with self._motion:
+            plan = plan_ramp(self._limits(), self._current_codes(), {a: r.code for a, r in targets.items()})
+            await self._execute(plan, client, allow_disarmed=False)
+            for aid, record in targets.items():
+                self.actuators[aid].value = record.value
+            for b in waiting:
+                self.boards[b].needs_restore = False
+        self._emit("restore", client=client, boards=waiting)
+        return {aid: self.describe(aid) for aid in targets}
+
+    # ------------------------------------------------------------------ plan execution
+
+    def _limits(self) -> dict[str, ChannelLimit]:
+        return {aid: a.limit for aid, a in self.actuators.items()}
+
+    def _current_codes(self) -> dict[str, int]:
+        return {aid: self.boards[a.board.id].codes[a.config.output.index] for aid, a in self.actuators.items()}
+
+    def _unavailable_boards(self) -> set[str]:
+        return {b for b, s in self.boards.items() if s.faulted or s.needs_restore}
+
+    async def _execute(self, plan: RampPlan, client: str | None, allow_disarmed: bool) -> None:
+        """Write the plan's steps, waiting each step's dwell; stop at an emergency stop."""
+        for index, step in enumerate(plan.steps):
+            moving = list(step.codes)
+            ready_at = max(self.actuators[a].last_write + self.actuators[a].limit.dwell_s for a in moving)
+            if index > 0:
+                ready_at = max(ready_at, self._last_step_time + step.dwell_before_s)
+            delay = ready_at - self.monotonic()
+            if delay > 0:
+                await asyncio.sleep(delay)
+            if self.estopped or (not self.armed and not allow_disarmed):
+                raise NotArmedRefused("stopped: emergency stop or disarm during the ramp")
+            await self._write_step(step.codes, client)
+            self._last_step_time = self.monotonic()
+
+    async def _write_step(self, codes: dict[str, int], client: str | None) -> None:
+        by_board: dict[str, dict[int, int]] = {}
+        for aid, code in codes.items():
+            act = self.actuators[aid]
+            by_board.setdefault(act.board.id, {})[act.config.output.index] = code
+        batches = {}
+        for board_id, channels in by_board.items():
+            first, last = min(channels), max(channels)
+            span = list(self.boards[board_id].codes[first : last + 1])
+            for ch, code in channels.items():
+                span[ch - first] = code
+            batches[board_id] = (first, tuple(span))
+        results = await asyncio.gather(
+            *(self.rack.call(b, lambda d, batch=batch: d.write_codes(*batch)) for b, batch in batches.items()),
+            return_exceptions=True,
+        )
+        now = self.monotonic()
+        errors = []
+        for (board_id, (first, span)), result in zip(batches.items(), results, strict=True):
+            if isinstance(result, BaseException):
+                errors.append((board_id, result))
+                continue
+            self.boards[board_id].codes[first : first + len(span)] = list(span)
+        for aid in codes:
+            if self.actuators[aid].board.id not in {b for b, _ in errors}:
+                self.actuators[aid].last_write = now
+        if errors:
+            for board_id, exc in errors:
+                self._emit(
+                    "write_failed", client=client, board=board_id, error=str(exc), code=getattr(exc, "code", "error")
+                )
+            board_id, exc = errors[0]
+            if isinstance(exc, MeshwardenError):
+                raise exc
+            if isinstance(exc, asyncio.CancelledError):
+                raise NotArmedRefused("stopped by an emergency stop")
+            raise LinkError(f"board {board_id}: {exc}") from exc
+
+    # ------------------------------------------------------------------ reading
+
+    def describe(self, actuator_id: str) -> dict[str, Any]:
+        act = self.actuators[actuator_id]
+        code = self.boards[act.board.id].codes[act.config.output.index]
+        return {
+            "kind": act.config.kind,
+            "board": act.board.id,
+            "channel": act.config.output.index,
+            "volts": code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits),
+            "code": code,
+            "limit_v": act.limit.hard_limit_volts,
+            "value": act.value,
+        }
+
+    def snapshot(self) -> dict[str, Any]:
+        """The state as ``get --json`` reports it."""
+        return {
+            "armed": self.armed,
+            "estopped": self.estopped,
+            "boards": {
+                b: {
+                    "boot_count": s.boot_count,
+                    "needs_restore": s.needs_restore,
+                    "faulted": s.faulted,
+                    "error_rate": round(self.rack.drivers[b].error_rate, 4),
+                }
+                for b, s in self.boards.items()
+            },
+            "actuators": {aid: self.describe(aid) for aid in self.actuators},
+        }
+
+    async def read_monitors(self, average: int = 1, integration_s: float = 1e-3) -> dict[str, dict[str, float]]:
+        """Every monitor in amps (photocurrent), watts (optical, by responsivity) and mean ADC counts."""
+        by_board: dict[str, list[Any]] = {}
+        for mon in self.config.chip.monitors:
+            by_board.setdefault(mon.input.board, []).append(mon)
+        sums: dict[str, float] = {m.id: 0.0 for m in self.config.chip.monitors}
+        for _ in range(max(1, average)):
+            calls = {}
+            for board_id, monitors in by_board.items():
+                first = min(m.input.index for m in monitors)
+                last = max(m.input.index for m in monitors)
+                calls[board_id] = (first, last - first + 1)
+            results = await asyncio.gather(
+                *(
+                    self.rack.call(b, lambda d, c=c: d.read_monitor_counts(c[0], c[1], integration_s))
+                    for b, c in calls.items()
+                )
+            )
+            for (board_id, (first, _)), counts in zip(calls.items(), results, strict=True):
+                for mon in by_board[board_id]:
+                    sums[mon.id] += counts[mon.input.index - first]
+        out = {}
+        for mon in self.config.chip.monitors:
+            board = self.config.rack.board(mon.input.board)
+            identity = self.boards[board.id].identity
+            full_scale = identity.adc_full_scale_volts if identity else 2.5
+            counts = sums[mon.id] / max(1, average)
+            volts = counts / (1 << board.adc_bits) * full_scale
+            amps = volts / mon.transimpedance_ohms
+            out[mon.id] = {"amps": amps, "watts": amps / mon.responsivity_a_per_w, "counts": counts}
+        return out
+
+    async def read_sense(self) -> dict[str, float]:
+        """The boards' own measurement of every wired output, in volts."""
+        results = await self.rack.each(lambda d: d.read_sense_volts(0, d.config.outputs))
+        out = {}
+        for aid, act in self.actuators.items():
+            result = results[act.board.id]
+            if not isinstance(result, BaseException):
+                out[aid] = result[act.config.output.index]
+        return out
+
+    async def run_exclusive(self, work: Callable[[], Awaitable[Any]]) -> Any:
+        """Run ``work`` while no ramp is in progress (for jobs that need the rack to themselves)."""
+        async with self._motion:
+            return await work()
