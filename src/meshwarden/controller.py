@@ -159,7 +159,8 @@ class Controller:
         found = (identity.outputs, identity.monitor_inputs, identity.dac_bits, round(identity.full_scale_volts, 3))
         if expected != found:
             raise MeshwardenError(
-                f"board {board.id} reports outputs/inputs/DAC bits/full scale {found}, the configuration says {expected}"
+                f"board {board.id} reports outputs/inputs/DAC bits/full scale {found}, "
+                f"the configuration says {expected}"
             )
         driver.configure_watchdog(board.watchdog.timeout_s, board.watchdog.action)
         gains = [round(g) for g in board.monitor_gains_ohms]
@@ -402,8 +403,8 @@ class Controller:
     def _current_codes(self) -> dict[str, int]:
         return {aid: self.boards[a.board.id].codes[a.config.output.index] for aid, a in self.actuators.items()}
 
-    def _unavailable_boards(self) -> set[str]:
-        return {b for b, s in self.boards.items() if s.faulted or s.needs_restore}
+    def _unavailable_boards(self) -> frozenset[str]:
+        return frozenset(b for b, s in self.boards.items() if s.faulted or s.needs_restore)
 
     async def _execute(self, plan: RampPlan, client: str | None, allow_disarmed: bool) -> None:
         """Write the plan's steps, waiting each step's dwell; stop at an emergency stop."""
@@ -425,15 +426,15 @@ class Controller:
         for aid, code in codes.items():
             act = self.actuators[aid]
             by_board.setdefault(act.board.id, {})[act.config.output.index] = code
-        batches = {}
+        batches: dict[str, tuple[int, tuple[int, ...]]] = {}
         for board_id, channels in by_board.items():
             first, last = min(channels), max(channels)
-            span = list(self.boards[board_id].codes[first : last + 1])
+            block = list(self.boards[board_id].codes[first : last + 1])
             for ch, code in channels.items():
-                span[ch - first] = code
-            batches[board_id] = (first, tuple(span))
+                block[ch - first] = code
+            batches[board_id] = (first, tuple(block))
         results = await asyncio.gather(
-            *(self.rack.call(b, lambda d, batch=batch: d.write_codes(*batch)) for b, batch in batches.items()),
+            *(self.rack.call(b, _writer(*batch)) for b, batch in batches.items()),
             return_exceptions=True,
         )
         now = self.monotonic()
@@ -497,21 +498,18 @@ class Controller:
             by_board.setdefault(mon.input.board, []).append(mon)
         sums: dict[str, float] = {m.id: 0.0 for m in self.config.chip.monitors}
         for _ in range(max(1, average)):
-            calls = {}
+            calls: dict[str, tuple[int, int]] = {}
             for board_id, monitors in by_board.items():
                 first = min(m.input.index for m in monitors)
                 last = max(m.input.index for m in monitors)
                 calls[board_id] = (first, last - first + 1)
             results = await asyncio.gather(
-                *(
-                    self.rack.call(b, lambda d, c=c: d.read_monitor_counts(c[0], c[1], integration_s))
-                    for b, c in calls.items()
-                )
+                *(self.rack.call(b, _monitor_reader(c[0], c[1], integration_s)) for b, c in calls.items())
             )
-            for (board_id, (first, _)), counts in zip(calls.items(), results, strict=True):
+            for (board_id, (first, _)), board_counts in zip(calls.items(), results, strict=True):
                 for mon in by_board[board_id]:
-                    sums[mon.id] += counts[mon.input.index - first]
-        out = {}
+                    sums[mon.id] += board_counts[mon.input.index - first]
+        out: dict[str, dict[str, float]] = {}
         for mon in self.config.chip.monitors:
             board = self.config.rack.board(mon.input.board)
             identity = self.boards[board.id].identity
@@ -536,3 +534,11 @@ class Controller:
         """Run ``work`` while no ramp is in progress (for jobs that need the rack to themselves)."""
         async with self._motion:
             return await work()
+
+
+def _writer(first: int, codes: tuple[int, ...]) -> Callable[[BoardDriver], tuple[int, ...]]:
+    return lambda driver: driver.write_codes(first, codes)
+
+
+def _monitor_reader(first: int, count: int, integration_s: float) -> Callable[[BoardDriver], tuple[int, ...]]:
+    return lambda driver: driver.read_monitor_counts(first, count, integration_s)

@@ -46,11 +46,11 @@ class ChannelLimit:
 
     @property
     def hard_limit_code(self) -> int:
-        return int(math.floor(self.hard_limit_volts / self.lsb_volts + 1e-9))
+        return math.floor(self.hard_limit_volts / self.lsb_volts + 1e-9)
 
     @property
     def step_limit_code(self) -> int:
-        return max(1, int(math.floor(self.step_limit_volts / self.lsb_volts + 1e-9)))
+        return max(1, math.floor(self.step_limit_volts / self.lsb_volts + 1e-9))
 
 
 @dataclass(frozen=True)

@@ -30,7 +30,7 @@ TWO_PI = 2.0 * math.pi
 
 def volts_to_code(volts: float, full_scale_volts: float, bits: int) -> int:
     """Nearest DAC code to ``volts`` (halves round up); volts outside [0, FS) are the guard's job."""
-    return int(math.floor(volts * (1 << bits) / full_scale_volts + 0.5))
+    return math.floor(volts * (1 << bits) / full_scale_volts + 0.5)
 
 
 def code_to_volts(code: int, full_scale_volts: float, bits: int) -> float:

@@ -20,6 +20,7 @@ board uses when it cannot read the frame's own).
 
 from __future__ import annotations
 
+import contextlib
 import time
 
 import serial
@@ -61,10 +62,8 @@ class ReferenceDriver(BoardDriver):
 
     def _close_link(self) -> None:
         if self.port is not None:
-            try:
+            with contextlib.suppress(serial.SerialException, OSError):
                 self.port.close()
-            except (serial.SerialException, OSError):
-                pass
             self.port = None
 
     def _reconnect(self) -> bool:
