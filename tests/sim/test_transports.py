@@ -23,7 +23,10 @@ from tests.conftest import DEMO_CONFIG
 from tests.sim.helpers import BareClient
 
 
-def start_server(tmp_path: Path, transport: str, *extra: str) -> tuple[subprocess.Popen[str], dict[str, str]]:
+def start_server(
+    tmp_path: Path, transport: str, *extra: str, config: Path = DEMO_CONFIG
+) -> tuple[subprocess.Popen[str], dict[str, str]]:
+    """Start `meshsim serve` in its own process; return it and its ports once they are ready."""
     ports_file = tmp_path / "ports.json"
     proc = subprocess.Popen(
         [
@@ -32,7 +35,7 @@ def start_server(tmp_path: Path, transport: str, *extra: str) -> tuple[subproces
             "meshsim.cli",
             "serve",
             "--config",
-            str(DEMO_CONFIG),
+            str(config),
             "--transport",
             transport,
             "--ports-file",

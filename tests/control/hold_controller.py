@@ -1,0 +1,25 @@
+"""Helper process for the kill -9 test: arm, set targets, report, then keep running until killed."""
+
+from __future__ import annotations
+
+import asyncio
+import json
+import sys
+
+from meshwarden.api import open_controller
+from meshwarden.config import load_config
+from meshwarden.logsetup import configure_logging
+
+
+async def main(config_path: str, ports_json: str) -> None:
+    async with open_controller(load_config(config_path), json.loads(ports_json)) as ctl:
+        await ctl.arm()
+        applied = await ctl.set({"c0": 21.0, "p0": 13.0, "c1": 7.0}, volts=True)
+        print("READY " + json.dumps({a: r["code"] for a, r in applied.items()}), flush=True)
+        while True:
+            await asyncio.sleep(1.0)
+
+
+if __name__ == "__main__":
+    configure_logging("json", stream=sys.stderr)
+    asyncio.run(main(sys.argv[1], sys.argv[2]))
