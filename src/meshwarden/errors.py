@@ -169,3 +169,23 @@ class FaultedRefused(RefusedError):
     """A request that needs a board which is faulted, unreachable or waiting to be restored."""
 
     code = "faulted"
+
+
+class BusError(MeshwardenError):
+    """A message on the bus that cannot be taken as a request; ``code`` says which rule it broke."""
+
+    def __init__(self, code: str, message: str, **details: object) -> None:
+        super().__init__(message, **details)
+        self.code = code
+
+
+class ForbiddenRefused(RefusedError):
+    """A request beyond the role of the client's key (observer < operator < admin)."""
+
+    code = "forbidden"
+
+
+class UnreachableError(MeshwardenError):
+    """The daemon did not answer within timeout x (retries + 1)."""
+
+    code = "unreachable"

@@ -1,0 +1,216 @@
+"""`meshwarden.Client`: the Python API for experiment scripts and notebooks.
+
+    from meshwarden.client import Client
+
+    with Client("tcp://127.0.0.1:7640") as mw:
+        mw.arm()
+        mw.set({"g05.kappa": 0.5, "g05.phase": 1.2})
+        print(mw.monitors(average=4)["m07"]["watts"])
+        for topic, message in mw.subscribe(["event"], timeout_s=5):
+            ...
+
+A DEALER socket (a REQ socket locks up after one lost reply). Every request carries this
+client's id and a fresh request id; after a timeout the same request is sent again, and the
+daemon answers a repeat from its cache, so a command is never applied twice. A daemon that does
+not answer is reported as :class:`~meshwarden.errors.UnreachableError` after
+``timeout_s x (retries + 1)``; the next call tries again, so the client works once the daemon
+is back. Refusals raise the matching :class:`~meshwarden.errors.MeshwardenError` subclass.
+"""
+
+from __future__ import annotations
+
+import itertools
+import json
+import time
+import uuid
+from collections.abc import Iterator
+from pathlib import Path
+from typing import Any
+
+import zmq
+import zmq.auth
+
+from meshwarden import errors
+from meshwarden.errors import MeshwardenError, UnreachableError
+
+LONG_OPS = {"set", "disarm", "restore"}
+
+
+def _error_classes() -> dict[str, type[MeshwardenError]]:
+    out: dict[str, type[MeshwardenError]] = {}
+    for value in vars(errors).values():
+        if isinstance(value, type) and issubclass(value, MeshwardenError) and isinstance(value.code, str):
+            out.setdefault(value.code, value)
+    return out
+
+
+_BY_CODE = _error_classes()
+
+
+def error_from_reply(error: dict[str, Any]) -> MeshwardenError:
+    """The exception a reply's error object stands for (a plain MeshwardenError if unknown)."""
+    code = str(error.get("code", "error"))
+    message = str(error.get("message", ""))
+    details = error.get("details") or {}
+    cls = _BY_CODE.get(code)
+    if cls is None or cls in (errors.ConfigError, errors.BusError):
+        exc = MeshwardenError(message, **details)
+        exc.code = code
+        return exc
+    return cls(message, **details)
+
+
+class Client:
+    """A connection to one daemon. Not thread-safe; use one per thread."""
+
+    def __init__(self, endpoint: str = "tcp://127.0.0.1:7640", telemetry: str | None = None, *,
+                 timeout_s: float = 2.0, retries: int = 2, ramp_timeout_s: float = 120.0,
+                 client_id: str | None = None, key_file: str | Path | None = None,
+                 server_key_file: str | Path | None = None) -> None:
+        self.endpoint = endpoint
+        self.telemetry_endpoint = telemetry or _next_port(endpoint)
+        self.timeout_s = timeout_s
+        self.retries = retries
+        self.ramp_timeout_s = ramp_timeout_s
+        self.client_id = client_id or f"c-{uuid.uuid4().hex[:12]}"
+        self._ids = itertools.count(1)
+        self._context: zmq.Context[zmq.Socket[bytes]] = zmq.Context.instance()
+        self._curve: tuple[bytes, bytes, bytes] | None = None
+        if key_file is not None and server_key_file is not None:
+            public, secret = zmq.auth.load_certificate(str(key_file))
+            server_public, _ = zmq.auth.load_certificate(str(server_key_file))
+            if secret is None:
+                raise MeshwardenError(f"{key_file} holds no secret key")
+            self._curve = (public, secret, server_public)
+        self._socket = self._new_socket(zmq.DEALER, endpoint)
+
+    def _new_socket(self, kind: int, endpoint: str) -> zmq.Socket[bytes]:
+        sock: zmq.Socket[bytes] = self._context.socket(kind)
+        sock.setsockopt(zmq.LINGER, 0)
+        if self._curve is not None:
+            sock.curve_publickey, sock.curve_secretkey, sock.curve_serverkey = self._curve
+        sock.connect(endpoint)
+        return sock
+
+    # ------------------------------------------------------------------ life cycle
+
+    def close(self) -> None:
+        self._socket.close(0)
+
+    def __enter__(self) -> Client:
+        return self
+
+    def __exit__(self, *exc: object) -> None:
+        self.close()
+
+    # ------------------------------------------------------------------ requests
+
+    def request(self, op: str, **args: Any) -> Any:
+        """Send one operation and return its result; raises on refusal or when unreachable."""
+        request_id = f"{next(self._ids)}-{uuid.uuid4().hex[:8]}"
+        message = json.dumps({"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args},
+                             allow_nan=False).encode()
+        long_op = op in LONG_OPS and args.get("wait", True)
+        timeout = max(self.timeout_s, self.ramp_timeout_s) if long_op else self.timeout_s
+        for _attempt in range(self.retries + 1):
+            self._socket.send(message)
+            deadline = time.monotonic() + timeout
+            while (left := deadline - time.monotonic()) > 0:
+                if not self._socket.poll(int(left * 1000) + 1):
+                    break
+                reply = json.loads(self._socket.recv())
+                if reply.get("id") != request_id:
+                    continue  # a late reply to an earlier, abandoned request
+                if reply.get("ok"):
+                    return reply.get("result")
+                raise error_from_reply(reply.get("error") or {})
+        raise UnreachableError(f"no reply from {self.endpoint} within {timeout:g} s x {self.retries + 1} tries",
+                               endpoint=self.endpoint)
+
+    def status(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("status")
+        return result
+
+    def get(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("get")
+        return result
+
+    def snapshot(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("snapshot")
+        return result
+
+    def arm(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("arm")
+        return result
+
+    def disarm(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("disarm")
+        return result
+
+    def estop(self, reason: str = "") -> dict[str, str]:
+        result: dict[str, str] = self.request("estop", reason=reason)
+        return result
+
+    def restore(self) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("restore")
+        return result
+
+    def set(self, values: dict[str, float], *, volts: bool = False, wait: bool = True) -> dict[str, Any]:
+        """Set actuators (``c03``) or gate attributes (``g05.kappa``, ``g05.phase``); logical
+        values by default, volts with ``volts=True``. Returns what was applied."""
+        result: dict[str, Any] = self.request("set", values=values, volts=volts, wait=wait)
+        return result
+
+    def monitors(self, average: int = 1, integration_s: float = 1e-3) -> dict[str, dict[str, float]]:
+        result: dict[str, dict[str, float]] = self.request("monitors", average=average, integration_s=integration_s)
+        return result
+
+    def events(self, since: int = 0, limit: int = 100) -> list[dict[str, Any]]:
+        result: list[dict[str, Any]] = self.request("events", since=since, limit=limit)
+        return result
+
+    def lease(self, targets: list[str], ttl_s: float = 30.0) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("lease", targets=targets, ttl_s=ttl_s)
+        return result
+
+    def release(self, targets: list[str]) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("release", targets=targets)
+        return result
+
+    def cancel(self, job: str) -> dict[str, Any]:
+        result: dict[str, Any] = self.request("cancel", job=job)
+        return result
+
+    def jobs(self) -> list[dict[str, Any]]:
+        result: list[dict[str, Any]] = self.request("jobs")
+        return result
+
+    # ------------------------------------------------------------------ telemetry
+
+    def subscribe(self, topics: list[str] | None = None, timeout_s: float | None = None
+                  ) -> Iterator[tuple[str, dict[str, Any]]]:
+        """Telemetry messages as (topic, message), in order; a gap in ``seq`` is reported as a
+        ``("gap", {"missed": n})`` item. Ends after ``timeout_s`` without a message."""
+        sub = self._new_socket(zmq.SUB, self.telemetry_endpoint)
+        for topic in topics or [""]:
+            sub.setsockopt(zmq.SUBSCRIBE, topic.encode())
+        last_seq: int | None = None
+        try:
+            while sub.poll(None if timeout_s is None else int(timeout_s * 1000)):
+                raw_topic, body = sub.recv_multipart()
+                message = json.loads(body)
+                seq = int(message.get("seq", 0))
+                if last_seq is not None and topics is None and seq > last_seq + 1:
+                    yield "gap", {"missed": seq - last_seq - 1}
+                last_seq = seq
+                yield raw_topic.decode(), message
+        finally:
+            sub.close(0)
+
+
+def _next_port(endpoint: str) -> str:
+    """The telemetry endpoint by convention: the command port + 1."""
+    if endpoint.startswith("tcp://") and endpoint.rsplit(":", 1)[-1].isdigit():
+        host, port = endpoint.rsplit(":", 1)
+        return f"{host}:{int(port) + 1}"
+    return endpoint + ".pub"

@@ -1,0 +1,1 @@
+"""The daemon on the message bus: request schema, dispatch, leases, jobs, telemetry, sockets."""

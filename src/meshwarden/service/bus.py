@@ -1,0 +1,242 @@
+"""The sockets: a ROUTER for commands, a PUB for telemetry, CURVE when beyond loopback.
+
+Per message: frame count and size caps, then the schema, then the role of the sender's key,
+then dispatch in its own task (so a slow ramp never blocks status or estop). Replies are cached
+per client and request id: a client that resends after losing a reply gets the cached reply (or
+waits for the one still being computed) and the command is never applied twice. The ROUTER is
+``ROUTER_MANDATORY``: a reply to a client that has gone raises instead of vanishing, and is
+journaled as undeliverable.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import contextlib
+import time
+from collections import OrderedDict
+from pathlib import Path
+from typing import Any
+
+import zmq
+import zmq.asyncio
+import zmq.auth
+from zmq.auth.asyncio import AsyncioAuthenticator
+
+from meshwarden.config.model import Config
+from meshwarden.controller import Controller
+from meshwarden.errors import BusError, ConfigError, ConfigIssue, MeshwardenError
+from meshwarden.logsetup import get_logger
+from meshwarden.service.handlers import Dispatcher
+from meshwarden.service.schema import Request, best_effort_id, parse_request, reply_error, reply_ok
+from meshwarden.service.telemetry import Telemetry
+
+MAX_FRAMES = 3
+CACHE_PER_CLIENT = 256
+CACHE_CLIENTS = 1024
+
+
+def load_allow_list(config: Config) -> dict[bytes, tuple[str, str]]:
+    """z85 public key -> (client name, role), from the key files the configuration names."""
+    allowed: dict[bytes, tuple[str, str]] = {}
+    for client in config.service.clients:
+        try:
+            public, _ = zmq.auth.load_certificate(str(client.public_key_file))
+        except (OSError, ValueError) as exc:
+            raise ConfigError([ConfigIssue(str(client.public_key_file), 0, "service.clients",
+                                           f"cannot read the public key of '{client.name}': {exc}")]) from None
+        allowed[public] = (client.name, client.role)
+    return allowed
+
+
+class _KeyRoles:
+    """ZAP credentials provider: only keys on the allow-list get in."""
+
+    def __init__(self, allowed: dict[bytes, tuple[str, str]]) -> None:
+        self.allowed = allowed
+
+    def callback(self, domain: str, key: bytes) -> bool:
+        return key in self.allowed
+
+
+class Bus:
+    """Owns the two sockets and serves requests until :meth:`close`."""
+
+    def __init__(self, controller: Controller, config: Config, bind: str | None = None, pub: str | None = None) -> None:
+        self.controller = controller
+        self.config = config
+        self.bind_endpoint = bind or config.service.bind
+        self.pub_endpoint = pub or config.service.pub
+        self.max_bytes = config.service.max_message_bytes
+        self.log = get_logger(component="bus")
+        self.context = zmq.asyncio.Context()
+        self.auth: AsyncioAuthenticator | None = None
+        self.roles = _KeyRoles({})
+        self.curve = config.service.server_secret_key_file is not None
+        self.router = self.context.socket(zmq.ROUTER)
+        self.publisher = self.context.socket(zmq.PUB)
+        self.telemetry = Telemetry(self.publisher)
+        self.dispatcher = Dispatcher(controller, self.telemetry)
+        self._cache: OrderedDict[str, OrderedDict[str, asyncio.Future[bytes]]] = OrderedDict()
+        self._tasks: set[asyncio.Task[Any]] = set()
+        self._serve_task: asyncio.Task[None] | None = None
+        self._ticker: asyncio.Task[None] | None = None
+
+    # ------------------------------------------------------------------ setup
+
+    def start(self) -> None:
+        if self.curve:
+            assert self.config.service.server_secret_key_file is not None
+            public, secret = zmq.auth.load_certificate(str(self.config.service.server_secret_key_file))
+            if secret is None:
+                raise ConfigError([ConfigIssue(str(self.config.service.server_secret_key_file), 0,
+                                               "service.server_secret_key_file", "this file holds no secret key")])
+            self.roles.allowed = load_allow_list(self.config)
+            self.auth = AsyncioAuthenticator(self.context)
+            self.auth.start()
+            self.auth.configure_curve_callback(domain="*", credentials_provider=self.roles)
+            for sock in (self.router, self.publisher):
+                sock.curve_secretkey = secret
+                sock.curve_publickey = public
+                sock.curve_server = True
+        self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)
+        self.router.setsockopt(zmq.MAXMSGSIZE, max(self.max_bytes * 4, 65536))
+        self.router.setsockopt(zmq.LINGER, 0)
+        self.publisher.setsockopt(zmq.LINGER, 0)
+        self.publisher.setsockopt(zmq.SNDHWM, 10000)
+        self.router.bind(self.bind_endpoint)
+        self.publisher.bind(self.pub_endpoint)
+        self.bound = str(self.router.getsockopt_string(zmq.LAST_ENDPOINT))
+        self.pub_bound = str(self.publisher.getsockopt_string(zmq.LAST_ENDPOINT))
+        self._serve_task = asyncio.create_task(self._serve(), name="bus")
+        self._ticker = asyncio.create_task(self._tick(), name="telemetry")
+        self.log.info("bus ready", commands=self.bound, telemetry=self.pub_bound, curve=self.curve)
+
+    def reload_keys(self) -> int:
+        """Re-read the allow-list from the configuration file; returns how many keys are allowed."""
+        if not self.curve or self.config.source is None:
+            return 0
+        from meshwarden.config import load_config
+
+        fresh = load_config(self.config.source)
+        self.roles.allowed = load_allow_list(fresh)
+        self.controller.journal.event("keys_reloaded", count=len(self.roles.allowed))
+        return len(self.roles.allowed)
+
+    async def close(self) -> None:
+        self.telemetry.close()
+        if self.dispatcher._on_event in self.controller.listeners:
+            self.controller.listeners.remove(self.dispatcher._on_event)
+        for task in (self._serve_task, self._ticker, *self._tasks):
+            if task is not None:
+                task.cancel()
+        await asyncio.gather(*(t for t in (self._serve_task, self._ticker, *self._tasks) if t is not None),
+                             return_exceptions=True)
+        self.router.close(0)
+        self.publisher.close(0)
+        if self.auth is not None:
+            self.auth.stop()
+        self.context.term()
+
+    # ------------------------------------------------------------------ serving
+
+    async def _serve(self) -> None:
+        while True:
+            frames = await self.router.recv_multipart(copy=False)
+            identity = frames[0].bytes
+            user = ""
+            with contextlib.suppress(zmq.ZMQError, KeyError):
+                user = str(frames[-1].get("User-Id") or "")
+            body_frames = [f.bytes for f in frames[1:]]
+            if len(body_frames) == 2 and body_frames[0] == b"":
+                body_frames = body_frames[1:]  # a REQ-style envelope
+            task = asyncio.create_task(self._one(identity, body_frames, user))
+            self._tasks.add(task)
+            task.add_done_callback(self._tasks.discard)
+
+    def _role(self, user: str) -> tuple[str, str]:
+        """(name, role) of the sender; on loopback without CURVE every client is admin."""
+        if not self.curve:
+            return "local", "admin"
+        entry = self.roles.allowed.get(user.encode())
+        if entry is None:  # revoked after connecting
+            return "revoked", "none"
+        return entry
+
+    async def _one(self, identity: bytes, body_frames: list[bytes], user: str) -> None:
+        name, role = self._role(user)
+        request_id: str | None = None
+        try:
+            if len(body_frames) != 1:
+                raise BusError("too_many_frames", f"a request is one frame, got {len(body_frames)}")
+            data = body_frames[0]
+            if len(data) > self.max_bytes:
+                raise BusError("too_large", f"message of {len(data)} bytes exceeds the {self.max_bytes}-byte cap")
+            request_id = best_effort_id(data)
+            if role == "none":
+                raise BusError("forbidden", "this client's key is no longer on the allow-list")
+            request = parse_request(data)
+            reply = await self._cached(request, role, name)
+        except MeshwardenError as exc:
+            if role != "none":
+                self.controller.journal.event("command", client=name, op="?", ok=False, code=exc.code)
+            reply = reply_error(request_id, exc)
+        except Exception as exc:  # last line: the daemon stays up and says so
+            self.log.exception("internal error while serving a request")
+            reply = reply_error(request_id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
+        try:
+            await self.router.send_multipart([identity, reply])
+        except zmq.ZMQError as exc:
+            self.controller.journal.event("reply_undeliverable", client=name, error=str(exc))
+
+    async def _cached(self, request: Request, role: str, name: str) -> bytes:
+        per_client = self._cache.setdefault(request.client, OrderedDict())
+        self._cache.move_to_end(request.client)
+        while len(self._cache) > CACHE_CLIENTS:
+            self._cache.popitem(last=False)
+        if request.id in per_client:
+            return await asyncio.shield(per_client[request.id])  # a resend: same answer, no second run
+        future: asyncio.Future[bytes] = asyncio.get_running_loop().create_future()
+        per_client[request.id] = future
+        while len(per_client) > CACHE_PER_CLIENT:
+            per_client.popitem(last=False)
+        try:
+            result = await self.dispatcher.handle(request, role, name)
+            reply = reply_ok(request.id, result)
+        except MeshwardenError as exc:
+            reply = reply_error(request.id, exc)
+        except asyncio.CancelledError:
+            per_client.pop(request.id, None)
+            future.cancel()
+            raise
+        except Exception as exc:
+            self.log.exception("internal error in a handler", op=request.op)
+            reply = reply_error(request.id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
+        future.set_result(reply)
+        return reply
+
+    async def _tick(self) -> None:
+        """Heartbeat once a second; monitor samples at the configured rate."""
+        rate = self.config.service.telemetry_rate_hz
+        period = 1.0 / rate if rate > 0 else None
+        next_beat = next_sample = time.monotonic()
+        while True:
+            now = time.monotonic()
+            if now >= next_beat:
+                await self.telemetry.publish("heartbeat", {"armed": self.controller.armed,
+                                                           "estopped": self.controller.estopped})
+                next_beat = now + 1.0
+            if period is not None and now >= next_sample and self.config.chip.monitors:
+                next_sample = now + period
+                try:
+                    sample = await self.controller.read_monitors(1)
+                    await self.telemetry.publish("monitors", {"monitors": sample})
+                except MeshwardenError as exc:
+                    await self.telemetry.publish("event", {"kind": "monitor_read_failed", "error": exc.message})
+            await asyncio.sleep(min(0.05, period or 0.05))
+
+
+def write_keypair(directory: Path, name: str) -> tuple[Path, Path]:
+    """Create NAME.key (public) and NAME.key_secret (secret) in ``directory``."""
+    directory.mkdir(parents=True, exist_ok=True)
+    public, secret = zmq.auth.create_certificates(str(directory), name)
+    return Path(public), Path(secret)

@@ -1,0 +1,155 @@
+"""Dispatch of validated requests to the controller, with roles, leases and jobs.
+
+Roles are ordered observer < operator < admin; ``estop`` is allowed to everyone, always. Every
+request that changes state, and every refusal, is journaled with the client's identity (read-only
+requests that succeed are not, so that polling does not fill the journal).
+"""
+
+from __future__ import annotations
+
+import asyncio
+from typing import Any
+
+from meshwarden import __version__
+from meshwarden.controller import Controller
+from meshwarden.errors import ForbiddenRefused, MeshwardenError, UnknownTargetRefused
+from meshwarden.service.jobs import Jobs
+from meshwarden.service.leases import Leases
+from meshwarden.service.schema import OPS, READ_ONLY, ROLES, Request
+from meshwarden.service.telemetry import Telemetry
+
+
+class Dispatcher:
+    def __init__(self, controller: Controller, telemetry: Telemetry) -> None:
+        self.controller = controller
+        self.telemetry = telemetry
+        self.leases = Leases()
+        self.jobs = Jobs(telemetry.publish)
+        self._background: set[asyncio.Task[Any]] = set()
+        controller.listeners.append(self._on_event)
+
+    def _on_event(self, kind: str, detail: dict[str, Any]) -> None:
+        self._spawn(self.telemetry.publish("event", {"kind": kind, **detail}))
+        if kind in ("arm", "disarm", "estop", "board_reset_detected", "board_faulted", "restore"):
+            self._spawn(self.telemetry.publish("state", self.state()))
+
+    def _spawn(self, work: Any) -> None:
+        task = asyncio.get_running_loop().create_task(work)
+        self._background.add(task)
+        task.add_done_callback(self._background.discard)
+
+    def state(self) -> dict[str, Any]:
+        snap = self.controller.snapshot()
+        return {"armed": snap["armed"], "estopped": snap["estopped"], "boards": snap["boards"]}
+
+    async def handle(self, request: Request, role: str, identity: str) -> Any:
+        """The result of ``request``, or a MeshwardenError."""
+        needed = OPS[request.op][0]
+        who = f"{request.client}@{identity}"
+        if request.op != "estop" and ROLES.index(role) < ROLES.index(needed):
+            error = ForbiddenRefused(f"'{request.op}' needs the {needed} role; this key is {role}",
+                                     role=role, needed=needed)
+            self.controller.journal.event("command", client=who, op=request.op, ok=False, code=error.code)
+            raise error
+        try:
+            result = await getattr(self, f"_op_{request.op}")(request, who)
+        except MeshwardenError as exc:
+            self.controller.journal.event("command", client=who, op=request.op, ok=False, code=exc.code,
+                                          reason=exc.message)
+            raise
+        if request.op not in READ_ONLY:
+            self.controller.journal.event("command", client=who, op=request.op, ok=True, request=request.id)
+        return result
+
+    # ------------------------------------------------------------------ read-only
+
+    async def _op_status(self, request: Request, who: str) -> Any:
+        return {**self.state(), "version": __version__, "jobs": [j.describe() for j in self.jobs.running()],
+                "leases": self.leases.table(), "telemetry_seq": self.telemetry.seq}
+
+    async def _op_get(self, request: Request, who: str) -> Any:
+        return self.controller.snapshot()
+
+    async def _op_snapshot(self, request: Request, who: str) -> Any:
+        return {"seq": self.telemetry.seq, "state": self.controller.snapshot()}
+
+    async def _op_monitors(self, request: Request, who: str) -> Any:
+        average = request.args.get("average", 1)
+        integration = float(request.args.get("integration_s", 1e-3))
+        if not 1 <= average <= 1000 or not 1e-6 <= integration <= 1.0:
+            from meshwarden.errors import BusError
+
+            raise BusError("bad_request", "monitors: average must be 1..1000 and integration_s 1e-6..1")
+        return await self.controller.read_monitors(average, integration)
+
+    async def _op_events(self, request: Request, who: str) -> Any:
+        limit = min(max(int(request.args.get("limit", 100)), 1), 1000)
+        events = self.controller.journal.events(int(request.args.get("since", 0)), limit=limit)
+        return [{"id": e.id, "ts": e.ts, "kind": e.kind, "board": e.board, "actuator": e.actuator,
+                 "detail": e.detail, "client": e.client} for e in events]
+
+    async def _op_jobs(self, request: Request, who: str) -> Any:
+        return self.jobs.list()
+
+    # ------------------------------------------------------------------ changes
+
+    async def _op_estop(self, request: Request, who: str) -> Any:
+        self.jobs.cancel_all()
+        return await self.controller.estop(client=who, reason=str(request.args.get("reason", "")))
+
+    def _actuators_of(self, targets: list[str]) -> list[str]:
+        out = []
+        for target in targets:
+            if target in self.controller.actuators:
+                out.append(target)
+            elif target in self.controller.gates:
+                gate = self.controller.gates[target]
+                out += [gate.coupler, gate.phase]
+            else:
+                raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
+        return out
+
+    async def _op_set(self, request: Request, who: str) -> Any:
+        values = request.args["values"]
+        volts = bool(request.args.get("volts", False))
+        self.controller.prepare(values, volts=volts)  # refuse before a job exists
+        actuators = [self.controller.resolve(name)[0] for name in values]
+        self.leases.check(request.client, actuators)
+        job = self.jobs.start("set", who, self.controller.set(values, volts=volts, client=who, request=request.id))
+        if not request.args.get("wait", True):
+            return {"job": job.id, "state": "running"}
+        try:
+            applied = await asyncio.shield(job.task)
+        except asyncio.CancelledError:
+            if job.task.cancelled():
+                from meshwarden.errors import RefusedError
+
+                raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
+            raise
+        return {"job": job.id, "state": "done", "applied": applied}
+
+    async def _op_lease(self, request: Request, who: str) -> Any:
+        actuators = self._actuators_of(request.args["targets"])
+        ttl = float(request.args.get("ttl_s", 30.0))
+        self.leases.acquire(request.client, actuators, ttl)
+        return {"leased": actuators, "ttl_s": ttl}
+
+    async def _op_release(self, request: Request, who: str) -> Any:
+        actuators = self._actuators_of(request.args["targets"])
+        self.leases.release(request.client, actuators)
+        return {"released": actuators}
+
+    async def _op_cancel(self, request: Request, who: str) -> Any:
+        return {"job": request.args["job"], "cancelled": self.jobs.cancel(request.args["job"])}
+
+    async def _op_disarm(self, request: Request, who: str) -> Any:
+        self.jobs.cancel_all()
+        await self.controller.disarm(client=who)
+        return self.state()
+
+    async def _op_arm(self, request: Request, who: str) -> Any:
+        await self.controller.arm(client=who)
+        return self.state()
+
+    async def _op_restore(self, request: Request, who: str) -> Any:
+        return await self.controller.restore(client=who)

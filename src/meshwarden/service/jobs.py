@@ -1,0 +1,94 @@
+"""Jobs: long-running work (ramps now; calibration, locks and scans later) with an id, progress
+on the telemetry stream and cancellation. A job runs as its own asyncio task, so status and
+estop requests are served while it runs."""
+
+from __future__ import annotations
+
+import asyncio
+import itertools
+import time
+from collections import OrderedDict
+from collections.abc import Awaitable, Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+from meshwarden.errors import MeshwardenError
+
+KEEP_FINISHED = 200
+
+
+@dataclass
+class Job:
+    id: str
+    kind: str
+    client: str
+    task: asyncio.Task[Any]
+    started: float = field(default_factory=time.time)
+    state: str = "running"  # running | done | failed | cancelled
+    result: Any = None
+    error: dict[str, Any] | None = None
+
+    def describe(self) -> dict[str, Any]:
+        return {"id": self.id, "kind": self.kind, "client": self.client, "state": self.state,
+                "started": self.started, "error": self.error}
+
+
+class Jobs:
+    def __init__(self, publish: Callable[[str, dict[str, Any]], Awaitable[int]]) -> None:
+        self.publish = publish
+        self._jobs: OrderedDict[str, Job] = OrderedDict()
+        self._ids = itertools.count(1)
+        self._background: set[asyncio.Future[Any]] = set()
+
+    def start(self, kind: str, client: str, work: Awaitable[Any]) -> Job:
+        job_id = f"job-{next(self._ids)}"
+        task = asyncio.ensure_future(work)
+        job = Job(job_id, kind, client, task)
+        self._jobs[job_id] = job
+        task.add_done_callback(self._on_done)
+        self._background.add(asyncio.ensure_future(self.publish("job", {"job": job_id, "kind": kind,
+                                                                         "state": "running"})))
+        while len(self._jobs) > KEEP_FINISHED:
+            oldest = next(iter(self._jobs.values()))
+            if oldest.state == "running":
+                break
+            self._jobs.popitem(last=False)
+        return job
+
+    def _on_done(self, task: asyncio.Task[Any]) -> None:
+        job = next(j for j in self._jobs.values() if j.task is task)
+        pending = asyncio.ensure_future(self._finished(job))
+        self._background.add(pending)
+        pending.add_done_callback(self._background.discard)
+
+    async def _finished(self, job: Job) -> None:
+        if job.task.cancelled():
+            job.state = "cancelled"
+        elif (exc := job.task.exception()) is not None:
+            job.state = "failed"
+            job.error = exc.as_dict() if isinstance(exc, MeshwardenError) else {"code": "error", "message": str(exc)}
+        else:
+            job.state = "done"
+            job.result = job.task.result()
+        await self.publish("job", {"job": job.id, "kind": job.kind, "state": job.state, "error": job.error})
+
+    def get(self, job_id: str) -> Job | None:
+        return self._jobs.get(job_id)
+
+    def cancel(self, job_id: str) -> bool:
+        job = self._jobs.get(job_id)
+        if job is None or job.task.done():
+            return False
+        job.task.cancel()
+        return True
+
+    def cancel_all(self) -> None:
+        for job in self._jobs.values():
+            if not job.task.done():
+                job.task.cancel()
+
+    def running(self) -> list[Job]:
+        return [j for j in self._jobs.values() if j.state == "running"]
+
+    def list(self) -> list[dict[str, Any]]:
+        return [j.describe() for j in self._jobs.values()]
