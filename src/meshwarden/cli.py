@@ -68,12 +68,15 @@ def _cmd_serve(args: argparse.Namespace) -> int:
             print(f"meshwarden: cannot read ports file {args.ports_file}: {exc}", file=sys.stderr)
             return EXIT_USAGE
         if not isinstance(ports, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in ports.items()):
-            print(f"meshwarden: {args.ports_file} must hold a JSON object {{\"board_id\": \"url\"}}", file=sys.stderr)
+            print(f'meshwarden: {args.ports_file} must hold a JSON object {{"board_id": "url"}}', file=sys.stderr)
             return EXIT_USAGE
 
     def ready(bus: object) -> None:
-        print(f"meshwarden: serving commands on {bus.bound}, telemetry on {bus.pub_bound}",  # type: ignore[attr-defined]
-              file=sys.stderr, flush=True)
+        print(
+            f"meshwarden: serving commands on {bus.bound}, telemetry on {bus.pub_bound}",  # type: ignore[attr-defined]
+            file=sys.stderr,
+            flush=True,
+        )
 
     asyncio.run(serve(config, ports, args.bind, args.pub, ready, shutdown=args.shutdown))
     return EXIT_OK
@@ -90,8 +93,9 @@ def _cmd_keygen(args: argparse.Namespace) -> int:
 def _client(args: argparse.Namespace):  # type: ignore[no-untyped-def]
     from meshwarden.client import Client
 
-    return Client(args.endpoint, timeout_s=args.timeout, retries=args.retries,
-                  key_file=args.key, server_key_file=args.server_key)
+    return Client(
+        args.endpoint, timeout_s=args.timeout, retries=args.retries, key_file=args.key, server_key_file=args.server_key
+    )
 
 
 def _print(result: object, as_json: bool, table: str | None = None) -> None:
@@ -152,8 +156,12 @@ def build_parser() -> argparse.ArgumentParser:
     serve.add_argument("--ports-file", help='JSON {"board_id": "url"} overriding board URLs (meshsim serve writes one)')
     serve.add_argument("--bind", help="command endpoint (default from the configuration)")
     serve.add_argument("--pub", help="telemetry endpoint (default from the configuration)")
-    serve.add_argument("--shutdown", choices=("hold", "ramp_to_zero"), default="hold",
-                       help="outputs at shutdown: hold for the next start to adopt (default), or ramp to zero")
+    serve.add_argument(
+        "--shutdown",
+        choices=("hold", "ramp_to_zero"),
+        default="hold",
+        help="outputs at shutdown: hold for the next start to adopt (default), or ramp to zero",
+    )
     serve.set_defaults(run=_cmd_serve)
 
     keygen = sub.add_parser("keygen", help="create a CURVE key pair for the daemon or a client")
@@ -161,11 +169,16 @@ def build_parser() -> argparse.ArgumentParser:
     keygen.add_argument("--dir", default=".", help="folder for NAME.key and NAME.key_secret")
     keygen.set_defaults(run=_cmd_keygen)
 
-    for name, text in (("status", "daemon state"), ("arm", "allow outputs to change (clears an estop)"),
-                       ("disarm", "ramp every output to zero"), ("estop", "emergency stop: zero every board now"),
-                       ("restore", "ramp reset boards back to their journaled targets"),
-                       ("set", "set actuators or gates: ID=VALUE ..."), ("get", "every actuator's state"),
-                       ("monitors", "read the photodetector monitors")):
+    for name, text in (
+        ("status", "daemon state"),
+        ("arm", "allow outputs to change (clears an estop)"),
+        ("disarm", "ramp every output to zero"),
+        ("estop", "emergency stop: zero every board now"),
+        ("restore", "ramp reset boards back to their journaled targets"),
+        ("set", "set actuators or gates: ID=VALUE ..."),
+        ("get", "every actuator's state"),
+        ("monitors", "read the photodetector monitors"),
+    ):
         cmd = sub.add_parser(name, help=text)
         cmd.add_argument("--endpoint", default="tcp://127.0.0.1:7640", help="the daemon's command endpoint")
         cmd.add_argument("--json", action="store_true", help="machine-readable output")
@@ -174,8 +187,12 @@ def build_parser() -> argparse.ArgumentParser:
         cmd.add_argument("--key", help="this client's CURVE key file (NAME.key_secret)")
         cmd.add_argument("--server-key", help="the daemon's public key file")
         if name == "set":
-            cmd.add_argument("pairs", nargs="+", metavar="ID=VALUE",
-                             help="actuator id (phase rad / coupling 0..1), GATE.kappa= or GATE.phase=")
+            cmd.add_argument(
+                "pairs",
+                nargs="+",
+                metavar="ID=VALUE",
+                help="actuator id (phase rad / coupling 0..1), GATE.kappa= or GATE.phase=",
+            )
             cmd.add_argument("--volts", action="store_true", help="values are volts")
         if name == "monitors":
             cmd.add_argument("--average", type=int, default=1, help="reads to average (default 1)")

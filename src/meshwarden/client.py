@@ -63,10 +63,18 @@ def error_from_reply(error: dict[str, Any]) -> MeshwardenError:
 class Client:
     """A connection to one daemon. Not thread-safe; use one per thread."""
 
-    def __init__(self, endpoint: str = "tcp://127.0.0.1:7640", telemetry: str | None = None, *,
-                 timeout_s: float = 2.0, retries: int = 2, ramp_timeout_s: float = 120.0,
-                 client_id: str | None = None, key_file: str | Path | None = None,
-                 server_key_file: str | Path | None = None) -> None:
+    def __init__(
+        self,
+        endpoint: str = "tcp://127.0.0.1:7640",
+        telemetry: str | None = None,
+        *,
+        timeout_s: float = 2.0,
+        retries: int = 2,
+        ramp_timeout_s: float = 120.0,
+        client_id: str | None = None,
+        key_file: str | Path | None = None,
+        server_key_file: str | Path | None = None,
+    ) -> None:
         self.endpoint = endpoint
         self.telemetry_endpoint = telemetry or _next_port(endpoint)
         self.timeout_s = timeout_s
@@ -108,8 +116,9 @@ class Client:
     def request(self, op: str, **args: Any) -> Any:
         """Send one operation and return its result; raises on refusal or when unreachable."""
         request_id = f"{next(self._ids)}-{uuid.uuid4().hex[:8]}"
-        message = json.dumps({"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args},
-                             allow_nan=False).encode()
+        message = json.dumps(
+            {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
+        ).encode()
         long_op = op in LONG_OPS and args.get("wait", True)
         timeout = max(self.timeout_s, self.ramp_timeout_s) if long_op else self.timeout_s
         for _attempt in range(self.retries + 1):
@@ -124,8 +133,9 @@ class Client:
                 if reply.get("ok"):
                     return reply.get("result")
                 raise error_from_reply(reply.get("error") or {})
-        raise UnreachableError(f"no reply from {self.endpoint} within {timeout:g} s x {self.retries + 1} tries",
-                               endpoint=self.endpoint)
+        raise UnreachableError(
+            f"no reply from {self.endpoint} within {timeout:g} s x {self.retries + 1} tries", endpoint=self.endpoint
+        )
 
     def status(self) -> dict[str, Any]:
         result: dict[str, Any] = self.request("status")
@@ -187,8 +197,9 @@ class Client:
 
     # ------------------------------------------------------------------ telemetry
 
-    def subscribe(self, topics: list[str] | None = None, timeout_s: float | None = None
-                  ) -> Iterator[tuple[str, dict[str, Any]]]:
+    def subscribe(
+        self, topics: list[str] | None = None, timeout_s: float | None = None
+    ) -> Iterator[tuple[str, dict[str, Any]]]:
         """Telemetry messages as (topic, message), in order; a gap in ``seq`` is reported as a
         ``("gap", {"missed": n})`` item. Ends after ``timeout_s`` without a message."""
         sub = self._new_socket(zmq.SUB, self.telemetry_endpoint)

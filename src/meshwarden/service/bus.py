@@ -42,8 +42,16 @@ def load_allow_list(config: Config) -> dict[bytes, tuple[str, str]]:
         try:
             public, _ = zmq.auth.load_certificate(str(client.public_key_file))
         except (OSError, ValueError) as exc:
-            raise ConfigError([ConfigIssue(str(client.public_key_file), 0, "service.clients",
-                                           f"cannot read the public key of '{client.name}': {exc}")]) from None
+            raise ConfigError(
+                [
+                    ConfigIssue(
+                        str(client.public_key_file),
+                        0,
+                        "service.clients",
+                        f"cannot read the public key of '{client.name}': {exc}",
+                    )
+                ]
+            ) from None
         allowed[public] = (client.name, client.role)
     return allowed
 
@@ -88,8 +96,16 @@ class Bus:
             assert self.config.service.server_secret_key_file is not None
             public, secret = zmq.auth.load_certificate(str(self.config.service.server_secret_key_file))
             if secret is None:
-                raise ConfigError([ConfigIssue(str(self.config.service.server_secret_key_file), 0,
-                                               "service.server_secret_key_file", "this file holds no secret key")])
+                raise ConfigError(
+                    [
+                        ConfigIssue(
+                            str(self.config.service.server_secret_key_file),
+                            0,
+                            "service.server_secret_key_file",
+                            "this file holds no secret key",
+                        )
+                    ]
+                )
             self.roles.allowed = load_allow_list(self.config)
             self.auth = AsyncioAuthenticator(self.context)
             self.auth.start()
@@ -129,8 +145,9 @@ class Bus:
         for task in (self._serve_task, self._ticker, *self._tasks):
             if task is not None:
                 task.cancel()
-        await asyncio.gather(*(t for t in (self._serve_task, self._ticker, *self._tasks) if t is not None),
-                             return_exceptions=True)
+        await asyncio.gather(
+            *(t for t in (self._serve_task, self._ticker, *self._tasks) if t is not None), return_exceptions=True
+        )
         self.router.close(0)
         self.publisher.close(0)
         if self.auth is not None:
@@ -222,8 +239,9 @@ class Bus:
         while True:
             now = time.monotonic()
             if now >= next_beat:
-                await self.telemetry.publish("heartbeat", {"armed": self.controller.armed,
-                                                           "estopped": self.controller.estopped})
+                await self.telemetry.publish(
+                    "heartbeat", {"armed": self.controller.armed, "estopped": self.controller.estopped}
+                )
                 next_beat = now + 1.0
             if period is not None and now >= next_sample and self.config.chip.monitors:
                 next_sample = now + period

@@ -20,9 +20,14 @@ from meshwarden.logsetup import get_logger
 from meshwarden.service.bus import Bus
 
 
-async def serve(config: Config, ports: dict[str, str] | None = None, bind: str | None = None,
-                pub: str | None = None, ready: Callable[[Bus], None] | None = None,
-                shutdown: str = "hold") -> None:
+async def serve(
+    config: Config,
+    ports: dict[str, str] | None = None,
+    bind: str | None = None,
+    pub: str | None = None,
+    ready: Callable[[Bus], None] | None = None,
+    shutdown: str = "hold",
+) -> None:
     log = get_logger(component="daemon")
     stop = asyncio.Event()
     loop = asyncio.get_running_loop()

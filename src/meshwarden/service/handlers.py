@@ -47,15 +47,17 @@ class Dispatcher:
         needed = OPS[request.op][0]
         who = f"{request.client}@{identity}"
         if request.op != "estop" and ROLES.index(role) < ROLES.index(needed):
-            error = ForbiddenRefused(f"'{request.op}' needs the {needed} role; this key is {role}",
-                                     role=role, needed=needed)
+            error = ForbiddenRefused(
+                f"'{request.op}' needs the {needed} role; this key is {role}", role=role, needed=needed
+            )
             self.controller.journal.event("command", client=who, op=request.op, ok=False, code=error.code)
             raise error
         try:
             result = await getattr(self, f"_op_{request.op}")(request, who)
         except MeshwardenError as exc:
-            self.controller.journal.event("command", client=who, op=request.op, ok=False, code=exc.code,
-                                          reason=exc.message)
+            self.controller.journal.event(
+                "command", client=who, op=request.op, ok=False, code=exc.code, reason=exc.message
+            )
             raise
         if request.op not in READ_ONLY:
             self.controller.journal.event("command", client=who, op=request.op, ok=True, request=request.id)
@@ -64,8 +66,13 @@ class Dispatcher:
     # ------------------------------------------------------------------ read-only
 
     async def _op_status(self, request: Request, who: str) -> Any:
-        return {**self.state(), "version": __version__, "jobs": [j.describe() for j in self.jobs.running()],
-                "leases": self.leases.table(), "telemetry_seq": self.telemetry.seq}
+        return {
+            **self.state(),
+            "version": __version__,
+            "jobs": [j.describe() for j in self.jobs.running()],
+            "leases": self.leases.table(),
+            "telemetry_seq": self.telemetry.seq,
+        }
 
     async def _op_get(self, request: Request, who: str) -> Any:
         return self.controller.snapshot()
@@ -85,8 +92,18 @@ class Dispatcher:
     async def _op_events(self, request: Request, who: str) -> Any:
         limit = min(max(int(request.args.get("limit", 100)), 1), 1000)
         events = self.controller.journal.events(int(request.args.get("since", 0)), limit=limit)
-        return [{"id": e.id, "ts": e.ts, "kind": e.kind, "board": e.board, "actuator": e.actuator,
-                 "detail": e.detail, "client": e.client} for e in events]
+        return [
+            {
+                "id": e.id,
+                "ts": e.ts,
+                "kind": e.kind,
+                "board": e.board,
+                "actuator": e.actuator,
+                "detail": e.detail,
+                "client": e.client,
+            }
+            for e in events
+        ]
 
     async def _op_jobs(self, request: Request, who: str) -> Any:
         return self.jobs.list()

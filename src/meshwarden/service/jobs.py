@@ -29,8 +29,14 @@ class Job:
     error: dict[str, Any] | None = None
 
     def describe(self) -> dict[str, Any]:
-        return {"id": self.id, "kind": self.kind, "client": self.client, "state": self.state,
-                "started": self.started, "error": self.error}
+        return {
+            "id": self.id,
+            "kind": self.kind,
+            "client": self.client,
+            "state": self.state,
+            "started": self.started,
+            "error": self.error,
+        }
 
 
 class Jobs:
@@ -46,8 +52,9 @@ class Jobs:
         job = Job(job_id, kind, client, task)
         self._jobs[job_id] = job
         task.add_done_callback(self._on_done)
-        self._background.add(asyncio.ensure_future(self.publish("job", {"job": job_id, "kind": kind,
-                                                                         "state": "running"})))
+        self._background.add(
+            asyncio.ensure_future(self.publish("job", {"job": job_id, "kind": kind, "state": "running"}))
+        )
         while len(self._jobs) > KEEP_FINISHED:
             oldest = next(iter(self._jobs.values()))
             if oldest.state == "running":

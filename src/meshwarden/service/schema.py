@@ -109,13 +109,15 @@ def parse_request(data: bytes) -> Request:
 
 
 def reply_ok(request_id: str, result: Any) -> bytes:
-    return json.dumps({"v": VERSION, "id": request_id, "ok": True, "result": result},
-                      allow_nan=False, default=str).encode()
+    return json.dumps(
+        {"v": VERSION, "id": request_id, "ok": True, "result": result}, allow_nan=False, default=str
+    ).encode()
 
 
 def reply_error(request_id: str | None, error: MeshwardenError) -> bytes:
-    return json.dumps({"v": VERSION, "id": request_id, "ok": False, "error": error.as_dict()},
-                      allow_nan=False, default=str).encode()
+    return json.dumps(
+        {"v": VERSION, "id": request_id, "ok": False, "error": error.as_dict()}, allow_nan=False, default=str
+    ).encode()
 
 
 def best_effort_id(data: bytes) -> str | None:

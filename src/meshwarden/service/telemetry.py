@@ -37,5 +37,6 @@ class Telemetry:
             # zmq.Again at the high-water mark: subscribers see the gap in seq
             with contextlib.suppress(zmq.Again, zmq.ZMQError):
                 await self.socket.send_multipart(
-                    [topic.encode(), json.dumps(message, allow_nan=False, default=str).encode()], flags=zmq.NOBLOCK)
+                    [topic.encode(), json.dumps(message, allow_nan=False, default=str).encode()], flags=zmq.NOBLOCK
+                )
         return self.seq

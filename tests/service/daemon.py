@@ -1,0 +1,90 @@
+"""Start `meshwarden serve` as a separate process on free loopback ports, as a user would."""
+
+from __future__ import annotations
+
+import os
+import signal
+import socket
+import subprocess
+import sys
+import time
+from dataclasses import dataclass
+from pathlib import Path
+
+from meshwarden.client import Client
+from meshwarden.errors import UnreachableError
+
+
+def free_port() -> int:
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+@dataclass
+class Daemon:
+    proc: subprocess.Popen[bytes]
+    endpoint: str
+    pub: str
+    log: Path
+
+    def client(self, **kwargs: object) -> Client:
+        return Client(self.endpoint, self.pub, **kwargs)  # type: ignore[arg-type]
+
+    def stop(self) -> int:
+        if self.proc.poll() is None:
+            self.proc.send_signal(signal.SIGTERM)
+            try:
+                self.proc.wait(timeout=20)
+            except subprocess.TimeoutExpired:
+                self.proc.kill()
+                self.proc.wait()
+        return int(self.proc.returncode)
+
+
+def start_daemon(
+    config: Path, log_dir: Path, *extra: str, ports: dict[str, str] | None = None, endpoint: str | None = None
+) -> Daemon:
+    """Start the daemon and wait until it answers ``status``."""
+    command_port = free_port()
+    endpoint = endpoint or f"tcp://127.0.0.1:{command_port}"
+    pub = f"tcp://127.0.0.1:{free_port()}"
+    args = [
+        sys.executable,
+        "-m",
+        "meshwarden.cli",
+        "--log-format",
+        "json",
+        "serve",
+        "--config",
+        str(config),
+        "--bind",
+        endpoint,
+        "--pub",
+        pub,
+        *extra,
+    ]
+    if ports is not None:
+        import json
+
+        ports_file = log_dir / "ports.json"
+        ports_file.write_text(json.dumps(ports))
+        args += ["--ports-file", str(ports_file)]
+    log = log_dir / f"daemon-{time.monotonic_ns()}.log"
+    with log.open("wb") as out:
+        proc = subprocess.Popen(
+            args, stdout=out, stderr=subprocess.STDOUT, cwd=Path(__file__).resolve().parents[2], env=dict(os.environ)
+        )
+    daemon = Daemon(proc, endpoint, pub, log)
+    deadline = time.monotonic() + 30
+    while time.monotonic() < deadline:
+        if proc.poll() is not None:
+            raise RuntimeError(f"daemon exited: {log.read_text()}")
+        try:
+            with daemon.client(timeout_s=0.3, retries=0) as c:
+                c.status()
+            return daemon
+        except UnreachableError:
+            continue
+    daemon.stop()
+    raise RuntimeError(f"daemon did not answer: {log.read_text()}")
