@@ -8,8 +8,9 @@ import socket
 import subprocess
 import sys
 import time
-from dataclasses import dataclass
+from dataclasses import dataclass, field
 from pathlib import Path
+from typing import Any
 
 from meshwarden.client import Client
 from meshwarden.errors import UnreachableError
@@ -27,9 +28,10 @@ class Daemon:
     endpoint: str
     pub: str
     log: Path
+    client_kwargs: dict[str, Any] = field(default_factory=dict)  # e.g. CURVE key files
 
-    def client(self, **kwargs: object) -> Client:
-        return Client(self.endpoint, self.pub, **kwargs)  # type: ignore[arg-type]
+    def client(self, **kwargs: Any) -> Client:
+        return Client(self.endpoint, self.pub, **{**self.client_kwargs, **kwargs})
 
     def stop(self) -> int:
         if self.proc.poll() is None:
@@ -75,7 +77,7 @@ def start_daemon(
         proc = subprocess.Popen(
             args, stdout=out, stderr=subprocess.STDOUT, cwd=Path(__file__).resolve().parents[2], env=dict(os.environ)
         )
-    daemon = Daemon(proc, endpoint, pub, log)
+    daemon = Daemon(proc, endpoint, pub, log, client_kwargs or {})
     deadline = time.monotonic() + 30
     while time.monotonic() < deadline:
         if proc.poll() is not None:
