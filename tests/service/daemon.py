@@ -45,7 +45,12 @@ class Daemon:
 
 
 def start_daemon(
-    config: Path, log_dir: Path, *extra: str, ports: dict[str, str] | None = None, endpoint: str | None = None
+    config: Path,
+    log_dir: Path,
+    *extra: str,
+    ports: dict[str, str] | None = None,
+    endpoint: str | None = None,
+    client_kwargs: dict[str, Any] | None = None,
 ) -> Daemon:
     """Start the daemon and wait until it answers ``status``."""
     command_port = free_port()

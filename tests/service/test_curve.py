@@ -44,7 +44,7 @@ def as_(d: Daemon, keys: Path, name: str, **kw: object) -> Client:
 
 
 def test_roles_and_refusals(tmp_path: Path) -> None:
-    d, config, keys = keyed_daemon(tmp_path)
+    d, _, keys = keyed_daemon(tmp_path)
     try:
         with as_(d, keys, "boss") as boss, as_(d, keys, "runner") as runner, as_(d, keys, "watcher") as watcher:
             assert watcher.status()["armed"] is False  # an observer may read

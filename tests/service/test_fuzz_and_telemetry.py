@@ -152,7 +152,7 @@ def test_telemetry_sequence_and_snapshot(tmp_path: Path) -> None:
     try:
         with d.client() as mw:
             stream = mw.subscribe(timeout_s=5)
-            first_topic, first = next(stream)
+            _, first = next(stream)
             snap = mw.snapshot()
             mw.arm()
             seen = [first]
