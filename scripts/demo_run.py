@@ -1,81 +1,100 @@
-"""The demo: check the demo configuration, then talk to the simulated rack over real ptys."""
+"""The demo: the daemon on the embedded simulated rack, and an experiment script that uses it.
+
+1. `meshwarden check-config config/demo.yaml`
+2. `meshwarden serve` with no configuration: the shipped demo on the in-process simulated rack
+3. `scripts/route_light.py`: arm, route the laser to a chosen output, read monitors, disarm
+4. the same daemon through the command line: status, a refused request, estop
+5. SIGTERM: the daemon stops cleanly
+"""
 
 from __future__ import annotations
 
-import json
+import os
+import signal
 import subprocess
 import sys
-import tempfile
 import time
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
 CONFIG = REPO / "config" / "demo.yaml"
+ENDPOINT = os.environ.get("MESHWARDEN_DEMO_ENDPOINT", "tcp://127.0.0.1:7640")
+
+
+def step(title: str) -> None:
+    print(f"\n=== {title}", flush=True)
+
+
+def cli(*args: str) -> int:
+    print("$ meshwarden " + " ".join(args), flush=True)
+    return subprocess.run([sys.executable, "-m", "meshwarden.cli", *args]).returncode
 
 
 def main() -> int:
-    print("== meshwarden check-config config/demo.yaml")
-    check = subprocess.run([sys.executable, "-m", "meshwarden.cli", "check-config", str(CONFIG)])
-    if check.returncode != 0:
-        return check.returncode
-    import serial
+    step("check the demo configuration")
+    if cli("check-config", str(CONFIG)) != 0:
+        return 2
+    # The demo's simulated rack is new on every run, so the demo's own journal starts afresh too.
+    for stale in (REPO / "var").glob("demo-journal.sqlite*"):
+        stale.unlink()
 
-    from meshwarden.protocol import Frame, FrameDecoder, decode_reply, encode_frame
-    from meshwarden.protocol import messages as m
-
-    with tempfile.TemporaryDirectory() as tmp:
-        ports_file = Path(tmp) / "ports.json"
-        print("\n== meshsim serve --transport pty (the simulated rack, in its own process)")
-        sim = subprocess.Popen(
+    step("start the daemon on the embedded simulated rack")
+    host, port = ENDPOINT.rsplit(":", 1)
+    log = REPO / "var" / "demo-daemon.log"
+    log.parent.mkdir(exist_ok=True)
+    with log.open("w") as out:
+        daemon = subprocess.Popen(
             [
                 sys.executable,
                 "-m",
-                "meshsim.cli",
+                "meshwarden.cli",
+                "--log-format",
+                "json",
                 "serve",
-                "--config",
-                str(CONFIG),
-                "--transport",
-                "pty",
-                "--ports-file",
-                str(ports_file),
-            ]
+                "--bind",
+                ENDPOINT,
+                "--pub",
+                f"{host}:{int(port) + 1}",
+            ],
+            stdout=out,
+            stderr=out,
         )
-        try:
-            while not ports_file.exists():
-                if sim.poll() is not None:
+    try:
+        from meshwarden.client import Client
+        from meshwarden.errors import UnreachableError
+
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                with Client(ENDPOINT, timeout_s=0.5, retries=0) as c:
+                    c.status()
+                break
+            except UnreachableError:
+                if daemon.poll() is not None or time.monotonic() > deadline:
+                    print(log.read_text(), file=sys.stderr)
                     return 2
-                time.sleep(0.05)
-            ports = json.loads(ports_file.read_text())
-            for board, url in ports.items():
-                port = serial.serial_for_url(url, timeout=1.0, exclusive=True)
-                decoder = FrameDecoder()
+        print(f"meshwarden serve is up on {ENDPOINT} (log: {log.relative_to(REPO)})")
 
-                def ask(
-                    seq: int, message: m.Message, port: serial.SerialBase = port, decoder: FrameDecoder = decoder
-                ) -> m.Message:
-                    port.write(encode_frame(Frame(1, seq, message.CODE, message.pack())))
-                    while True:
-                        for item in decoder.feed(port.read(1)):
-                            if isinstance(item, Frame):
-                                return decode_reply(item.command, item.payload)
+        step("experiment script: route the light (scripts/route_light.py)")
+        result = subprocess.run([sys.executable, str(REPO / "scripts" / "route_light.py"), "--endpoint", ENDPOINT])
+        if result.returncode != 0:
+            return result.returncode
 
-                ident = ask(1, m.Identify())
-                assert isinstance(ident, m.IdentifyReply)
-                print(
-                    f"{board} at {url}: {ident.model} firmware {'.'.join(map(str, ident.firmware))}, "
-                    f"{ident.outputs} outputs, {ident.monitor_inputs} monitor inputs, {ident.dac_bits}-bit DAC, "
-                    f"{ident.full_scale_mv / 1000:g} V, boot {ident.boot_count}"
-                )
-                ask(2, m.SetMonitorGain(0, (2,) * ident.monitor_inputs))
-                reading = ask(3, m.ReadMonitors(0, ident.monitor_inputs, 2000))
-                assert isinstance(reading, m.MonitorsReply)
-                lit = [f"in{i}={c}" for i, c in enumerate(reading.counts) if c > 100]
-                print(f"   monitors with light (ADC counts, all actuators at 0 V): {', '.join(lit) or 'none'}")
-                port.close()
-        finally:
-            sim.terminate()
-            sim.wait(timeout=10)
-    return 0
+        step("the command line against the same daemon")
+        cli("status", "--endpoint", ENDPOINT)
+        print("(a request while disarmed is refused, exit code 1:)")
+        code = cli("set", "g10.kappa=0.5", "--endpoint", ENDPOINT)
+        print(f"exit code {code}")
+        cli("estop", "--endpoint", ENDPOINT, "--reason", "end of demo")
+    finally:
+        step("stop the daemon (SIGTERM)")
+        daemon.send_signal(signal.SIGTERM)
+        try:
+            daemon.wait(timeout=20)
+        except subprocess.TimeoutExpired:
+            daemon.kill()
+        print(f"daemon exited with code {daemon.returncode}")
+    return 0 if daemon.returncode == 0 else 1
 
 
 if __name__ == "__main__":

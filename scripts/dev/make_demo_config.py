@@ -118,7 +118,7 @@ def main() -> None:
         "# Physics of the simulated demo chip (read only by meshsim). Units are in the key names.",
         "# Invented demo values chosen to sit in the ranges of shared/PHYSICS.md.",
         "seed: 20261202",
-        "laser: {wavelength_nm: 1550, power_mw: 1.0, input_modes: [0, 7]}",
+        "laser: {wavelength_nm: 1550, power_mw: 1.0, input_modes: [0]}",
         "coupler:",
         "  spring_n_per_m: 27.7",
         "  air_gap_um: 3.0",
