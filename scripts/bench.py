@@ -77,6 +77,189 @@ def _read_monitors_frame() -> bytes:
     )
 
 
+def median_wall_seconds(work: Callable[[], object], repeats: int) -> float:
+    samples = []
+    for _ in range(repeats):
+        start = time.perf_counter()
+        work()
+        samples.append(time.perf_counter() - start)
+    return statistics.median(samples)
+
+
+def _free_port() -> int:
+    import socket
+
+    with socket.socket() as s:
+        s.bind(("127.0.0.1", 0))
+        return int(s.getsockname()[1])
+
+
+def bench_bus(repeats: int) -> dict[str, float]:
+    """Round trips through the daemon (demo configuration, in-process simulated rack, separate
+    process), each also as a ratio to a raw pyzmq DEALER/ROUTER echo on loopback."""
+    import json
+    import subprocess
+    import sys
+    import threading
+
+    import zmq
+
+    from meshwarden.client import Client
+    from meshwarden.errors import UnreachableError
+
+    ctx = zmq.Context.instance()
+    echo_port = _free_port()
+    router = ctx.socket(zmq.ROUTER)
+    router.bind(f"tcp://127.0.0.1:{echo_port}")
+    stop = threading.Event()
+
+    def echo() -> None:
+        while not stop.is_set():
+            if router.poll(50):
+                router.send_multipart(router.recv_multipart())
+
+    thread = threading.Thread(target=echo, daemon=True)
+    thread.start()
+    dealer = ctx.socket(zmq.DEALER)
+    dealer.connect(f"tcp://127.0.0.1:{echo_port}")
+    payload = json.dumps({"v": 1, "id": "1", "client": "bench", "op": "status", "args": {}}).encode()
+
+    def raw_round_trip() -> object:
+        dealer.send(payload)
+        return dealer.recv()
+
+    for _ in range(50):
+        raw_round_trip()
+    baseline = median_wall_seconds(raw_round_trip, repeats)
+    stop.set()
+    thread.join()
+    dealer.close(0)
+    router.close(0)
+
+    for stale in (REPO / "var").glob("demo-journal.sqlite*"):
+        stale.unlink()  # the simulated rack is new on every run; so is the demo's journal
+    endpoint = f"tcp://127.0.0.1:{_free_port()}"
+    pub = f"tcp://127.0.0.1:{_free_port()}"
+    daemon = subprocess.Popen(
+        [
+            sys.executable,
+            "-m",
+            "meshwarden.cli",
+            "--log-format",
+            "json",
+            "serve",
+            "--config",
+            str(REPO / "config" / "demo.yaml"),
+            "--bind",
+            endpoint,
+            "--pub",
+            pub,
+        ],
+        stdout=subprocess.DEVNULL,
+        stderr=subprocess.DEVNULL,
+    )
+    try:
+        client = Client(endpoint, pub, timeout_s=10.0, retries=0)
+        deadline = time.monotonic() + 30
+        while True:
+            try:
+                client.status()
+                break
+            except UnreachableError:
+                if time.monotonic() > deadline:
+                    raise
+        client.arm()
+        couplers = [f"c{g:02d}" for g in range(60)]
+        counter = iter(range(10**9))
+
+        def one_set() -> object:
+            i = next(counter)
+            return client.set({couplers[i % 60]: 1.0 + 0.5 * ((i // 60) % 2)}, volts=True)
+
+        every = [f"c{g:02d}" for g in range(60)] + [f"p{g:02d}" for g in range(60)]
+
+        def chip_set() -> object:
+            i = next(counter)
+            return client.set({a: 1.0 + 0.5 * (i % 2) for a in every}, volts=True)
+
+        def monitors() -> object:
+            return client.monitors()
+
+        single = median_wall_seconds(one_set, repeats)
+        whole = median_wall_seconds(chip_set, max(20, repeats // 10))
+        reads = median_wall_seconds(monitors, repeats)
+        client.disarm()
+        client.close()
+    finally:
+        daemon.terminate()
+        daemon.wait(timeout=20)
+    telemetry = bench_telemetry()
+    return {
+        "baseline_raw_zmq_echo_us": baseline * 1e6,
+        "set_one_actuator_us": single * 1e6,
+        "set_one_actuator_ratio": single / baseline,
+        "set_whole_chip_120_actuators_us": whole * 1e6,
+        "set_whole_chip_ratio": whole / baseline,
+        "monitors_read_48_us": reads * 1e6,
+        "monitors_read_ratio": reads / baseline,
+        **telemetry,
+    }
+
+
+def bench_telemetry(count: int = 20000) -> dict[str, float]:
+    """Messages per second through the daemon's Telemetry publisher to a subscriber, as a ratio to
+    raw pyzmq PUB/SUB with the same message size."""
+    import asyncio
+    import json
+
+    import zmq
+    import zmq.asyncio
+
+    from meshwarden.service.telemetry import Telemetry
+
+    body = {"monitors": {f"m{i:02d}": {"amps": 1.234e-6, "watts": 1.371e-6, "counts": 12345.0} for i in range(48)}}
+
+    async def run(use_telemetry: bool) -> float:
+        ctx = zmq.asyncio.Context()
+        port = _free_port()
+        pub = ctx.socket(zmq.PUB)
+        pub.setsockopt(zmq.SNDHWM, 0)
+        pub.bind(f"tcp://127.0.0.1:{port}")
+        sub = ctx.socket(zmq.SUB)
+        sub.setsockopt(zmq.RCVHWM, 0)
+        sub.setsockopt(zmq.SUBSCRIBE, b"")
+        sub.connect(f"tcp://127.0.0.1:{port}")
+        await asyncio.sleep(0.3)
+        telemetry = Telemetry(pub)
+        raw = json.dumps({"seq": 1, "ts": 0.0, "topic": "monitors", **body}).encode()
+
+        async def produce() -> None:
+            for _ in range(count):
+                if use_telemetry:
+                    await telemetry.publish("monitors", body)
+                else:
+                    await pub.send_multipart([b"monitors", raw])
+
+        start = time.perf_counter()
+        producer = asyncio.create_task(produce())
+        for _ in range(count):
+            await sub.recv_multipart()
+        await producer
+        elapsed = time.perf_counter() - start
+        pub.close(0)
+        sub.close(0)
+        ctx.term()
+        return count / elapsed
+
+    raw_rate = asyncio.run(run(False))
+    ours = asyncio.run(run(True))
+    return {
+        "telemetry_raw_pubsub_msgs_per_s": raw_rate,
+        "telemetry_msgs_per_s": ours,
+        "telemetry_throughput_ratio": ours / raw_rate,
+    }
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, required=True)
@@ -91,6 +274,7 @@ def main() -> None:
         "repeats": args.repeats,
     }
     results["simulator"] = bench_simulator(args.repeats)
+    results["bus"] = bench_bus(min(args.repeats, 300))
     text = json.dumps(results, indent=2)
     args.out.write_text(text + "\n", encoding="utf-8")
     print(text)

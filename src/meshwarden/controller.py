@@ -273,7 +273,10 @@ class Controller:
         """Ramp every output to zero within the guard's steps, then stay disarmed."""
         async with self._motion:
             targets = {aid: 0 for aid in self.actuators}
-            plan = plan_ramp(self._limits(), self._current_codes(), targets)
+            current = self._current_codes()
+            plan = plan_ramp(self._limits(), current, targets)
+            now = time.time()
+            self.journal.record_targets([self._record(a, 0, None, now) for a, c in current.items() if c], None, client)
             try:
                 await self._execute(plan, client, allow_disarmed=True)
             finally:
@@ -292,9 +295,11 @@ class Controller:
             else:
                 self.boards[board_id].codes = [0] * self.boards[board_id].config.outputs
                 outcome[board_id] = "zero"
-        for act in self.actuators.values():
-            if outcome.get(act.board.id) == "zero":
-                act.value = None
+        zeroed = [a for a, act in self.actuators.items() if outcome.get(act.board.id) == "zero"]
+        for aid in zeroed:
+            self.actuators[aid].value = None
+        now = time.time()
+        self.journal.record_targets([self._record(a, 0, None, now) for a in zeroed], None, client)
         self._emit("estop", client=client, reason=reason, boards=outcome)
         self.log.warning("emergency stop", reason=reason, boards=outcome)
         return outcome
