@@ -17,6 +17,7 @@ from meshwarden.config import Config
 from meshwarden.errors import (
     FaultedRefused,
     LimitRefused,
+    MeshwardenError,
     NotArmedRefused,
     RefusedError,
     UnknownTargetRefused,
@@ -189,6 +190,7 @@ operations = st.lists(
             ),
         ),
         st.tuples(st.sampled_from(["arm", "disarm", "estop"]), st.just({})),
+        st.tuples(st.just("faults"), st.floats(0.0, 0.1)),
     ),
     min_size=1,
     max_size=8,
@@ -198,8 +200,9 @@ operations = st.lists(
 @settings(max_examples=25, deadline=None, suppress_health_check=[HealthCheck.function_scoped_fixture])
 @given(operations)
 def test_no_sequence_of_requests_breaks_a_rule(make_bench: Bench, ops: list) -> None:
-    """For any sequence of sets (volts or logical), arm, disarm and estop: no code above its limit,
-    no step above its step limit, every dwell kept, and estop leaves every output at zero."""
+    """For any sequence of sets (volts or logical), arm, disarm, estop and link faults (corrupted,
+    lost, repeated frames): no code above its limit, no step above its step limit, every dwell
+    kept, and estop leaves every output at zero."""
     config, name = make_bench(dwell="1 ms")
 
     async def scenario() -> None:
@@ -214,11 +217,14 @@ def test_no_sequence_of_requests_breaks_a_rule(make_bench: Bench, ops: list) -> 
                         await ctl.arm()
                     elif op == "disarm":
                         await ctl.disarm()
+                    elif op == "faults":
+                        for kind in ("corrupt", "drop", "repeat"):
+                            inprocess.get(name).inject(Fault(kind, "*", args))
                     else:
                         await ctl.estop()
                         assert (inprocess.get(name).board("b0").codes == 0).all()
-                except RefusedError:
-                    pass
+                except MeshwardenError:
+                    pass  # refusals and link failures alike: the rules below must hold anyway
 
     run(scenario())
     _check_write_log(config, name)

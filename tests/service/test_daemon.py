@@ -99,14 +99,15 @@ def test_lost_reply_is_answered_from_the_cache_and_applied_once(daemon: Daemon) 
     with daemon.client() as mw:
         mw.arm()
     request = json.dumps(
-        {"v": 1, "id": "once-1", "client": "lossy", "op": "set", "args": {"values": {"c0": 1.0}, "volts": True}}
+        {"v": 1, "id": "once-1", "client": "lossy", "op": "set", "args": {"values": {"c0": 20.0}, "volts": True}}
     ).encode()
     ctx = zmq.Context.instance()
     first = ctx.socket(zmq.DEALER)
+    first.setsockopt(zmq.LINGER, 2000)  # the request still goes out ...
     first.connect(daemon.endpoint)
     first.send(request)
-    time.sleep(0.5)
-    first.close(0)  # the reply is lost with this socket
+    first.close()  # ... but the socket is gone before the ramp ends and its reply comes back
+    time.sleep(1.0)
     second = ctx.socket(zmq.DEALER)
     second.connect(daemon.endpoint)
     second.send(request)
@@ -115,11 +116,14 @@ def test_lost_reply_is_answered_from_the_cache_and_applied_once(daemon: Daemon) 
     second.close(0)
     assert reply["ok"] and reply["id"] == "once-1"
     with daemon.client() as mw:
+        time.sleep(0.2)
+        undeliverable = [e for e in mw.events(limit=1000) if e["kind"] == "reply_undeliverable"]
         sets = [j for j in mw.jobs() if j["kind"] == "set"]
         commands = [
             e for e in mw.events(limit=1000) if e["kind"] == "command" and e["detail"].get("request") == "once-1"
         ]
     assert len(sets) == 1 and len(commands) == 1
+    assert undeliverable  # ROUTER_MANDATORY: the reply to the vanished socket was noticed, not lost silently
 
 
 def test_sigstop_then_sigcont(daemon: Daemon) -> None:
