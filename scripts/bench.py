@@ -105,7 +105,6 @@ def bench_bus(repeats: int) -> dict[str, float]:
     import zmq
 
     from meshwarden.client import Client
-    from meshwarden.errors import UnreachableError
 
     ctx = zmq.Context.instance()
     echo_port = _free_port()
@@ -160,14 +159,7 @@ def bench_bus(repeats: int) -> dict[str, float]:
     )
     try:
         client = Client(endpoint, pub, timeout_s=10.0, retries=0)
-        deadline = time.monotonic() + 30
-        while True:
-            try:
-                client.status()
-                break
-            except UnreachableError:
-                if time.monotonic() > deadline:
-                    raise
+        client.wait_ready(30.0)
         client.arm()
         couplers = [f"c{g:02d}" for g in range(60)]
         counter = iter(range(10**9))

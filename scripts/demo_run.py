@@ -13,7 +13,6 @@ import os
 import signal
 import subprocess
 import sys
-import time
 from pathlib import Path
 
 REPO = Path(__file__).resolve().parents[1]
@@ -63,16 +62,12 @@ def main() -> int:
         from meshwarden.client import Client
         from meshwarden.errors import UnreachableError
 
-        deadline = time.monotonic() + 30
-        while True:
+        with Client(ENDPOINT) as c:
             try:
-                with Client(ENDPOINT, timeout_s=0.5, retries=0) as c:
-                    c.status()
-                break
+                c.wait_ready(30.0)
             except UnreachableError:
-                if daemon.poll() is not None or time.monotonic() > deadline:
-                    print(log.read_text(), file=sys.stderr)
-                    return 2
+                print(log.read_text(), file=sys.stderr)
+                return 2
         print(f"meshwarden serve is up on {ENDPOINT} (log: {log.relative_to(REPO)})")
 
         step("experiment script: route the light (scripts/route_light.py)")

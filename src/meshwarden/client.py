@@ -137,6 +137,22 @@ class Client:
             f"no reply from {self.endpoint} within {timeout:g} s x {self.retries + 1} tries", endpoint=self.endpoint
         )
 
+    def wait_ready(self, timeout_s: float = 30.0) -> dict[str, Any]:
+        """Poll ``status`` until the daemon answers (just started, or restarting); raises
+        UnreachableError after ``timeout_s``."""
+        deadline = time.monotonic() + timeout_s
+        saved = self.timeout_s, self.retries
+        self.timeout_s, self.retries = min(self.timeout_s, 0.5), 0
+        try:
+            while True:
+                try:
+                    return self.status()
+                except UnreachableError:
+                    if time.monotonic() > deadline:
+                        raise
+        finally:
+            self.timeout_s, self.retries = saved
+
     def status(self) -> dict[str, Any]:
         result: dict[str, Any] = self.request("status")
         return result

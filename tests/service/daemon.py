@@ -83,15 +83,12 @@ def start_daemon(
             args, stdout=out, stderr=subprocess.STDOUT, cwd=Path(__file__).resolve().parents[2], env=dict(os.environ)
         )
     daemon = Daemon(proc, endpoint, pub, log, client_kwargs or {})
-    deadline = time.monotonic() + 30
-    while time.monotonic() < deadline:
-        if proc.poll() is not None:
-            raise RuntimeError(f"daemon exited: {log.read_text()}")
-        try:
-            with daemon.client(timeout_s=0.3, retries=0) as c:
-                c.status()
-            return daemon
-        except UnreachableError:
-            continue
-    daemon.stop()
-    raise RuntimeError(f"daemon did not answer: {log.read_text()}")
+    try:
+        with daemon.client() as probe:
+            probe.wait_ready(30.0)
+    except UnreachableError:
+        daemon.stop()
+        raise RuntimeError(f"daemon did not answer: {log.read_text()}") from None
+    if proc.poll() is not None:
+        raise RuntimeError(f"daemon exited: {log.read_text()}")
+    return daemon
