@@ -77,7 +77,7 @@ class SimBoard:
         self.faults = ChannelFaults()
         self.boot_count = 0
         self.writes_executed = 0  # inspection: how many write commands really ran
-        # inspection: (sim time, "write" | "zero" | "boot", first channel, codes), newest last
+        # inspection: (sim time, "write" | "zero" | "boot" | "ramped_to_zero", first channel, codes)
         self.write_log: deque[tuple[float, str, int, tuple[int, ...]]] = deque(maxlen=200_000)
         self.crc_errors = 0
         self.framing_errors = 0
@@ -153,6 +153,7 @@ class SimBoard:
                 if not volts.any():
                     self.codes[:] = 0
                     self.flags &= ~StatusFlag.RAMPING
+                    self.write_log.append((now, "ramped_to_zero", 0, ()))
                 self._drive(now)
 
     # ------------------------------------------------------------------ bytes

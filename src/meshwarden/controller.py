@@ -218,8 +218,8 @@ class Controller:
             await self.heartbeat_once()
 
     async def heartbeat_once(self) -> None:
-        """Feed every watchdog; notice resets (boot counter) and faulted links."""
-        results = await self.rack.each(lambda d: d.heartbeat())
+        """Feed every watchdog; notice resets (boot counter), tripped watchdogs and faulted links."""
+        results = await self.rack.each(lambda d: (d.heartbeat(), d.status()))
         for board_id, result in results.items():
             state = self.boards[board_id]
             if isinstance(result, asyncio.CancelledError):
@@ -231,8 +231,30 @@ class Controller:
                     self._emit("board_faulted", board=board_id)
                     await self.estop(reason=f"board {board_id} faulted")
                 continue
-            if state.boot_count is not None and result.boot_count != state.boot_count:
-                await self._board_was_reset(state, result.boot_count)
+            beat, status = result
+            if state.boot_count is not None and beat.boot_count != state.boot_count:
+                await self._board_was_reset(state, beat.boot_count)
+            elif status.watchdog_tripped and not state.needs_restore:
+                # The board acted on its own (we were stalled): its outputs are not what we think.
+                self._emit("watchdog_tripped", board=board_id)
+                await self._resync(board_id)
+                state.needs_restore = True
+
+    async def _resync(self, board_id: str) -> None:
+        """Believe the board: read back every output code into the controller's state."""
+        state = self.boards[board_id]
+        try:
+            codes = await self.rack.call(board_id, lambda d: d.read_codes(0, d.config.outputs))
+        except MeshwardenError as exc:
+            self._emit("link_fault", board=board_id, error=str(exc))
+            return
+        if list(codes) != state.codes:
+            changed = [i for i, (a, b) in enumerate(zip(codes, state.codes, strict=True)) if a != b]
+            self._emit("resync", board=board_id, channels=changed[:16])
+            for act in self.actuators.values():
+                if act.board.id == board_id and act.config.output.index in changed:
+                    act.value = None
+        state.codes = list(codes)
 
     async def _board_was_reset(self, state: BoardState, boot: int) -> None:
         board_id = state.config.id
@@ -265,6 +287,8 @@ class Controller:
         failed = {b: str(r) for b, r in results.items() if isinstance(r, BaseException)}
         if failed:
             raise FaultedRefused(f"cannot arm: {failed}", boards=sorted(failed))
+        for board_id in self.boards:  # ramps start from what the boards really hold
+            await self._resync(board_id)
         self.estopped = False
         self.armed = True
         self._emit("arm", client=client)

@@ -152,7 +152,7 @@ def _check_write_log(config: Config, name: str) -> None:
     last_code = {ch: 0 for ch in limits}
     last_time = {ch: -math.inf for ch in limits}
     for t, kind, first, codes in board.write_log:
-        if kind in ("zero", "boot"):
+        if kind in ("zero", "boot", "ramped_to_zero"):
             last_code = {ch: 0 for ch in limits}
             continue
         for offset, code in enumerate(codes):
@@ -355,3 +355,30 @@ def test_restart_adopts_outputs_without_writing(make_bench: Bench) -> None:
     assert board.writes_executed == writes
     with Journal(config.journal.path) as journal:
         assert journal.events(kind="adopted")
+
+
+def test_a_watchdog_trip_while_stalled_is_noticed_and_never_causes_a_jump(make_bench: Bench) -> None:
+    """If the daemon stalls past the watchdog timeout, the board ramps to zero on its own. The next
+    heartbeat notices, the controller re-reads the outputs, and a later set ramps up from the real
+    zero within the step limit - not from the stale value it believed."""
+    config, name = make_bench(watchdog_s=1)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 10.0}, volts=True)
+            assert ctl._heartbeat_task is not None
+            ctl._heartbeat_task.cancel()  # the daemon stalls: no heartbeats
+            await asyncio.sleep(2.0)  # 1 s timeout, then 20 V/s down to zero
+            assert inprocess.get(name).truth().terminal_volts[0] == 0.0
+            await ctl.heartbeat_once()
+            assert ctl.boards["b0"].needs_restore
+            assert ctl.snapshot()["actuators"]["c0"]["code"] == 0
+            await ctl.arm()
+            await ctl.restore()
+            await ctl.set({"c0": 12.0}, volts=True)
+
+    run(scenario())
+    _check_write_log(config, name)
+    with Journal(config.journal.path) as journal:
+        assert journal.events(kind="watchdog_tripped")
