@@ -78,7 +78,12 @@ def _cmd_serve(args: argparse.Namespace) -> int:
             flush=True,
         )
 
-    asyncio.run(serve(config, ports, args.bind, args.pub, ready, shutdown=args.shutdown))
+    try:
+        asyncio.run(serve(config, ports, args.bind, args.pub, ready, shutdown=args.shutdown))
+    except ConfigError as exc:
+        for issue in exc.issues:
+            print(issue, file=sys.stderr)
+        return EXIT_USAGE
     return EXIT_OK
 
 

@@ -447,6 +447,10 @@ class Controller:
                 await asyncio.sleep(delay)
             if self.estopped or (not self.armed and not allow_disarmed):
                 raise NotArmedRefused("stopped: emergency stop or disarm during the ramp")
+            if not self.armed:  # rule 3, checked on the real state at every step: only toward zero
+                current = self._current_codes()
+                if any(code > current[a] for a, code in step.codes.items()):
+                    raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
             await self._write_step(step.codes, client)
             self._last_step_time = self.monotonic()
 
@@ -467,6 +471,8 @@ class Controller:
             return_exceptions=True,
         )
         now = self.monotonic()
+        if self.estopped:
+            return  # an emergency stop zeroed the boards after these writes: zero is the truth
         errors = []
         for (board_id, (first, span)), result in zip(batches.items(), results, strict=True):
             if isinstance(result, BaseException):

@@ -90,3 +90,19 @@ def test_a_revoked_key_fails_after_reload(tmp_path: Path) -> None:
             assert boss.status()["armed"] is False
     finally:
         d.stop()
+
+
+def test_serving_beyond_loopback_without_keys_is_refused(tmp_path: Path) -> None:
+    """`--bind` cannot sidestep the configuration's rule: no keys, no listening beyond loopback."""
+    import subprocess
+    import sys
+
+    config, _ = write_bench(tmp_path)
+    result = subprocess.run(
+        [sys.executable, "-m", "meshwarden.cli", "serve", "--config", str(config), "--bind", "tcp://0.0.0.0:17999"],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert result.returncode == 2
+    assert "beyond loopback" in result.stderr and "Traceback" not in result.stderr

@@ -340,3 +340,24 @@ def test_in_process_url_is_exclusive_and_reports_bad_urls(url_rack: SimRack) -> 
             serial.serial_for_url("meshsim://nope/b0")
     finally:
         port.close()
+
+
+def test_time_scale_speeds_up_simulated_time() -> None:
+    """With time_scale=100 a 2 s watchdog trips after a few hundredths of a wall second."""
+    import time
+
+    from meshwarden.protocol import messages as msg
+    from tests.conftest import DEMO_CONFIG
+
+    url = f"meshsim://scaled/b0?config={DEMO_CONFIG}&time_scale=100"
+    port = serial.serial_for_url(url, timeout=0.2)
+    try:
+        client = BareClient(port)
+        client.request(msg.ConfigureWatchdog(2000, msg.WatchdogAction.HOLD))
+        time.sleep(0.1)  # 10 simulated seconds
+        inprocess.get("scaled").tick()
+        status = client.request(msg.Status())
+        assert isinstance(status, msg.StatusReply) and status.flags & StatusFlag.WATCHDOG_TRIPPED
+    finally:
+        port.close()
+        inprocess.remove("scaled")

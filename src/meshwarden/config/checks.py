@@ -164,11 +164,12 @@ def _check_monitors(config: Config, p: f.Problems) -> None:
 
 def _check_service(config: Config, p: f.Problems) -> None:
     service = config.service
-    if not all(_is_loopback(e) for e in (service.bind, service.pub)) and service.server_secret_key_file is None:
+    if not all(is_loopback(e) for e in (service.bind, service.pub)) and service.server_secret_key_file is None:
         p.add(("service",), "binding beyond loopback needs server_secret_key_file and an allow-list of clients")
 
 
-def _is_loopback(endpoint: str) -> bool:
+def is_loopback(endpoint: str) -> bool:
+    """True for tcp endpoints on 127.0.0.0/8 or ::1, and for ipc/inproc endpoints."""
     if not endpoint.startswith("tcp://"):
         return True
     host = endpoint[len("tcp://") :].rsplit(":", 1)[0]

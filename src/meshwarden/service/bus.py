@@ -92,6 +92,21 @@ class Bus:
     # ------------------------------------------------------------------ setup
 
     def start(self) -> None:
+        from meshwarden.config.checks import is_loopback
+
+        exposed = [e for e in (self.bind_endpoint, self.pub_endpoint) if not is_loopback(e)]
+        if exposed and not self.curve:
+            raise ConfigError(
+                [
+                    ConfigIssue(
+                        str(self.config.source or "<config>"),
+                        0,
+                        "service",
+                        f"{exposed[0]} is beyond loopback: configure server_secret_key_file "
+                        "and service.clients (CURVE) first",
+                    )
+                ]
+            )
         if self.curve:
             assert self.config.service.server_secret_key_file is not None
             public, secret = zmq.auth.load_certificate(str(self.config.service.server_secret_key_file))
