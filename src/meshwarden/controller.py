@@ -102,6 +102,7 @@ class Controller:
                     act.dwell_s,
                     act.pull_in_volts,
                     config.safety.pull_in_margin,
+                    (1 << board.dac_bits) - 1,
                 ),
                 table.version,
             )

@@ -43,10 +43,11 @@ class ChannelLimit:
     dwell_s: float
     pull_in_volts: float
     margin: float
+    max_code: int = 65535  # the DAC's top code, one LSB below full scale
 
     @property
     def hard_limit_code(self) -> int:
-        return math.floor(self.hard_limit_volts / self.lsb_volts + 1e-9)
+        return min(math.floor(self.hard_limit_volts / self.lsb_volts + 1e-9), self.max_code)
 
     @property
     def step_limit_code(self) -> int:

@@ -88,3 +88,10 @@ def test_large_steps_near_the_limit_are_split_for_the_dynamic_check() -> None:
 
 def test_no_plan_when_nothing_moves() -> None:
     assert plan_ramp({"c0": limit("c0")}, {"c0": 100}, {"c0": 100}).steps == ()
+
+
+def test_hard_limit_never_exceeds_the_top_code() -> None:
+    """A limit equal to full scale maps to the top code 2^N - 1, one LSB below full scale
+    (Kester MT-001 convention), never to the non-existent code 2^N."""
+    full = ChannelLimit("c0", "phase", LSB, 60.0, 2.0, 0.0, 1000.0, 0.0, 65535)
+    assert full.hard_limit_code == 65535
