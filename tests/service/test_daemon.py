@@ -136,7 +136,7 @@ def test_sigstop_then_sigcont(daemon: Daemon) -> None:
             started = time.monotonic()
             with pytest.raises(UnreachableError):
                 mw.status()
-            assert time.monotonic() - started < 0.3 * 2 + 0.5
+            assert time.monotonic() - started < 0.3 * 2 + 1.0  # generous: a loaded machine answers late
         finally:
             os.kill(daemon.proc.pid, signal.SIGCONT)
         assert mw.status()["armed"] is False

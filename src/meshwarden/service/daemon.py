@@ -27,24 +27,30 @@ async def serve(
     pub: str | None = None,
     ready: Callable[[Bus], None] | None = None,
     shutdown: str = "hold",
+    stop_event: asyncio.Event | None = None,
 ) -> None:
+    """Serve until SIGTERM/SIGINT, or until ``stop_event`` is set (a daemon run in a thread, where
+    the process's signals are not its to take)."""
     log = get_logger(component="daemon")
-    stop = asyncio.Event()
+    stop = stop_event or asyncio.Event()
     loop = asyncio.get_running_loop()
+    signals = stop_event is None
     async with open_controller(config, ports) as controller:
         bus = Bus(controller, config, bind, pub)
         bus.start()
-        for sig in (signal.SIGTERM, signal.SIGINT):
-            loop.add_signal_handler(sig, stop.set)
-        loop.add_signal_handler(signal.SIGHUP, lambda: log.info("keys reloaded", count=bus.reload_keys()))
+        if signals:
+            for sig in (signal.SIGTERM, signal.SIGINT):
+                loop.add_signal_handler(sig, stop.set)
+            loop.add_signal_handler(signal.SIGHUP, lambda: log.info("keys reloaded", count=bus.reload_keys()))
         if ready is not None:
             ready(bus)
         try:
             await stop.wait()
         finally:
             log.info("stopping")
-            for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
-                loop.remove_signal_handler(sig)
+            if signals:
+                for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
+                    loop.remove_signal_handler(sig)
             bus.dispatcher.jobs.cancel_all()
             await bus.close()
             if shutdown == "ramp_to_zero" and not controller.estopped:
