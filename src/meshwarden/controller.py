@@ -37,6 +37,8 @@ from meshwarden.guard import ChannelLimit, RampPlan, check_targets, plan_ramp
 from meshwarden.journal import Journal, TargetRecord
 from meshwarden.logsetup import get_logger
 from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
+from meshwarden.monitors import reading
+from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes
 
 Listener = Callable[[str, dict[str, Any]], None]
 
@@ -129,7 +131,8 @@ class Controller:
         self.rack.start()
         journaled = self.journal.latest_targets()
         boots = self.journal.board_boot_counts()
-        results = await self.rack.each(self._bring_up)
+        chip = self.config.chip
+        results = await self.rack.each(lambda driver: bring_up(driver, chip))
         for board_id, result in results.items():
             state = self.boards[board_id]
             if isinstance(result, BaseException):
@@ -137,11 +140,10 @@ class Controller:
                 self._emit("board_unreachable", board=board_id, error=str(result))
                 self.log.error("board unreachable at start", board=board_id, error=str(result))
                 continue
-            identity, codes, tripped = result
-            state.identity, state.boot_count = identity, identity.boot_count
-            state.codes = list(codes)
-            self._adopt(state, journaled, boots.get(board_id), tripped)
-            self.journal.record_board(board_id, identity.boot_count, identity.serial)
+            state.identity, state.boot_count = result.identity, result.identity.boot_count
+            state.codes = list(result.codes)
+            self._adopt(state, journaled, boots.get(board_id), result)
+            self.journal.record_board(board_id, result.identity.boot_count, result.identity.serial)
         for aid, record in journaled.items():
             if aid in self.actuators:
                 act = self.actuators[aid]
@@ -152,51 +154,27 @@ class Controller:
         )
         self._heartbeat_task = asyncio.create_task(self._heartbeat_loop(), name="heartbeat")
 
-    def _bring_up(self, driver: BoardDriver) -> tuple[BoardIdentity, tuple[int, ...], bool]:
-        board = driver.config
-        driver.open()
-        identity = driver.identify()
-        expected = (board.outputs, board.monitor_inputs, board.dac_bits, round(board.full_scale_volts, 3))
-        found = (identity.outputs, identity.monitor_inputs, identity.dac_bits, round(identity.full_scale_volts, 3))
-        if expected != found:
-            raise MeshwardenError(
-                f"board {board.id} reports outputs/inputs/DAC bits/full scale {found}, "
-                f"the configuration says {expected}"
-            )
-        driver.configure_watchdog(board.watchdog.timeout_s, board.watchdog.action)
-        gains = [round(g) for g in board.monitor_gains_ohms]
-        indices = [0] * board.monitor_inputs
-        for mon in self.config.chip.monitors:
-            if mon.input.board == board.id and round(mon.transimpedance_ohms) in gains:
-                indices[mon.input.index] = gains.index(round(mon.transimpedance_ohms))
-        if board.monitor_inputs:
-            driver.set_monitor_gains(0, tuple(indices))
-        tripped = driver.status().watchdog_tripped
-        codes = driver.read_codes(0, board.outputs)
-        return identity, codes, tripped
-
     def _adopt(
-        self, state: BoardState, journaled: dict[str, TargetRecord], old_boot: int | None, tripped: bool
+        self, state: BoardState, journaled: dict[str, TargetRecord], old_boot: int | None, found: BoardFound
     ) -> None:
         board_id = state.config.id
-        expected = [0] * state.config.outputs
-        for record in journaled.values():
-            if record.board == board_id and record.channel < len(expected):
-                expected[record.channel] = record.code
-        if old_boot is not None and state.boot_count != old_boot:
-            state.needs_restore = any(expected)
-            self._emit("board_reset_detected", board=board_id, old_boot=old_boot, boot=state.boot_count)
-        elif tripped:
-            state.needs_restore = any(expected)
-            self._emit("watchdog_tripped", board=board_id)
-        elif state.codes == expected:
-            self._emit("adopted", board=board_id, channels_on=sum(1 for c in state.codes if c))
-            return
-        else:
-            state.needs_restore = any(expected)
-            differ = [i for i, (a, b) in enumerate(zip(state.codes, expected, strict=True)) if a != b]
-            self._emit("adoption_mismatch", board=board_id, channels=differ[:16])
-        self.log.warning("board not adopted; outputs left as found", board=board_id, needs_restore=state.needs_restore)
+        verdict = adopt(found, journaled_codes(board_id, state.config.outputs, journaled), old_boot)
+        state.needs_restore = verdict.needs_restore
+        detail: dict[str, Any] = {"board": board_id}
+        if verdict.kind == "adopted":
+            detail["channels_on"] = sum(1 for c in found.codes if c)
+        elif verdict.kind == "board_reset_detected":
+            detail.update(old_boot=old_boot, boot=found.identity.boot_count)
+        elif verdict.kind == "adoption_mismatch":
+            detail["channels"] = list(verdict.channels[:16])
+        self._emit(verdict.kind, **detail)
+        if verdict.kind != "adopted":
+            self.log.warning(
+                "board not adopted; outputs left as found",
+                board=board_id,
+                reason=verdict.kind,
+                needs_restore=state.needs_restore,
+            )
 
     async def close(self) -> None:
         """Stop background work and the board threads; outputs stay as they are (the boards'
@@ -550,10 +528,7 @@ class Controller:
             board = self.config.rack.board(mon.input.board)
             identity = self.boards[board.id].identity
             full_scale = identity.adc_full_scale_volts if identity else 2.5
-            counts = sums[mon.id] / max(1, average)
-            volts = counts / (1 << board.adc_bits) * full_scale
-            amps = volts / mon.transimpedance_ohms
-            out[mon.id] = {"amps": amps, "watts": amps / mon.responsivity_a_per_w, "counts": counts}
+            out[mon.id] = reading(sums[mon.id] / max(1, average), mon, board.adc_bits, full_scale)
         return out
 
     async def read_sense(self) -> dict[str, float]:
