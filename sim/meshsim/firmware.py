@@ -274,7 +274,9 @@ class SimBoard:
         inputs = np.arange(req.first, req.first + req.count)
         monitors = self.wiring.input_monitor[inputs]
         taps = self.wiring.tap_powers_w(now)
-        power = np.where(monitors >= 0, taps[np.maximum(monitors, 0)], 0.0)
+        power = np.zeros(req.count)
+        wired = monitors >= 0
+        power[wired] = taps[monitors[wired]]
         extra = np.zeros(req.count)
         for k, i in enumerate(inputs):
             if i in self.faults.dead_inputs:

@@ -14,12 +14,13 @@ from meshsim.clock import ManualClock
 from meshsim.faults import Fault, FaultSpecError, parse_faults
 from meshsim.firmware import BOOT_TIME_S
 from meshsim.rack import SimRack
+from meshsim.scenario import BoardSpec, Scenario
 from meshwarden.errors import ProtocolError
 from meshwarden.protocol import Frame, decode_frame, decode_reply, encode_frame
 from meshwarden.protocol import messages as m
 from meshwarden.protocol.messages import NakReason, StatusFlag
 from tests.protocol.golden import MEANING, golden_rows
-from tests.sim.helpers import BareClient, small_rack
+from tests.sim.helpers import BareClient, small_params, small_rack
 
 
 def exchange(rack: SimRack, message: m.Message, seq: int = 1, address: int = 1) -> m.Message:
@@ -38,22 +39,14 @@ def rack() -> SimRack:
 
 
 def test_golden_requests_are_understood_by_the_firmware() -> None:
-    """Every golden request of docs/protocol.md, fed to a simulated board, gets an acknowledgement
-    of its command (the simulator side of the golden-example check)."""
+    """Every golden request of docs/protocol.md, fed to a simulated 64-output board at the
+    example's address, gets an acknowledgement of its command (the simulator side of the check)."""
     rows = golden_rows()
     for name, (address, seq, command, _) in MEANING.items():
         if command & m.REPLY_BIT or command == m.NAK_COMMAND:
             continue
-        rack, clock = small_rack()
-        clock.advance(1.0)
-        board = rack.board("b0")
-        board.spec = type(board.spec)(
-            **{**board.spec.__dict__, "address": address, "outputs": 64, "monitor_inputs": 32}
-        )
-        board.codes = np.zeros(64, dtype=np.int64)
-        board.gain_index = np.zeros(32, dtype=np.int64)
-        board.wiring.channel_actuator = np.concatenate([board.wiring.channel_actuator, np.full(56, -1)])
-        board.wiring.input_monitor = np.concatenate([board.wiring.input_monitor, np.full(28, -1)])
+        board = BoardSpec("b0", address=address, outputs=64, monitor_inputs=32)
+        rack = SimRack(Scenario((board,), (), (), ()), small_params(lattice=None), ManualClock(1.0))
         replies = rack.exchange("b0", rows[name])
         frame = decode_frame(replies[0][1][:-1])
         assert (frame.address, frame.seq, frame.command) == (address, seq, command | m.REPLY_BIT), name
