@@ -214,20 +214,29 @@ class Client:
     # ------------------------------------------------------------------ telemetry
 
     def subscribe(
-        self, topics: list[str] | None = None, timeout_s: float | None = None
+        self, topics: list[str] | None = None, timeout_s: float | None = None, settle_s: float = 0.2
     ) -> Iterator[tuple[str, dict[str, Any]]]:
-        """Telemetry messages as (topic, message), in order; a gap in ``seq`` is reported as a
-        ``("gap", {"missed": n})`` item. Ends after ``timeout_s`` without a message."""
+        """Telemetry messages as (topic, message), in order; when subscribed to every topic, a gap
+        in ``seq`` is reported as a ``("gap", {"missed": n})`` item. Ends after ``timeout_s``
+        without a message. The subscription is made before this returns, and ``settle_s`` gives it
+        time to reach the daemon (ZeroMQ's "slow joiner"), so what you do next is seen."""
         sub = self._new_socket(zmq.SUB, self.telemetry_endpoint)
         for topic in topics or [""]:
             sub.setsockopt(zmq.SUBSCRIBE, topic.encode())
+        time.sleep(settle_s)
+        return self._messages(sub, topics is None, timeout_s)
+
+    @staticmethod
+    def _messages(
+        sub: zmq.Socket[bytes], every_topic: bool, timeout_s: float | None
+    ) -> Iterator[tuple[str, dict[str, Any]]]:
         last_seq: int | None = None
         try:
             while sub.poll(None if timeout_s is None else int(timeout_s * 1000)):
                 raw_topic, body = sub.recv_multipart()
                 message = json.loads(body)
                 seq = int(message.get("seq", 0))
-                if last_seq is not None and topics is None and seq > last_seq + 1:
+                if last_seq is not None and every_topic and seq > last_seq + 1:
                     yield "gap", {"missed": seq - last_seq - 1}
                 last_seq = seq
                 yield raw_topic.decode(), message

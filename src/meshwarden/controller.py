@@ -346,9 +346,16 @@ class Controller:
         return out
 
     async def set(
-        self, values: dict[str, float], *, volts: bool = False, client: str | None = None, request: str | None = None
+        self,
+        values: dict[str, float],
+        *,
+        volts: bool = False,
+        client: str | None = None,
+        request: str | None = None,
+        progress: Callable[[int, int], None] | None = None,
     ) -> dict[str, dict[str, Any]]:
-        """Apply a whole request, or refuse it whole before the first write."""
+        """Apply a whole request, or refuse it whole before the first write. ``progress(done,
+        total)`` is called after each step of the ramp."""
         try:
             if self.estopped:
                 raise NotArmedRefused("emergency stop is latched: arm again first")
@@ -368,7 +375,7 @@ class Controller:
             self.journal.record_targets(
                 [self._record(a, code, value, now) for a, (code, value) in prepared.items()], request, client
             )
-            await self._execute(plan, client, allow_disarmed=not self.armed)
+            await self._execute(plan, client, allow_disarmed=not self.armed, progress=progress)
             for aid, (_, value) in prepared.items():
                 self.actuators[aid].value = value
         return {aid: self.describe(aid) for aid in prepared}
@@ -414,7 +421,13 @@ class Controller:
     def _unavailable_boards(self) -> frozenset[str]:
         return frozenset(b for b, s in self.boards.items() if s.faulted or s.needs_restore)
 
-    async def _execute(self, plan: RampPlan, client: str | None, allow_disarmed: bool) -> None:
+    async def _execute(
+        self,
+        plan: RampPlan,
+        client: str | None,
+        allow_disarmed: bool,
+        progress: Callable[[int, int], None] | None = None,
+    ) -> None:
         """Write the plan's steps, waiting each step's dwell; stop at an emergency stop."""
         for index, step in enumerate(plan.steps):
             moving = list(step.codes)
@@ -432,6 +445,8 @@ class Controller:
                     raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
             await self._write_step(step.codes, client)
             self._last_step_time = self.monotonic()
+            if progress is not None:
+                progress(index + 1, len(plan.steps))
 
     async def _write_step(self, codes: dict[str, int], client: str | None) -> None:
         by_board: dict[str, dict[int, int]] = {}

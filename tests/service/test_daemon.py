@@ -166,3 +166,25 @@ def test_kill_9_and_restart_adopts_without_writes(tmp_path: Path) -> None:
             assert second.stop() == 0
     finally:
         stop_server(sim)
+
+
+def test_a_ramp_is_a_job_with_progress_on_telemetry(daemon: Daemon) -> None:
+    """A long set returns a job id at once (wait=false); its progress and end come on the `job`
+    topic; status is served meanwhile."""
+    with daemon.client() as mw:
+        mw.arm()
+        stream = mw.subscribe(["job"], timeout_s=10)
+        started = mw.set({"c0": 30.0, "c1": 30.0}, volts=True, wait=False)
+        assert started["state"] == "running"
+        assert mw.status()["armed"]  # not blocked by the ramp
+        progress, final = [], None
+        for _, message in stream:
+            if message["job"] != started["job"]:
+                continue
+            if "progress" in message:
+                progress.append(message["progress"])
+            if message["state"] != "running":
+                final = message
+                break
+    assert final is not None and final["state"] == "done"
+    assert progress and progress == sorted(progress) and progress[-1] == 1.0

@@ -8,6 +8,8 @@ requests that succeed are not, so that polling does not fill the journal).
 from __future__ import annotations
 
 import asyncio
+import time
+from collections.abc import Callable
 from typing import Any
 
 from meshwarden import __version__
@@ -132,7 +134,13 @@ class Dispatcher:
         self.controller.prepare(values, volts=volts)  # refuse before a job exists
         actuators = [self.controller.resolve(name)[0] for name in values]
         self.leases.check(request.client, actuators)
-        job = self.jobs.start("set", who, self.controller.set(values, volts=volts, client=who, request=request.id))
+        job_id = self.jobs.next_id()
+        job = self.jobs.start(
+            "set",
+            who,
+            self.controller.set(values, volts=volts, client=who, request=request.id, progress=self._progress(job_id)),
+            job_id=job_id,
+        )
         if not request.args.get("wait", True):
             return {"job": job.id, "state": "running"}
         try:
@@ -144,6 +152,30 @@ class Dispatcher:
                 raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
             raise
         return {"job": job.id, "state": "done", "applied": applied}
+
+    def _progress(self, job_id: str) -> Callable[[int, int], None]:
+        """Publish a job's progress on telemetry, at most ten times a second (and at its end)."""
+        last = [0.0]
+
+        def report(done: int, total: int) -> None:
+            now = time.monotonic()
+            if done == total or now - last[0] >= 0.1:
+                last[0] = now
+                self._spawn(
+                    self.telemetry.publish(
+                        "job",
+                        {
+                            "job": job_id,
+                            "kind": "set",
+                            "state": "running",
+                            "progress": done / total,
+                            "step": done,
+                            "steps": total,
+                        },
+                    )
+                )
+
+        return report
 
     async def _op_lease(self, request: Request, who: str) -> Any:
         actuators = self._actuators_of(request.args["targets"])

@@ -46,8 +46,11 @@ class Jobs:
         self._ids = itertools.count(1)
         self._background: set[asyncio.Future[Any]] = set()
 
-    def start(self, kind: str, client: str, work: Awaitable[Any]) -> Job:
-        job_id = f"job-{next(self._ids)}"
+    def next_id(self) -> str:
+        return f"job-{next(self._ids)}"
+
+    def start(self, kind: str, client: str, work: Awaitable[Any], job_id: str | None = None) -> Job:
+        job_id = job_id or self.next_id()
         task = asyncio.ensure_future(work)
         job = Job(job_id, kind, client, task)
         self._jobs[job_id] = job
