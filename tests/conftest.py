@@ -7,6 +7,7 @@ and hide shutdown bugs.
 
 from __future__ import annotations
 
+import os
 import threading
 import time
 from collections.abc import Iterator
@@ -18,18 +19,54 @@ REPO = Path(__file__).resolve().parents[1]
 DEMO_CONFIG = REPO / "config" / "demo.yaml"
 
 
+def _children() -> set[int]:
+    """Process ids of this process's living children (from /proc)."""
+    out: set[int] = set()
+    for task in Path(f"/proc/{os.getpid()}/task").iterdir():
+        try:
+            out |= {int(p) for p in (task / "children").read_text().split()}
+        except OSError:
+            continue
+    return out
+
+
+def _ptys() -> int:
+    """How many pseudo-terminal ends this process holds open."""
+    count = 0
+    for fd in Path("/proc/self/fd").iterdir():
+        try:
+            target = os.readlink(fd)
+        except OSError:
+            continue
+        count += target.startswith("/dev/pts/") or target == "/dev/ptmx"
+    return count
+
+
 @pytest.fixture(autouse=True)
-def no_leaked_threads() -> Iterator[None]:
-    """Fail a test that leaves a non-daemon thread of its own running."""
-    before = set(threading.enumerate())
+def nothing_outlives_its_test() -> Iterator[None]:
+    """Fail a test that leaves a thread, a child process (daemon, simulator) or a pty behind:
+    a leak would make later tests flaky and hide shutdown bugs."""
+    threads, children, ptys = set(threading.enumerate()), _children(), _ptys()
     yield
-    deadline = time.monotonic() + 2.0
+    deadline = time.monotonic() + 3.0
     while True:
-        leaked = [t for t in threading.enumerate() if t not in before and t.is_alive() and not t.daemon]
-        if not leaked or time.monotonic() > deadline:
+        leaked = [
+            t.name
+            for t in threading.enumerate()
+            if t not in threads and t.is_alive() and not t.name.startswith(_LIBRARY_THREADS)
+        ]
+        orphans = _children() - children
+        extra_ptys = _ptys() - ptys
+        if not (leaked or orphans or extra_ptys > 0) or time.monotonic() > deadline:
             break
-        time.sleep(0.02)
-    assert not leaked, f"threads left running: {[t.name for t in leaked]}"
+        time.sleep(0.05)
+    assert not leaked, f"threads left running: {leaked}"
+    assert not orphans, f"child processes left running: {sorted(orphans)}"
+    assert extra_ptys <= 0, f"{extra_ptys} pty ends left open"
+
+
+# Threads that libraries start once per process and keep (not ours to stop).
+_LIBRARY_THREADS = ("asyncio_", "ThreadPoolExecutor", "Dummy-", "ZMQbg", "zmq")
 
 
 @pytest.fixture

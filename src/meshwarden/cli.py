@@ -84,6 +84,9 @@ def _cmd_serve(args: argparse.Namespace) -> int:
         for issue in exc.issues:
             print(issue, file=sys.stderr)
         return EXIT_USAGE
+    except MeshwardenError as exc:
+        print(f"meshwarden: {exc.message}", file=sys.stderr)
+        return EXIT_USAGE
     return EXIT_OK
 
 

@@ -188,3 +188,16 @@ def test_a_ramp_is_a_job_with_progress_on_telemetry(daemon: Daemon) -> None:
                 break
     assert final is not None and final["state"] == "done"
     assert progress and progress == sorted(progress) and progress[-1] == 1.0
+
+
+def test_a_taken_port_is_a_clear_error(daemon: Daemon, tmp_path: Path) -> None:
+    """A second daemon on the same endpoint says which endpoint is taken, exit 2, no traceback."""
+    config, _ = write_bench(tmp_path / "second")
+    result = subprocess.run(
+        [sys.executable, "-m", "meshwarden.cli", "serve", "--config", str(config), "--bind", daemon.endpoint],
+        capture_output=True,
+        text=True,
+        timeout=60,
+    )
+    assert result.returncode == 2
+    assert f"cannot listen on {daemon.endpoint}" in result.stderr and "Traceback" not in result.stderr

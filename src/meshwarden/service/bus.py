@@ -134,8 +134,11 @@ class Bus:
         self.router.setsockopt(zmq.LINGER, 0)
         self.publisher.setsockopt(zmq.LINGER, 0)
         self.publisher.setsockopt(zmq.SNDHWM, 10000)
-        self.router.bind(self.bind_endpoint)
-        self.publisher.bind(self.pub_endpoint)
+        for sock, endpoint in ((self.router, self.bind_endpoint), (self.publisher, self.pub_endpoint)):
+            try:
+                sock.bind(endpoint)
+            except zmq.ZMQError as exc:
+                raise MeshwardenError(f"cannot listen on {endpoint}: {exc.strerror}", endpoint=endpoint) from exc
         self.bound = str(self.router.getsockopt_string(zmq.LAST_ENDPOINT))
         self.pub_bound = str(self.publisher.getsockopt_string(zmq.LAST_ENDPOINT))
         self._serve_task = asyncio.create_task(self._serve(), name="bus")
