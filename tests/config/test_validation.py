@@ -173,10 +173,11 @@ def test_duplicate_board_id(tmp_path: Path) -> None:
 
 
 def test_yaml_syntax_error(tmp_path: Path) -> None:
+    """A YAML syntax error is one line at the place the parser gave up."""
     text = replace_line("  gates:", "  gates: [")
-    lines = problems(text, tmp_path)
-    assert len(lines) == 1
-    assert lines[0].startswith("config.yaml:") and "YAML syntax error" in lines[0]
+    assert problems(text, tmp_path) == [
+        "config.yaml:11: <top>: YAML syntax error: expected the node content, but found '-'"
+    ]
 
 
 def test_missing_include(tmp_path: Path) -> None:
