@@ -177,11 +177,23 @@ def bench_bus(repeats: int) -> dict[str, float]:
         def monitors() -> object:
             return client.monitors()
 
+        rss_start = _rss_kib(daemon.pid)
         single = median_wall_seconds(one_set, repeats)
         whole = median_wall_seconds(chip_set, max(20, repeats // 10))
         reads = median_wall_seconds(monitors, repeats)
         client.disarm()
         client.close()
+        rss_end = _rss_kib(daemon.pid)
+        bare = subprocess.run(
+            [
+                sys.executable,
+                "-c",
+                "import zmq, numpy, scipy.interpolate, serial, yaml, structlog;print(open('/proc/self/status').read())",
+            ],
+            capture_output=True,
+            text=True,
+        ).stdout
+        rss_bare = next(int(line.split()[1]) for line in bare.splitlines() if line.startswith("VmRSS:"))
     finally:
         daemon.terminate()
         daemon.wait(timeout=20)
@@ -194,8 +206,19 @@ def bench_bus(repeats: int) -> dict[str, float]:
         "set_whole_chip_ratio": whole / baseline,
         "monitors_read_48_us": reads * 1e6,
         "monitors_read_ratio": reads / baseline,
+        "daemon_rss_after_start_mib": rss_start / 1024,
+        "daemon_rss_after_requests_mib": rss_end / 1024,
+        "daemon_rss_ratio_to_bare_python_with_its_imports": rss_end / rss_bare,
+        "daemon_rss_growth_during_requests_ratio": rss_end / rss_start,
         **telemetry,
     }
+
+
+def _rss_kib(pid: int) -> int:
+    for line in open(f"/proc/{pid}/status", encoding="ascii"):
+        if line.startswith("VmRSS:"):
+            return int(line.split()[1])
+    return 0
 
 
 def bench_telemetry(count: int = 20000) -> dict[str, float]:
