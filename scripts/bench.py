@@ -215,7 +215,7 @@ def bench_bus(repeats: int) -> dict[str, float]:
 
 
 def _rss_kib(pid: int) -> int:
-    for line in open(f"/proc/{pid}/status", encoding="ascii"):
+    for line in Path(f"/proc/{pid}/status").read_text(encoding="ascii").splitlines():
         if line.startswith("VmRSS:"):
             return int(line.split()[1])
     return 0
