@@ -26,6 +26,7 @@ from meshwarden.config.model import ActuatorConfig, BoardConfig, Config
 from meshwarden.drivers.base import BoardDriver, BoardIdentity
 from meshwarden.drivers.rack import EMERGENCY, Rack
 from meshwarden.errors import (
+    AbortedError,
     FaultedRefused,
     LinkError,
     MeshwardenError,
@@ -201,8 +202,8 @@ class Controller:
         results = await self.rack.each(lambda d: (d.heartbeat(), d.status()))
         for board_id, result in results.items():
             state = self.boards[board_id]
-            if isinstance(result, asyncio.CancelledError):
-                continue
+            if isinstance(result, asyncio.CancelledError | AbortedError):
+                continue  # an emergency stop took the board meanwhile
             if isinstance(result, BaseException):
                 self._emit("link_fault", board=board_id, error=str(result))
                 if self.rack.drivers[board_id].faulted and not state.faulted:

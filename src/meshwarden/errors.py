@@ -16,6 +16,7 @@ on the wire" without knowing the details::
     │   ├── ChecksumError                checksum        CRC mismatch
     │   └── BoardNakError                board_nak       the board refused a command
     ├── ReadbackError                    readback        a board latched other codes than written
+    ├── AbortedError                     aborted         queued board work dropped by an emergency stop
     └── RefusedError                     refused         a request that would break a safety rule
         ├── LimitRefused                 limit           above a voltage limit
         ├── UnreachableRefused           unreachable     a logical value outside the calibration
@@ -189,3 +190,9 @@ class UnreachableError(MeshwardenError):
     """The daemon did not answer within timeout x (retries + 1)."""
 
     code = "unreachable"
+
+
+class AbortedError(MeshwardenError):
+    """Board work that was queued, or retrying, when an emergency stop took the board."""
+
+    code = "aborted"

@@ -19,6 +19,7 @@ from typing import Any, TypeVar
 from meshwarden.config.model import RackConfig
 from meshwarden.drivers.base import BoardDriver
 from meshwarden.drivers.registry import create_driver
+from meshwarden.errors import AbortedError
 
 T = TypeVar("T")
 EMERGENCY, NORMAL = 0, 1
@@ -91,8 +92,16 @@ class Rack:
             self.workers[board_id] = BoardWorker(driver)
 
     async def call(self, board_id: str, fn: Callable[[BoardDriver], T], priority: int = NORMAL) -> T:
-        """Run ``fn(driver)`` on the board's thread and await its result."""
-        return await asyncio.wrap_future(self.workers[board_id].submit(fn, priority))
+        """Run ``fn(driver)`` on the board's thread and await its result. Work dropped from the
+        queue by an emergency stop raises :class:`AbortedError` (not a task cancellation)."""
+        future = self.workers[board_id].submit(fn, priority)
+        try:
+            return await asyncio.wrap_future(future)
+        except asyncio.CancelledError:
+            task = asyncio.current_task()
+            if future.cancelled() and (task is None or not task.cancelling()):
+                raise AbortedError(f"board {board_id}: work dropped by an emergency stop", board=board_id) from None
+            raise
 
     async def each(
         self, fn: Callable[[BoardDriver], T], boards: Iterable[str] | None = None, priority: int = NORMAL
