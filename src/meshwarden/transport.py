@@ -29,7 +29,7 @@ def register_url_handlers() -> None:
     _registered = True
 
 
-def open_port(url: str, timeout_s: float, write_timeout_s: float = 1.0) -> serial.SerialBase:
+def open_port(url: str, timeout_s: float, write_timeout_s: float = 1.0, baud_rate: int = 115200) -> serial.SerialBase:
     """Open the link to a board; raises ``serial.SerialException`` (or OSError) when it cannot."""
     register_url_handlers()
     port = serial.serial_for_url(

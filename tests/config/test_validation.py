@@ -268,3 +268,16 @@ def test_boolean_is_not_a_voltage(tmp_path: Path) -> None:
     assert problems(text, tmp_path) == [
         "config.yaml:8: chip.actuators[0].limit_volts: expected a voltage in V, got a boolean"
     ]
+
+
+def test_board_link_settings(tmp_path: Path) -> None:
+    """Baud rate, retries and the error-rate limit are read and range-checked."""
+    text = replace_line(
+        "      full_scale_volts: 60", "      full_scale_volts: 60\n      baud_rate: 921600\n      error_rate_limit: 0.1"
+    )
+    board = load_config(write_config(tmp_path, text)).rack.boards[0]
+    assert (board.baud_rate, board.error_rate_limit) == (921600, 0.1)
+    bad = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      baud_rate: 12")
+    assert problems(bad, tmp_path) == [
+        "config.yaml:6: rack.boards[0].baud_rate: 12 is out of range (allowed 1200 to 12000000)"
+    ]

@@ -45,6 +45,7 @@ BOARD_KEYS = (
     "timeout_s",
     "retries",
     "error_rate_limit",
+    "baud_rate",
 )
 ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
 ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
@@ -84,6 +85,7 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
         timeout_s=s.get("timeout_s", f.quantity(SECONDS, maximum=60.0), defaults.timeout_s),
         retries=s.get("retries", f.integer(0, 10), defaults.retries),
         error_rate_limit=s.get("error_rate_limit", f.fraction, defaults.error_rate_limit),
+        baud_rate=s.get("baud_rate", f.integer(1200, 12_000_000), defaults.baud_rate),
     )
     if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
         return None

@@ -62,6 +62,7 @@ class BoardConfig:
     timeout_s: float = 0.5
     retries: int = 3
     error_rate_limit: float = 0.25
+    baud_rate: int = 115200
 
 
 @dataclass(frozen=True)

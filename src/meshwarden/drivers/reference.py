@@ -51,7 +51,7 @@ class ReferenceDriver(BoardDriver):
 
     def _open_link(self) -> None:
         try:
-            self.port = open_port(self.config.url, READ_SLICE_S)
+            self.port = open_port(self.config.url, READ_SLICE_S, baud_rate=self.config.baud_rate)
         except (serial.SerialException, OSError, ValueError) as exc:
             raise LinkError(
                 f"board {self.config.id}: cannot open {self.config.url}: {exc}", board=self.config.id
