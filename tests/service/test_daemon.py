@@ -201,3 +201,24 @@ def test_a_taken_port_is_a_clear_error(daemon: Daemon, tmp_path: Path) -> None:
     )
     assert result.returncode == 2
     assert f"cannot listen on {daemon.endpoint}" in result.stderr and "Traceback" not in result.stderr
+
+
+@pytest.mark.parametrize(("policy", "expect_zero"), [("hold", False), ("ramp_to_zero", True)])
+def test_sigterm_shutdown_policy(tmp_path: Path, policy: str, expect_zero: bool) -> None:
+    """SIGTERM stops the daemon cleanly (exit 0); `hold` leaves the outputs for the next start to
+    adopt, `ramp_to_zero` disarms on the way out - observed at the simulated board."""
+    from meshsim.rack import SimRack
+    from meshsim.serve import RackServer
+
+    config, _ = write_bench(tmp_path)
+    rack = SimRack.from_config(config)
+    with RackServer(rack, "pty") as server:
+        d = start_daemon(config, tmp_path, "--shutdown", policy, ports=server.ports())
+        with d.client() as mw:
+            mw.arm()
+            mw.set({"c0": 10.0}, volts=True)
+        code_before = int(rack.board("b0").codes[0])
+        assert code_before > 0
+        assert d.stop() == 0
+        assert (int(rack.board("b0").codes[0]) == 0) is expect_zero
+        assert "Traceback" not in d.log.read_text()
