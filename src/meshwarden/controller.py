@@ -198,8 +198,13 @@ class Controller:
             await self.heartbeat_once()
 
     async def heartbeat_once(self) -> None:
-        """Feed every watchdog; notice resets (boot counter), tripped watchdogs and faulted links."""
-        results = await self.rack.each(lambda d: (d.heartbeat(), d.status()))
+        """Feed every watchdog; notice resets (boot counter), tripped watchdogs and faulted links;
+        bring up boards that were unreachable at start (a rack powered after the daemon)."""
+        absent = [b for b, s in self.boards.items() if s.identity is None]
+        if absent:
+            await self._bring_up_late(absent)
+        present = [b for b, s in self.boards.items() if s.identity is not None]
+        results = await self.rack.each(lambda d: (d.heartbeat(), d.status()), boards=present)
         for board_id, result in results.items():
             state = self.boards[board_id]
             if isinstance(result, asyncio.CancelledError | AbortedError):
@@ -219,6 +224,22 @@ class Controller:
                 self._emit("watchdog_tripped", board=board_id)
                 await self._resync(board_id)
                 state.needs_restore = True
+
+    async def _bring_up_late(self, boards: list[str]) -> None:
+        chip = self.config.chip
+        journaled = self.journal.latest_targets()
+        boots = self.journal.board_boot_counts()
+        results = await self.rack.each(lambda driver: bring_up(driver, chip), boards=boards)
+        for board_id, result in results.items():
+            if isinstance(result, BaseException):
+                continue  # still away; the driver's backoff paces the retries
+            state = self.boards[board_id]
+            state.identity, state.boot_count = result.identity, result.identity.boot_count
+            state.codes = list(result.codes)
+            state.faulted = False
+            self._adopt(state, journaled, boots.get(board_id), result)
+            self.journal.record_board(board_id, result.identity.boot_count, result.identity.serial)
+            self._emit("board_up", board=board_id, boot=result.identity.boot_count)
 
     async def _resync(self, board_id: str) -> None:
         """Believe the board: read back every output code into the controller's state."""

@@ -5,6 +5,7 @@ from __future__ import annotations
 import asyncio
 import math
 from collections.abc import Callable
+from pathlib import Path
 
 import pytest
 from hypothesis import HealthCheck, given, settings
@@ -382,3 +383,43 @@ def test_a_watchdog_trip_while_stalled_is_noticed_and_never_causes_a_jump(make_b
     _check_write_log(config, name)
     with Journal(config.journal.path) as journal:
         assert journal.events(kind="watchdog_tripped")
+
+
+def test_a_rack_powered_after_the_daemon_is_brought_up_by_the_heartbeat(tmp_path: Path) -> None:
+    """A board that cannot be reached at start is marked unreachable (arming is refused); once its
+    link answers, the next heartbeat brings it up and adopts it, and the daemon can arm."""
+    import dataclasses
+
+    from meshsim.rack import SimRack
+    from meshsim.serve import RackServer
+    from meshwarden.config import load_config
+    from meshwarden.config.model import RackConfig
+    from tests.control.bench import write_bench
+    from tests.service.daemon import free_port
+
+    path, _ = write_bench(tmp_path)
+    port = free_port()
+    config = load_config(path)
+    board = dataclasses.replace(config.rack.boards[0], url=f"socket://127.0.0.1:{port}", timeout_s=0.1, retries=0)
+    config = dataclasses.replace(config, rack=RackConfig((board,)))
+    rack = SimRack.from_config(path)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            assert ctl.boards["b0"].faulted
+            with pytest.raises(FaultedRefused):
+                await ctl.arm()
+            with RackServer(rack, "tcp", base_port=port):
+                for _ in range(50):
+                    await ctl.heartbeat_once()
+                    if not ctl.boards["b0"].faulted:
+                        break
+                    await asyncio.sleep(0.1)
+                assert not ctl.boards["b0"].faulted
+                await ctl.arm()
+                await ctl.set({"c0": 2.0}, volts=True)
+                assert int(rack.board("b0").codes[0]) > 0
+
+    run(scenario())
+    with Journal(config.journal.path) as journal:
+        assert journal.events(kind="board_unreachable") and journal.events(kind="board_up")

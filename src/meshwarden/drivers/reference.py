@@ -50,6 +50,7 @@ class ReferenceDriver(BoardDriver):
         self._next_open = 0.0
 
     def _open_link(self) -> None:
+        self._close_link()  # never two handles on one port (an exclusive lock would refuse the second)
         try:
             self.port = open_port(self.config.url, READ_SLICE_S, baud_rate=self.config.baud_rate)
         except (serial.SerialException, OSError, ValueError) as exc:
