@@ -18,7 +18,7 @@ from meshwarden.errors import ConfigError, MeshwardenError, UnreachableError
 from meshwarden.logsetup import configure_logging
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_UNREACHABLE = 0, 1, 2, 3
-CLIENT_COMMANDS = ("status", "arm", "disarm", "estop", "restore", "set", "get", "monitors")
+CLIENT_COMMANDS = ("status", "arm", "disarm", "estop", "restore", "set", "get", "monitors", "recover")
 
 
 class _Parser(argparse.ArgumentParser):
@@ -138,6 +138,8 @@ def _cmd_client(args: argparse.Namespace) -> int:
         kwargs = {"average": args.average}
     elif op == "estop":
         kwargs = {"reason": args.reason}
+    elif op == "recover":
+        kwargs = {"board": args.board}
     with _client(args) as client:
         result = client.request(op, **kwargs)
     _print(result, args.json, None if args.json else render(op, result))
@@ -186,6 +188,7 @@ def build_parser() -> argparse.ArgumentParser:
         ("set", "set actuators or gates: ID=VALUE ..."),
         ("get", "every actuator's state"),
         ("monitors", "read the photodetector monitors"),
+        ("recover", "bring a faulted board back after its link was fixed"),
     ):
         cmd = sub.add_parser(name, help=text)
         cmd.add_argument("--endpoint", default="tcp://127.0.0.1:7640", help="the daemon's command endpoint")
@@ -206,6 +209,8 @@ def build_parser() -> argparse.ArgumentParser:
             cmd.add_argument("--average", type=int, default=1, help="reads to average (default 1)")
         if name == "estop":
             cmd.add_argument("--reason", default="command line", help="recorded in the journal")
+        if name == "recover":
+            cmd.add_argument("board", help="the board id")
         cmd.set_defaults(run=_cmd_client)
     return parser
 

@@ -181,6 +181,11 @@ class Client:
         result: dict[str, Any] = self.request("restore")
         return result
 
+    def recover(self, board: str) -> dict[str, Any]:
+        """Bring a faulted board back after its link was fixed (admin; daemon disarmed)."""
+        result: dict[str, Any] = self.request("recover", board=board)
+        return result
+
     def set(self, values: dict[str, float], *, volts: bool = False, wait: bool = True) -> dict[str, Any]:
         """Set actuators (``c03``) or gate attributes (``g05.kappa``, ``g05.phase``); logical
         values by default, volts with ``volts=True``. Returns what was applied."""

@@ -241,6 +241,23 @@ class Controller:
             self.journal.record_board(board_id, result.identity.boot_count, result.identity.serial)
             self._emit("board_up", board=board_id, boot=result.identity.boot_count)
 
+    async def recover(self, board_id: str, client: str | None = None) -> dict[str, Any]:
+        """After the operator has fixed a faulted board's link: forget its error history, bring
+        it up again (no writes) and adopt it or mark it for restore. Needs the daemon disarmed."""
+        if board_id not in self.boards:
+            raise UnknownTargetRefused(f"unknown board '{board_id}'", target=board_id)
+        if self.armed:
+            raise FaultedRefused("disarm before recovering a board")
+        state = self.boards[board_id]
+        await self.rack.call(board_id, lambda d: d.recover())
+        state.identity = None
+        await self._bring_up_late([board_id])
+        if state.identity is None:
+            state.faulted = True
+            raise FaultedRefused(f"board {board_id} still does not answer", board=board_id)
+        self._emit("recover", client=client, board=board_id)
+        return {"board": board_id, "boot_count": state.boot_count, "needs_restore": state.needs_restore}
+
     async def _resync(self, board_id: str) -> None:
         """Believe the board: read back every output code into the controller's state."""
         state = self.boards[board_id]

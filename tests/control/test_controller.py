@@ -288,6 +288,8 @@ def test_link_faults_never_apply_a_wrong_code(make_bench: Bench) -> None:
 
 
 def test_a_flaky_link_faults_the_board_and_the_rack_goes_safe(make_bench: Bench) -> None:
+    """Too many link errors fault the board and estop the rack; arming is refused until the
+    operator recovers the board."""
     config, name = make_bench(timeout_s=0.02, retries=1, error_rate_limit=0.2)
 
     async def scenario() -> None:
@@ -302,6 +304,11 @@ def test_a_flaky_link_faults_the_board_and_the_rack_goes_safe(make_bench: Bench)
             assert ctl.estopped and ctl.boards["b0"].faulted
             with pytest.raises(FaultedRefused):
                 await ctl.arm()
+            rack = inprocess.get(name)
+            rack.links["b0"].rates.clear()  # the operator fixes the cable
+            recovered = await ctl.recover("b0")
+            assert recovered["board"] == "b0" and not ctl.boards["b0"].faulted
+            await ctl.arm()
 
     run(scenario())
     with Journal(config.journal.path) as journal:

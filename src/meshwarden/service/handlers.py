@@ -202,3 +202,6 @@ class Dispatcher:
 
     async def _op_restore(self, request: Request, who: str) -> Any:
         return await self.controller.restore(client=who)
+
+    async def _op_recover(self, request: Request, who: str) -> Any:
+        return await self.controller.recover(request.args["board"], client=who)

@@ -39,6 +39,7 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "disarm": ("operator", {}),
     "arm": ("admin", {}),
     "restore": ("admin", {}),
+    "recover": ("admin", {"board": ((str,), True)}),
 }
 ROLES = ("observer", "operator", "admin")
 READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs"}
