@@ -60,6 +60,7 @@ def test_demo_calibration_is_labelled_design_nominal() -> None:
 
 
 def test_check_config_prints_a_summary() -> None:
+    """check-config of the demo exits 0 with boards, channels used and free, actuators by kind, monitors."""
     result = run_cli("check-config", str(DEMO_CONFIG))
     assert result.returncode == 0, result.stderr
     assert "actuators: 120 (60 coupler, 60 phase)" in result.stdout
@@ -90,12 +91,14 @@ def test_check_config_never_shows_a_traceback(tmp_path: Path, content: str) -> N
 
 
 def test_check_config_of_a_missing_file(tmp_path: Path) -> None:
+    """A file that does not exist is one located line and exit 2."""
     result = run_cli("check-config", "nope.yaml", cwd=tmp_path)
     assert result.returncode == 2
     assert result.stderr.strip() == "nope.yaml:1: <top>: file not found: nope.yaml"
 
 
 def test_usage_error_exits_2() -> None:
+    """A command line missing its argument exits 2 without a traceback."""
     result = run_cli("check-config")
     assert result.returncode == 2
     assert "Traceback" not in result.stderr

@@ -97,6 +97,7 @@ def test_output_channel_used_twice(tmp_path: Path) -> None:
 
 
 def test_monitor_input_used_twice(tmp_path: Path) -> None:
+    """Two monitors on one input would read the same light; the second is refused."""
     text = replace_line(MON, MON + "\n" + MON.replace("m0", "m1"))
     assert problems(text, tmp_path) == [
         "config.yaml:14: chip.monitors[1].input: monitor input b0:0 is already used by monitor 'm0'"
@@ -104,6 +105,7 @@ def test_monitor_input_used_twice(tmp_path: Path) -> None:
 
 
 def test_output_beyond_the_board(tmp_path: Path) -> None:
+    """A channel number past the board's outputs is refused with the valid range."""
     text = replace_line('output: "b0:1"', 'output: "b0:64"')
     assert problems(text, tmp_path) == [
         "config.yaml:9: chip.actuators[1].output: board 'b0' has outputs 0 to 63, not 64"
@@ -111,6 +113,7 @@ def test_output_beyond_the_board(tmp_path: Path) -> None:
 
 
 def test_reference_to_missing_board(tmp_path: Path) -> None:
+    """An actuator wired to a board that does not exist is refused, naming a close board id."""
     text = replace_line('output: "b0:1"', 'output: "b9:1"')
     assert problems(text, tmp_path) == [
         "config.yaml:9: chip.actuators[1].output: board 'b9' does not exist (did you mean 'b0'?)"
@@ -118,6 +121,7 @@ def test_reference_to_missing_board(tmp_path: Path) -> None:
 
 
 def test_reference_to_missing_actuator(tmp_path: Path) -> None:
+    """A gate naming an actuator that does not exist is refused, naming a close id."""
     text = replace_line(GATE, "    - {id: g0, coupler: c0, phase: p9}")
     assert problems(text, tmp_path) == [
         "config.yaml:11: chip.gates[0].phase: actuator 'p9' does not exist (did you mean 'p0'?)"
@@ -125,6 +129,7 @@ def test_reference_to_missing_actuator(tmp_path: Path) -> None:
 
 
 def test_reference_to_missing_monitor_board(tmp_path: Path) -> None:
+    """A monitor on a board that does not exist is refused."""
     text = replace_line('input: "b0:0"', 'input: "bx:0"')
     assert problems(text, tmp_path) == [
         "config.yaml:13: chip.monitors[0].input: board 'bx' does not exist (did you mean 'b0'?)"
@@ -132,6 +137,7 @@ def test_reference_to_missing_monitor_board(tmp_path: Path) -> None:
 
 
 def test_limit_above_full_scale(tmp_path: Path) -> None:
+    """A limit above what the board can output is refused, once per actuator."""
     text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 30")
     assert problems(text, tmp_path) == [
         "config.yaml:8: chip.actuators[0].limit_volts: limit 40 V is above board 'b0' full scale 30 V",
@@ -149,6 +155,7 @@ def test_limit_too_close_to_pull_in(tmp_path: Path) -> None:
 
 
 def test_gate_member_of_the_wrong_kind(tmp_path: Path) -> None:
+    """A gate's coupler must be a coupler and its phase shifter a phase shifter."""
     text = replace_line(GATE, "    - {id: g0, coupler: p0, phase: c0}")
     assert problems(text, tmp_path) == [
         "config.yaml:11: chip.gates[0].coupler: actuator 'p0' is a phase, but a gate's coupler must be a coupler",
@@ -157,12 +164,14 @@ def test_gate_member_of_the_wrong_kind(tmp_path: Path) -> None:
 
 
 def test_duplicate_actuator_id(tmp_path: Path) -> None:
+    """Ids are unique across actuators, gates and monitors."""
     text = replace_line(P0, P0.replace("id: p0", "id: c0"))
     lines = problems(text, tmp_path)
     assert lines[0] == "config.yaml:9: chip.actuators[1].id: duplicate id 'c0' (already used at chip.actuators[0].id)"
 
 
 def test_duplicate_board_id(tmp_path: Path) -> None:
+    """Two boards with one id are refused."""
     text = replace_line(
         "      full_scale_volts: 60\n",
         "      full_scale_volts: 60\n    - id: b0\n      url: socket://127.0.0.1:10\n",
@@ -181,11 +190,13 @@ def test_yaml_syntax_error(tmp_path: Path) -> None:
 
 
 def test_missing_include(tmp_path: Path) -> None:
+    """A missing included file is reported at the line of the !include."""
     text = MAIN.replace("journal:\n  path: journal.sqlite\n", "journal: !include nowhere.yaml\n")
     assert problems(text, tmp_path) == ["config.yaml:16: journal: file not found: nowhere.yaml"]
 
 
 def test_include_cycle(tmp_path: Path) -> None:
+    """Files that include each other are reported with the whole chain."""
     (tmp_path / "a.yaml").write_text("path: !include b.yaml\n", encoding="utf-8")
     (tmp_path / "b.yaml").write_text("x: !include a.yaml\n", encoding="utf-8")
     text = MAIN.replace("journal:\n  path: journal.sqlite\n", "journal: !include a.yaml\n")
@@ -204,6 +215,7 @@ def test_include_is_resolved_and_located(tmp_path: Path) -> None:
 
 
 def test_transimpedance_must_be_a_board_gain(tmp_path: Path) -> None:
+    """A monitor's gain must be one the board can select."""
     text = replace_line("transimpedance_ohms: 100000", "transimpedance_ohms: 50 kohm")
     assert problems(text, tmp_path) == [
         "config.yaml:13: chip.monitors[0].transimpedance_ohms: 50000 ohm is not a gain of board 'b0' "
@@ -212,6 +224,7 @@ def test_transimpedance_must_be_a_board_gain(tmp_path: Path) -> None:
 
 
 def test_calibration_for_another_actuator(tmp_path: Path) -> None:
+    """A calibration file written for another actuator is refused."""
     path = write_config(tmp_path)
     write_cal(tmp_path / "cal", "c0", "coupler").write_text(
         (tmp_path / "cal" / "c0.yaml").read_text().replace("actuator: c0", "actuator: c1")
@@ -224,6 +237,7 @@ def test_calibration_for_another_actuator(tmp_path: Path) -> None:
 
 
 def test_calibration_not_monotone(tmp_path: Path) -> None:
+    """A calibration table that is not strictly monotone cannot be inverted and is refused."""
     path = write_config(tmp_path)
     write_cal(tmp_path / "cal", "p0", "phase", "[0.0, 0.5, 0.4, 3.5, 7.0]")
     with pytest.raises(ConfigError) as err:
@@ -234,6 +248,7 @@ def test_calibration_not_monotone(tmp_path: Path) -> None:
 
 
 def test_missing_calibration_file(tmp_path: Path) -> None:
+    """An actuator without its calibration file is refused at its line."""
     path = write_config(tmp_path)
     (tmp_path / "cal" / "p0.yaml").unlink()
     with pytest.raises(ConfigError) as err:
@@ -243,6 +258,7 @@ def test_missing_calibration_file(tmp_path: Path) -> None:
 
 
 def test_bind_beyond_loopback_needs_keys(tmp_path: Path) -> None:
+    """Listening beyond loopback without CURVE keys is a configuration error."""
     text = MAIN + "service:\n  bind: tcp://0.0.0.0:7640\n"
     assert problems(text, tmp_path) == [
         "config.yaml:18: service: binding beyond loopback needs server_secret_key_file and an allow-list of clients"

@@ -91,6 +91,7 @@ def test_a_request_is_applied_whole_or_not_at_all(make_bench: Bench) -> None:
 
 
 def test_above_limit_in_volts_is_refused_with_the_limit(make_bench: Bench) -> None:
+    """A request in volts above the hard limit is refused and names the limit."""
     config, _ = make_bench()
 
     async def scenario() -> None:
@@ -126,6 +127,7 @@ def test_estop_wins_over_a_ramp_in_progress(make_bench: Bench) -> None:
 
 
 def test_disarm_ramps_to_zero_within_the_step_limit(make_bench: Bench) -> None:
+    """Disarm ramps every output to zero in guarded steps, and afterwards nothing may rise."""
     config, name = make_bench()
 
     async def scenario() -> None:
@@ -316,6 +318,7 @@ def test_a_flaky_link_faults_the_board_and_the_rack_goes_safe(make_bench: Bench)
 
 
 def test_board_reset_is_detected_journaled_and_restored(make_bench: Bench) -> None:
+    """A brown-out is noticed by the heartbeat, journaled, blocks sets on that board, and restore brings the targets back."""
     config, name = make_bench()
 
     async def scenario() -> None:

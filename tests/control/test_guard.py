@@ -60,6 +60,7 @@ def test_any_plan_keeps_every_rule(channels: list) -> None:
 
 
 def test_targets_above_the_hard_limit_are_refused_not_clamped() -> None:
+    """Targets above the hard limit or below zero are refused, never clamped."""
     limits = {"c0": limit("c0", hard=40.0)}
     with pytest.raises(LimitRefused, match="above its hard limit 40 V"):
         check_targets(limits, {"c0": limits["c0"].hard_limit_code + 1})
@@ -87,6 +88,7 @@ def test_large_steps_near_the_limit_are_split_for_the_dynamic_check() -> None:
 
 
 def test_no_plan_when_nothing_moves() -> None:
+    """A request for the current codes plans no step at all."""
     assert plan_ramp({"c0": limit("c0")}, {"c0": 100}, {"c0": 100}).steps == ()
 
 

@@ -66,6 +66,7 @@ def test_phase_is_taken_modulo_two_pi_at_the_lowest_voltage(phase: float, turns:
 
 
 def test_coupler_unreachable_value_is_refused_with_the_range() -> None:
+    """A coupling outside what the calibration reaches within the limit is refused, with the reachable range."""
     amap = coupler_map(limit=40.0)
     low, high = amap.reachable()
     with pytest.raises(UnreachableRefused) as err:

@@ -46,6 +46,7 @@ def driver(board: BoardConfig) -> Iterator[BoardDriver]:
 
 
 def test_identify_matches_the_configuration(driver: BoardDriver) -> None:
+    """The board the driver reaches is the one the configuration describes."""
     identity = driver.identify()
     assert (identity.outputs, identity.monitor_inputs, identity.dac_bits, identity.full_scale_volts) == (
         16,
@@ -56,6 +57,7 @@ def test_identify_matches_the_configuration(driver: BoardDriver) -> None:
 
 
 def test_write_read_back_and_sense(driver: BoardDriver) -> None:
+    """Written codes are latched, read back, and show at the output sense."""
     assert driver.write_codes(0, (1000, 2000, 0, 0, 3000)) == (1000, 2000, 0, 0, 3000)
     assert driver.read_codes(0, 5) == (1000, 2000, 0, 0, 3000)
     sense = driver.read_sense_volts(0, 2)
@@ -64,6 +66,7 @@ def test_write_read_back_and_sense(driver: BoardDriver) -> None:
 
 
 def test_monitors_gains_heartbeat_status(driver: BoardDriver) -> None:
+    """Gains, monitors, heartbeat, status and watchdog configuration work through the driver."""
     driver.set_monitor_gains(0, (2,) * 8)
     counts = driver.read_monitor_counts(0, 8, 0.002)
     assert len(counts) == 8 and counts[0] > 1000  # light reaches m0 through two bar-state gates
@@ -83,6 +86,7 @@ def test_checks_before_the_wire(driver: BoardDriver) -> None:
 
 
 def test_reset_is_seen_through_the_boot_counter(driver: BoardDriver) -> None:
+    """After a reset the boot counter has moved on and the outputs are at zero."""
     driver.write_codes(0, (5000,))
     before = driver.heartbeat().boot_count
     driver.reset()
@@ -93,11 +97,13 @@ def test_reset_is_seen_through_the_boot_counter(driver: BoardDriver) -> None:
 
 
 def test_board_nak_is_a_typed_error(driver: BoardDriver) -> None:
+    """A NAK from the board becomes a BoardNakError naming the reason."""
     with pytest.raises(BoardNakError, match="bad_value"):
         driver.read_monitor_counts(0, 1, 5.0)  # longer than the board's 1 s integration maximum
 
 
 def test_unreachable_url_is_a_link_error(board: BoardConfig) -> None:
+    """A port that does not exist is a LinkError naming it."""
     d = create_driver(dataclasses.replace(board, url="/dev/does-not-exist"))
     with pytest.raises(LinkError, match="cannot open /dev/does-not-exist"):
         d.open()

@@ -71,6 +71,7 @@ def test_decoder_bounds_its_buffer() -> None:
 
 
 def test_oversized_payload_is_refused() -> None:
+    """A payload over the protocol's maximum cannot be framed."""
     with pytest.raises(ProtocolError, match="exceeds"):
         Frame(1, 1, 2, bytes(MAX_PAYLOAD + 1))
 
@@ -86,6 +87,7 @@ def test_wrong_payload_lengths_are_protocol_errors(command: int, payload: bytes)
 
 
 def test_unknown_commands_are_protocol_errors() -> None:
+    """Unknown request commands and non-reply command bytes are protocol errors."""
     with pytest.raises(ProtocolError, match="unknown command 0x42"):
         decode_request(0x42, b"")
     with pytest.raises(ProtocolError, match="not a reply"):
@@ -93,4 +95,5 @@ def test_unknown_commands_are_protocol_errors() -> None:
 
 
 def test_nak_describes_itself() -> None:
+    """A NAK reads as a sentence naming the command and the reason."""
     assert m.Nak(0x02, 5, 64).describe() == "board refused write_outputs: bad_channel (detail 64)"

@@ -44,6 +44,7 @@ def as_(d: Daemon, keys: Path, name: str, **kw: object) -> Client:
 
 
 def test_roles_and_refusals(tmp_path: Path) -> None:
+    """Observers read and may estop, operators set, admins arm; unknown keys, keyless clients and raw bytes get nothing."""
     d, _, keys = keyed_daemon(tmp_path)
     try:
         with as_(d, keys, "boss") as boss, as_(d, keys, "runner") as runner, as_(d, keys, "watcher") as watcher:
@@ -71,6 +72,7 @@ def test_roles_and_refusals(tmp_path: Path) -> None:
 
 
 def test_a_revoked_key_fails_after_reload(tmp_path: Path) -> None:
+    """After SIGHUP a key removed from the allow-list is refused, per request and at the handshake."""
     d, config, keys = keyed_daemon(tmp_path)
     try:
         runner = as_(d, keys, "runner", timeout_s=0.5, retries=0)

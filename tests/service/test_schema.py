@@ -44,16 +44,19 @@ def req(**fields: object) -> bytes:
     ],
 )
 def test_malformed_requests_are_refused_with_a_code(data: bytes, code: str) -> None:
+    """Every malformed request maps to its specific error code."""
     with pytest.raises(BusError) as err:
         parse_request(data)
     assert err.value.code == code
 
 
 def test_valid_request_parses() -> None:
+    """A well-formed request parses into its fields."""
     r = parse_request(req(op="set", args={"values": {"g0.kappa": 0.5}, "volts": False}))
     assert (r.id, r.client, r.op, r.args["values"]) == ("r1", "t", "set", {"g0.kappa": 0.5})
 
 
 def test_reply_id_is_recovered_when_possible() -> None:
+    """An error reply carries the request id whenever one can be read."""
     assert best_effort_id(req(op="fly")) == "r1"
     assert best_effort_id(b"{garbage") is None

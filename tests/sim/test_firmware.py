@@ -53,6 +53,7 @@ def test_golden_requests_are_understood_by_the_firmware() -> None:
 
 
 def test_identify_reports_the_board(rack: SimRack) -> None:
+    """Identify reports the board's outputs, inputs, DAC bits, full scale and boot counter."""
     reply = exchange(rack, m.Identify())
     assert isinstance(reply, m.IdentifyReply)
     assert (reply.outputs, reply.monitor_inputs, reply.dac_bits, reply.full_scale_mv) == (8, 4, 16, 60000)
@@ -70,6 +71,7 @@ def test_write_quantises_and_sense_reads_the_output(rack: SimRack) -> None:
 
 
 def test_bad_crc_gets_a_nak_and_the_next_frame_is_served(rack: SimRack) -> None:
+    """A frame with a bad CRC gets a checksum NAK, is counted, and the next good frame is served."""
     wire = bytearray(encode_frame(Frame(1, 3, m.Command.IDENTIFY)))
     wire[2] ^= 0x10
     replies = rack.exchange("b0", bytes(wire))
@@ -97,6 +99,7 @@ def _cmd_payload(wire: bytes) -> tuple[int, bytes]:
 def test_invalid_requests_get_typed_naks_and_change_nothing(
     rack: SimRack, message: m.Message, reason: NakReason
 ) -> None:
+    """Out-of-range channels and values get typed NAKs and leave the outputs as they were."""
     before = rack.board("b0").codes.copy()
     reply = exchange(rack, message)
     assert isinstance(reply, m.Nak) and reply.reason == reason
@@ -104,6 +107,7 @@ def test_invalid_requests_get_typed_naks_and_change_nothing(
 
 
 def test_unknown_command_and_bad_length(rack: SimRack) -> None:
+    """An unknown command and a payload of the wrong length get their own NAK reasons."""
     replies = rack.exchange("b0", encode_frame(Frame(1, 1, 0x42, b"")))
     assert decode_reply(*_cmd_payload(replies[0][1])) == m.Nak(0x42, NakReason.UNKNOWN_COMMAND, 0)
     replies = rack.exchange("b0", encode_frame(Frame(1, 2, m.Command.WRITE_OUTPUTS, b"\x00\x00\x01")))
@@ -121,6 +125,7 @@ def test_repeated_sequence_number_is_answered_without_executing_again(rack: SimR
 
 
 def test_frames_for_another_address_are_ignored(rack: SimRack) -> None:
+    """A board stays silent to frames addressed to another board."""
     assert rack.exchange("b0", encode_frame(Frame(7, 1, m.Command.ZERO_ALL))) == []
 
 
@@ -148,6 +153,7 @@ def test_watchdog_ramp_to_zero() -> None:
 
 
 def test_watchdog_hold_keeps_outputs() -> None:
+    """With the hold action a tripped watchdog leaves the outputs where they were."""
     rack, clock = small_rack()
     clock.advance(1.0)
     exchange(rack, m.ConfigureWatchdog(1000, m.WatchdogAction.HOLD))
@@ -160,6 +166,7 @@ def test_watchdog_hold_keeps_outputs() -> None:
 
 
 def test_heartbeats_keep_the_watchdog_quiet() -> None:
+    """Regular heartbeats keep the watchdog from tripping."""
     rack, clock = small_rack()
     clock.advance(1.0)
     exchange(rack, m.ConfigureWatchdog(1000, m.WatchdogAction.RAMP_TO_ZERO))
@@ -173,6 +180,7 @@ def test_heartbeats_keep_the_watchdog_quiet() -> None:
 
 
 def test_reset_zeroes_outputs_and_counts_the_boot(rack: SimRack) -> None:
+    """A reset zeroes the outputs, bumps the boot counter, sets power-on and deafens the link while booting."""
     exchange(rack, m.WriteOutputs(0, (32768,)))
     assert isinstance(exchange(rack, m.Reset(), seq=2), m.Ack)
     assert rack.truth().terminal_volts[0] == 0.0
@@ -186,6 +194,7 @@ def test_reset_zeroes_outputs_and_counts_the_boot(rack: SimRack) -> None:
 
 
 def test_scheduled_brown_out() -> None:
+    """A reset fault scheduled in simulated time happens on its own."""
     rack, clock = small_rack()
     rack.inject(parse_faults("reset:b0@5")[0])
     clock.advance(1.0)
@@ -197,6 +206,7 @@ def test_scheduled_brown_out() -> None:
 
 
 def test_open_wire_sense_reads_command_but_actuator_sees_nothing(rack: SimRack) -> None:
+    """An open wire: the board's sense shows the command, the actuator sees 0 V (a chip fault, not a driver fault)."""
     rack.inject(Fault("open_wire", "c0"))
     exchange(rack, m.WriteOutputs(0, (32768,)))
     sense = exchange(rack, m.ReadSense(0, 1), seq=2)
@@ -205,6 +215,7 @@ def test_open_wire_sense_reads_command_but_actuator_sees_nothing(rack: SimRack) 
 
 
 def test_dead_channel_and_short(rack: SimRack) -> None:
+    """A dead channel senses 0 V; a shorted one sags and raises the output-fault flag (driver faults)."""
     rack.inject(Fault("dead_channel", "b0:0"))
     rack.inject(Fault("short", "b0:1", 0.6))
     exchange(rack, m.WriteOutputs(0, (32768, 32768)))
@@ -217,6 +228,7 @@ def test_dead_channel_and_short(rack: SimRack) -> None:
 
 
 def test_stuck_actuator_does_not_move(rack: SimRack) -> None:
+    """A stuck actuator does not move whatever it is driven with."""
     rack.inject(Fault("stuck", "p0"))
     before = rack.truth().displacement_m[1]
     exchange(rack, m.WriteOutputs(1, (43690,)))
@@ -224,6 +236,7 @@ def test_stuck_actuator_does_not_move(rack: SimRack) -> None:
 
 
 def test_monitor_faults(rack: SimRack) -> None:
+    """A dead monitor reads only its dark level; a saturated one reads the top code."""
     exchange(rack, m.SetMonitorGain(0, (2, 2)))
     exchange(rack, m.WriteOutputs(0, (40000, 0, 40000, 0)), seq=2)
     rack.inject(Fault("dead_monitor", "m0"))
@@ -235,6 +248,7 @@ def test_monitor_faults(rack: SimRack) -> None:
 
 
 def test_monitor_read_takes_its_integration_time(rack: SimRack) -> None:
+    """A monitor reply is ready only after the requested integration time."""
     replies = rack.exchange("b0", encode_frame(Frame(1, 1, m.Command.READ_MONITORS, m.ReadMonitors(0, 2, 5000).pack())))
     assert replies[0][0] == pytest.approx(rack.clock.now() + 0.005)
 
@@ -275,6 +289,7 @@ def test_same_seed_same_run_and_another_seed_another_chip() -> None:
 
 
 def test_fault_spec_errors_are_specific() -> None:
+    """Bad fault specs name the item and what was expected."""
     with pytest.raises(FaultSpecError, match="unknown fault kind 'melt'"):
         parse_faults("melt:c0")
     with pytest.raises(FaultSpecError, match="needs a time"):
@@ -323,6 +338,7 @@ def test_link_faults_never_apply_a_wrong_code(url_rack: SimRack) -> None:
 
 
 def test_in_process_url_is_exclusive_and_reports_bad_urls(url_rack: SimRack) -> None:
+    """An in-process board opens once at a time, and bad URLs say what is wrong."""
     port = serial.serial_for_url("meshsim://unit/b0", timeout=0.1)
     try:
         with pytest.raises(serial.SerialException, match="already open"):

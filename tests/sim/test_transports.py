@@ -169,6 +169,7 @@ def test_serve_refuses_a_bad_config(tmp_path: Path) -> None:
 
 
 def test_serve_refuses_a_bad_fault_spec(tmp_path: Path) -> None:
+    """An unknown fault kind on the command line is one line and exit 2."""
     result = subprocess.run(
         [
             sys.executable,
