@@ -16,7 +16,7 @@ import pytest
 import zmq
 
 from meshwarden.client import Client
-from meshwarden.errors import LeaseRefused, NotArmedRefused, UnknownTargetRefused, UnreachableError
+from meshwarden.errors import LeaseRefused, MeshwardenError, NotArmedRefused, UnknownTargetRefused, UnreachableError
 from tests.control.bench import write_bench
 from tests.service.daemon import Daemon, start_daemon
 from tests.sim.test_transports import start_server, stop_server
@@ -222,3 +222,12 @@ def test_sigterm_shutdown_policy(tmp_path: Path, policy: str, expect_zero: bool)
         assert d.stop() == 0
         assert (int(rack.board("b0").codes[0]) == 0) is expect_zero
         assert "Traceback" not in d.log.read_text()
+
+
+def test_monitor_acquisition_is_bounded(daemon: Daemon) -> None:
+    """A monitor request that would hold the boards' links for more than 10 s is refused whole."""
+    with daemon.client() as mw:
+        with pytest.raises(MeshwardenError) as err:
+            mw.monitors(average=100, integration_s=0.5)
+        assert err.value.code == "bad_request" and "at most 10 s" in err.value.message
+        assert set(mw.monitors(average=3, integration_s=0.01)) == {"m0", "m1"}

@@ -14,11 +14,13 @@ from typing import Any
 
 from meshwarden import __version__
 from meshwarden.controller import Controller
-from meshwarden.errors import ForbiddenRefused, MeshwardenError, UnknownTargetRefused
+from meshwarden.errors import BusError, ForbiddenRefused, MeshwardenError, RefusedError, UnknownTargetRefused
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import Leases
 from meshwarden.service.schema import OPS, READ_ONLY, ROLES, Request
 from meshwarden.service.telemetry import Telemetry
+
+MAX_ACQUISITION_S = 10.0
 
 
 class Dispatcher:
@@ -85,10 +87,12 @@ class Dispatcher:
     async def _op_monitors(self, request: Request, who: str) -> Any:
         average = request.args.get("average", 1)
         integration = float(request.args.get("integration_s", 1e-3))
-        if not 1 <= average <= 1000 or not 1e-6 <= integration <= 1.0:
-            from meshwarden.errors import BusError
-
-            raise BusError("bad_request", "monitors: average must be 1..1000 and integration_s 1e-6..1")
+        if not 1 <= average <= 1000 or not 1e-6 <= integration <= 1.0 or average * integration > MAX_ACQUISITION_S:
+            raise BusError(
+                "bad_request",
+                f"monitors: average must be 1..1000, integration_s 1e-6..1, and their product at most "
+                f"{MAX_ACQUISITION_S:g} s (the boards' links are shared with heartbeats and ramps)",
+            )
         return await self.controller.read_monitors(average, integration)
 
     async def _op_events(self, request: Request, who: str) -> Any:
@@ -147,8 +151,6 @@ class Dispatcher:
             applied = await asyncio.shield(job.task)
         except asyncio.CancelledError:
             if job.task.cancelled():
-                from meshwarden.errors import RefusedError
-
                 raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
             raise
         return {"job": job.id, "state": "done", "applied": applied}
