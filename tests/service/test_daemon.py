@@ -231,3 +231,18 @@ def test_monitor_acquisition_is_bounded(daemon: Daemon) -> None:
             mw.monitors(average=100, integration_s=0.5)
         assert err.value.code == "bad_request" and "at most 10 s" in err.value.message
         assert set(mw.monitors(average=3, integration_s=0.01)) == {"m0", "m1"}
+
+
+def test_a_running_ramp_can_be_cancelled(daemon: Daemon) -> None:
+    """Cancelling a ramp job stops it at its next step: the job ends cancelled, the output stays
+    where the last step left it (below the target), and the daemon stays armed."""
+    with daemon.client() as mw:
+        mw.arm()
+        started = mw.set({"c0": 38.0}, volts=True, wait=False)
+        time.sleep(0.01)
+        assert mw.cancel(started["job"])["cancelled"] is True
+        time.sleep(0.2)
+        job = next(j for j in mw.jobs() if j["id"] == started["job"])
+        state = mw.get()
+    assert job["state"] == "cancelled"
+    assert 0 <= state["actuators"]["c0"]["volts"] < 38.0 and state["armed"]
