@@ -38,7 +38,7 @@ from meshwarden.guard import ChannelLimit, RampPlan, check_targets, plan_ramp
 from meshwarden.journal import Journal, TargetRecord
 from meshwarden.logsetup import get_logger
 from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
-from meshwarden.monitors import reading
+from meshwarden.readout import acquire_monitors, read_sense
 from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes
 
 Listener = Callable[[str, dict[str, Any]], None]
@@ -561,39 +561,12 @@ class Controller:
 
     async def read_monitors(self, average: int = 1, integration_s: float = 1e-3) -> dict[str, dict[str, float]]:
         """Every monitor in amps (photocurrent), watts (optical, by responsivity) and mean ADC counts."""
-        by_board: dict[str, list[Any]] = {}
-        for mon in self.config.chip.monitors:
-            by_board.setdefault(mon.input.board, []).append(mon)
-        sums: dict[str, float] = {m.id: 0.0 for m in self.config.chip.monitors}
-        for _ in range(max(1, average)):
-            calls: dict[str, tuple[int, int]] = {}
-            for board_id, monitors in by_board.items():
-                first = min(m.input.index for m in monitors)
-                last = max(m.input.index for m in monitors)
-                calls[board_id] = (first, last - first + 1)
-            results = await asyncio.gather(
-                *(self.rack.call(b, _monitor_reader(c[0], c[1], integration_s)) for b, c in calls.items())
-            )
-            for (board_id, (first, _)), board_counts in zip(calls.items(), results, strict=True):
-                for mon in by_board[board_id]:
-                    sums[mon.id] += board_counts[mon.input.index - first]
-        out: dict[str, dict[str, float]] = {}
-        for mon in self.config.chip.monitors:
-            board = self.config.rack.board(mon.input.board)
-            identity = self.boards[board.id].identity
-            full_scale = identity.adc_full_scale_volts if identity else 2.5
-            out[mon.id] = reading(sums[mon.id] / max(1, average), mon, board.adc_bits, full_scale)
-        return out
+        full_scale = {b: s.identity.adc_full_scale_volts for b, s in self.boards.items() if s.identity is not None}
+        return await acquire_monitors(self.rack, self.config, full_scale, average, integration_s)
 
     async def read_sense(self) -> dict[str, float]:
         """The boards' own measurement of every wired output, in volts."""
-        results = await self.rack.each(lambda d: d.read_sense_volts(0, d.config.outputs))
-        out = {}
-        for aid, act in self.actuators.items():
-            result = results[act.board.id]
-            if not isinstance(result, BaseException):
-                out[aid] = result[act.config.output.index]
-        return out
+        return await read_sense(self.rack, self.config.chip.actuators)
 
     async def run_exclusive(self, work: Callable[[], Awaitable[Any]]) -> Any:
         """Run ``work`` while no ramp is in progress (for jobs that need the rack to themselves)."""
@@ -603,7 +576,3 @@ class Controller:
 
 def _writer(first: int, codes: tuple[int, ...]) -> Callable[[BoardDriver], tuple[int, ...]]:
     return lambda driver: driver.write_codes(first, codes)
-
-
-def _monitor_reader(first: int, count: int, integration_s: float) -> Callable[[BoardDriver], tuple[int, ...]]:
-    return lambda driver: driver.read_monitor_counts(first, count, integration_s)

@@ -433,3 +433,21 @@ def test_a_rack_powered_after_the_daemon_is_brought_up_by_the_heartbeat(tmp_path
     run(scenario())
     with Journal(config.journal.path) as journal:
         assert journal.events(kind="board_unreachable") and journal.events(kind="board_up")
+
+
+def test_sense_reads_what_the_outputs_really_put_out(make_bench: Bench) -> None:
+    """The boards' own output sense follows the commanded volts, and shows a driver fault: a
+    shorted output sags while the command stays (common practice for telling driver from chip)."""
+    config, name = make_bench()
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            applied = await ctl.set({"c0": 20.0, "p0": 10.0}, volts=True)
+            sense = await ctl.read_sense()
+            assert sense["c0"] == pytest.approx(applied["c0"]["volts"], abs=0.02)
+            assert sense["p0"] == pytest.approx(applied["p0"]["volts"], abs=0.02)
+            inprocess.get(name).inject(Fault("short", "b0:0", 0.5))
+            assert (await ctl.read_sense())["c0"] == pytest.approx(applied["c0"]["volts"] / 2, abs=0.02)
+
+    run(scenario())
