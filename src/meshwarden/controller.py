@@ -28,6 +28,7 @@ from meshwarden.drivers.rack import EMERGENCY, Rack
 from meshwarden.errors import (
     AbortedError,
     FaultedRefused,
+    LimitRefused,
     LinkError,
     MeshwardenError,
     NotArmedRefused,
@@ -150,6 +151,9 @@ class Controller:
                 act = self.actuators[aid]
                 if self.boards[act.board.id].codes[act.config.output.index] == record.code:
                     act.value = record.value
+        for aid in self.over_limit():
+            self._emit("above_limit", actuator=aid, code=self._current_codes()[aid])
+            self.log.error("output found above its hard limit; disarm to ramp it down", actuator=aid)
         self._emit(
             "start", armed=False, calibration_versions=sorted({a.calibration_version for a in self.actuators.values()})
         )
@@ -295,8 +299,20 @@ class Controller:
 
     # ------------------------------------------------------------------ arm, disarm, stop
 
+    def over_limit(self) -> list[str]:
+        """Actuators whose output is above their hard limit: found so at start (the limit was
+        lowered while the boards held a higher code). Only moves toward zero are allowed then."""
+        current = self._current_codes()
+        return [aid for aid, a in self.actuators.items() if current[aid] > a.limit.hard_limit_code]
+
     async def arm(self, client: str | None = None) -> None:
         """Allow outputs to change; clears a latched emergency stop and the boards' fault flags."""
+        above = self.over_limit()
+        if above:
+            self._emit("refused", client=client, op="arm", reason="outputs above their limit", actuators=above)
+            raise LimitRefused(
+                f"cannot arm: {', '.join(above)} above the hard limit; disarm first (ramps to zero)", actuators=above
+            )
         faulted = [b for b, s in self.boards.items() if s.faulted]
         if faulted:
             self._emit("refused", client=client, op="arm", reason="faulted boards", boards=faulted)

@@ -451,3 +451,41 @@ def test_sense_reads_what_the_outputs_really_put_out(make_bench: Bench) -> None:
             assert (await ctl.read_sense())["c0"] == pytest.approx(applied["c0"]["volts"] / 2, abs=0.02)
 
     run(scenario())
+
+
+def test_an_output_found_above_a_lowered_limit_blocks_arming_until_disarmed(make_bench: Bench) -> None:
+    """If the limit was lowered while a board held a higher code, the next start adopts without a
+    jump but reports it; arming is refused until disarm has ramped the output down."""
+    config, name = make_bench()
+
+    async def first() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"p0": 30.0}, volts=True)
+
+    run(first())
+    import dataclasses
+
+    lowered = dataclasses.replace(
+        config,
+        chip=dataclasses.replace(
+            config.chip,
+            actuators=tuple(
+                dataclasses.replace(a, limit_volts=20.0) if a.id == "p0" else a for a in config.chip.actuators
+            ),
+        ),
+    )
+
+    async def second() -> None:
+        async with open_controller(lowered) as ctl:
+            assert ctl.over_limit() == ["p0"]
+            with pytest.raises(LimitRefused, match="p0 above the hard limit"):
+                await ctl.arm()
+            await ctl.disarm()
+            assert ctl.over_limit() == []
+            await ctl.arm()
+
+    run(second())
+    _check_write_log(config, name)
+    with Journal(config.journal.path) as journal:
+        assert journal.events(kind="above_limit")
