@@ -125,9 +125,3 @@ class Ringing:
         y = np.where(settled, 0.0, (c1 * e1 + c2 * e2).real)
         dy = np.where(settled, 0.0, (c1 * s1 * e1 + c2 * s2 * e2).real)
         return np.asarray(y, dtype=float), np.asarray(dy, dtype=float)
-
-    def settled(self, t: float, tolerance: float) -> B:
-        """True where the remaining amplitude envelope is below ``tolerance``."""
-        y, v = self.state(t)
-        amplitude = np.sqrt(y * y + (v / self.w) ** 2)
-        return np.asarray(amplitude < tolerance)

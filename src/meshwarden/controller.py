@@ -17,7 +17,7 @@ from __future__ import annotations
 import asyncio
 import math
 import time
-from collections.abc import Awaitable, Callable
+from collections.abc import Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -583,11 +583,6 @@ class Controller:
     async def read_sense(self) -> dict[str, float]:
         """The boards' own measurement of every wired output, in volts."""
         return await read_sense(self.rack, self.config.chip.actuators)
-
-    async def run_exclusive(self, work: Callable[[], Awaitable[Any]]) -> Any:
-        """Run ``work`` while no ramp is in progress (for jobs that need the rack to themselves)."""
-        async with self._motion:
-            return await work()
 
 
 def _writer(first: int, codes: tuple[int, ...]) -> Callable[[BoardDriver], tuple[int, ...]]:
