@@ -16,6 +16,8 @@ from pathlib import Path
 
 import numpy as np
 
+from meshwarden.testing import free_port
+
 REPO = Path(__file__).resolve().parents[1]
 
 
@@ -86,14 +88,6 @@ def median_wall_seconds(work: Callable[[], object], repeats: int) -> float:
     return statistics.median(samples)
 
 
-def _free_port() -> int:
-    import socket
-
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
-
-
 def bench_bus(repeats: int) -> dict[str, float]:
     """Round trips through the daemon (demo configuration, in-process simulated rack, separate
     process), each also as a ratio to a raw pyzmq DEALER/ROUTER echo on loopback."""
@@ -107,7 +101,7 @@ def bench_bus(repeats: int) -> dict[str, float]:
     from meshwarden.client import Client
 
     ctx = zmq.Context.instance()
-    echo_port = _free_port()
+    echo_port = free_port()
     router = ctx.socket(zmq.ROUTER)
     router.bind(f"tcp://127.0.0.1:{echo_port}")
     stop = threading.Event()
@@ -137,8 +131,8 @@ def bench_bus(repeats: int) -> dict[str, float]:
 
     for stale in (REPO / "var").glob("demo-journal.sqlite*"):
         stale.unlink()  # the simulated rack is new on every run; so is the demo's journal
-    endpoint = f"tcp://127.0.0.1:{_free_port()}"
-    pub = f"tcp://127.0.0.1:{_free_port()}"
+    endpoint = f"tcp://127.0.0.1:{free_port()}"
+    pub = f"tcp://127.0.0.1:{free_port()}"
     daemon = subprocess.Popen(
         [
             sys.executable,
@@ -236,7 +230,7 @@ def bench_telemetry(count: int = 20000) -> dict[str, float]:
 
     async def run(use_telemetry: bool) -> float:
         ctx = zmq.asyncio.Context()
-        port = _free_port()
+        port = free_port()
         pub = ctx.socket(zmq.PUB)
         pub.setsockopt(zmq.SNDHWM, 0)
         pub.bind(f"tcp://127.0.0.1:{port}")

@@ -6,8 +6,8 @@ import os
 import subprocess
 import sys
 
+from meshwarden.testing import free_port
 from tests.conftest import REPO
-from tests.service.daemon import free_port
 
 
 def test_demo_runs_the_main_job_end_to_end() -> None:

@@ -43,6 +43,7 @@ from meshwarden.readout import acquire_monitors, read_sense
 from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes
 
 Listener = Callable[[str, dict[str, Any]], None]
+Prepared = dict[str, tuple[int, float | None]]  # actuator -> (target code, logical value or None)
 
 
 @dataclass
@@ -258,7 +259,9 @@ class Controller:
         await self._bring_up_late([board_id])
         if state.identity is None:
             state.faulted = True
-            raise FaultedRefused(f"board {board_id} still does not answer", board=board_id)
+            raise FaultedRefused(
+                f"board {board_id} still does not answer; it is tried again at every heartbeat", board=board_id
+            )
         self._emit("recover", client=client, board=board_id)
         return {"board": board_id, "boot_count": state.boot_count, "needs_restore": state.needs_restore}
 
@@ -307,6 +310,9 @@ class Controller:
 
     async def arm(self, client: str | None = None) -> None:
         """Allow outputs to change; clears a latched emergency stop and the boards' fault flags."""
+        # Look first: a reset or a tripped watchdog must be noticed before clearing the flags
+        # that show it, even if arming is then refused.
+        await self.heartbeat_once()
         above = self.over_limit()
         if above:
             self._emit("refused", client=client, op="arm", reason="outputs above their limit", actuators=above)
@@ -374,9 +380,9 @@ class Controller:
             return (gate.coupler if attribute == "kappa" else gate.phase), attribute
         raise UnknownTargetRefused(f"unknown target '{name}' (an actuator id, or GATE.kappa / GATE.phase)", target=name)
 
-    def prepare(self, values: dict[str, float], *, volts: bool = False) -> dict[str, tuple[int, float | None]]:
+    def prepare(self, values: dict[str, float], *, volts: bool = False) -> Prepared:
         """Validate a whole request without touching anything: actuator -> (code, logical value)."""
-        out: dict[str, tuple[int, float | None]] = {}
+        out: Prepared = {}
         for name, raw in values.items():
             actuator_id, _ = self.resolve(name)
             if actuator_id in out:
@@ -400,6 +406,25 @@ class Controller:
             out[actuator_id] = (code, value)
         return out
 
+    def check(self, values: dict[str, float], *, volts: bool = False) -> Prepared:
+        """Validate a whole request against the calibration, the limits and the current state,
+        without touching anything; the result can be handed to :meth:`set`."""
+        if self.estopped:
+            raise NotArmedRefused("emergency stop is latched: arm again first")
+        prepared = self.prepare(values, volts=volts)
+        self._check_state(prepared)
+        return prepared
+
+    def _check_state(self, prepared: Prepared) -> None:
+        if self.estopped:
+            raise NotArmedRefused("emergency stop is latched: arm again first")
+        current = self._current_codes()
+        if not self.armed and any(code > current[a] for a, (code, _) in prepared.items()):
+            raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
+        blocked = sorted({self.actuators[a].board.id for a in prepared} & self._unavailable_boards())
+        if blocked:
+            raise FaultedRefused(f"board(s) {', '.join(blocked)} faulted or waiting for restore", boards=blocked)
+
     async def set(
         self,
         values: dict[str, float],
@@ -408,19 +433,16 @@ class Controller:
         client: str | None = None,
         request: str | None = None,
         progress: Callable[[int, int], None] | None = None,
+        prepared: Prepared | None = None,
     ) -> dict[str, dict[str, Any]]:
-        """Apply a whole request, or refuse it whole before the first write. ``progress(done,
-        total)`` is called after each step of the ramp."""
+        """Apply a whole request, or refuse it whole before the first write. ``prepared`` (from
+        :meth:`check`) spares mapping the values twice; the state is checked again here anyway.
+        ``progress(done, total)`` is called after each step of the ramp."""
         try:
-            if self.estopped:
-                raise NotArmedRefused("emergency stop is latched: arm again first")
-            prepared = self.prepare(values, volts=volts)
-            current = self._current_codes()
-            if not self.armed and any(code > current[a] for a, (code, _) in prepared.items()):
-                raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
-            blocked = sorted({self.actuators[a].board.id for a in prepared} & self._unavailable_boards())
-            if blocked:
-                raise FaultedRefused(f"board(s) {', '.join(blocked)} faulted or waiting for restore", boards=blocked)
+            if prepared is None:
+                prepared = self.check(values, volts=volts)
+            else:
+                self._check_state(prepared)
         except MeshwardenError as exc:
             self._emit("refused", client=client, op="set", code=exc.code, reason=exc.message)
             raise
@@ -539,8 +561,6 @@ class Controller:
             board_id, exc = errors[0]
             if isinstance(exc, MeshwardenError):
                 raise exc
-            if isinstance(exc, asyncio.CancelledError):
-                raise NotArmedRefused("stopped by an emergency stop")
             raise LinkError(f"board {board_id}: {exc}") from exc
 
     # ------------------------------------------------------------------ reading

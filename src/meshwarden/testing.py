@@ -108,7 +108,9 @@ class RecordingDriver(BoardDriver):
 register_driver("recording", __name__, "RecordingDriver")
 
 
-def _free_port() -> int:
+def free_port() -> int:
+    """A TCP port on 127.0.0.1 that is free now (for tests and benchmarks; another process could
+    still take it before it is bound)."""
     with socket.socket() as s:
         s.bind(("127.0.0.1", 0))
         return int(s.getsockname()[1])
@@ -120,8 +122,8 @@ def running_daemon(config: Config, ports: dict[str, str] | None = None) -> Itera
     command and telemetry endpoints; stops it (outputs held) when the block ends."""
     from meshwarden.service.daemon import serve
 
-    endpoint = f"tcp://127.0.0.1:{_free_port()}"
-    pub = f"tcp://127.0.0.1:{_free_port()}"
+    endpoint = f"tcp://127.0.0.1:{free_port()}"
+    pub = f"tcp://127.0.0.1:{free_port()}"
     ready = threading.Event()
     state: dict[str, object] = {}
 

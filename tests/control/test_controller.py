@@ -404,8 +404,8 @@ def test_a_rack_powered_after_the_daemon_is_brought_up_by_the_heartbeat(tmp_path
     from meshsim.serve import RackServer
     from meshwarden.config import load_config
     from meshwarden.config.model import RackConfig
+    from meshwarden.testing import free_port
     from tests.control.bench import write_bench
-    from tests.service.daemon import free_port
 
     path, _ = write_bench(tmp_path)
     port = free_port()

@@ -9,8 +9,6 @@ import subprocess
 import sys
 from pathlib import Path
 
-import pytest
-
 from meshsim.rack import SimRack
 from meshsim.serve import RackServer
 from meshwarden.api import open_controller
@@ -84,8 +82,7 @@ def test_kill_minus_9_then_adopt_then_board_reset_then_restore(tmp_path: Path) -
             assert journal.events(kind="board_reset_detected")
 
 
-@pytest.mark.parametrize("policy", ["journal-synchronous"])
-def test_journal_is_durable_by_configuration(tmp_path: Path, policy: str) -> None:
+def test_journal_is_durable_by_configuration(tmp_path: Path) -> None:
     """The journal runs in WAL mode with synchronous=FULL (the documented durability choice)."""
     with Journal(tmp_path / "j.sqlite") as journal:
         mode = journal._db.execute("PRAGMA journal_mode").fetchone()[0]

@@ -18,8 +18,8 @@ from meshwarden.config import load_config
 from meshwarden.config.model import BoardConfig
 from meshwarden.drivers import create_driver
 from meshwarden.errors import LinkError, LinkTimeout
+from meshwarden.testing import free_port
 from tests.control.bench import write_bench
-from tests.service.daemon import free_port
 
 
 @pytest.fixture

@@ -4,7 +4,6 @@ from __future__ import annotations
 
 import os
 import signal
-import socket
 import subprocess
 import sys
 import time
@@ -14,12 +13,7 @@ from typing import Any
 
 from meshwarden.client import Client
 from meshwarden.errors import UnreachableError
-
-
-def free_port() -> int:
-    with socket.socket() as s:
-        s.bind(("127.0.0.1", 0))
-        return int(s.getsockname()[1])
+from meshwarden.testing import free_port
 
 
 @dataclass

@@ -3,7 +3,6 @@
 from __future__ import annotations
 
 import json
-import os
 import signal
 import subprocess
 import sys
@@ -146,40 +145,22 @@ def test_every_command_in_process() -> None:
         inprocess.remove("transport-test")
 
 
-def test_serve_refuses_a_bad_config(tmp_path: Path) -> None:
-    """A missing config gives a one-line error and exit 2, not a traceback."""
+@pytest.mark.parametrize(
+    ("args", "message"),
+    [
+        (["--config", "{tmp}/none.yaml"], "cannot read"),
+        (["--config", str(DEMO_CONFIG), "--faults", "melt:c00"], "unknown fault kind 'melt'"),
+    ],
+)
+def test_serve_refuses_bad_input(tmp_path: Path, args: list[str], message: str) -> None:
+    """A missing config or an unknown fault kind is one clear line and exit 2, not a traceback."""
     result = subprocess.run(
         [
             sys.executable,
             "-m",
             "meshsim.cli",
             "serve",
-            "--config",
-            str(tmp_path / "none.yaml"),
-            "--ports-file",
-            str(tmp_path / "p.json"),
-        ],
-        capture_output=True,
-        text=True,
-        timeout=30,
-        env=dict(os.environ),
-    )
-    assert result.returncode == 2
-    assert "Traceback" not in result.stderr and "cannot read" in result.stderr
-
-
-def test_serve_refuses_a_bad_fault_spec(tmp_path: Path) -> None:
-    """An unknown fault kind on the command line is one line and exit 2."""
-    result = subprocess.run(
-        [
-            sys.executable,
-            "-m",
-            "meshsim.cli",
-            "serve",
-            "--config",
-            str(DEMO_CONFIG),
-            "--faults",
-            "melt:c00",
+            *(a.format(tmp=tmp_path) for a in args),
             "--ports-file",
             str(tmp_path / "p.json"),
         ],
@@ -188,4 +169,4 @@ def test_serve_refuses_a_bad_fault_spec(tmp_path: Path) -> None:
         timeout=30,
     )
     assert result.returncode == 2
-    assert "unknown fault kind 'melt'" in result.stderr and "Traceback" not in result.stderr
+    assert message in result.stderr and "Traceback" not in result.stderr

@@ -135,14 +135,15 @@ class Dispatcher:
     async def _op_set(self, request: Request, who: str) -> Any:
         values = request.args["values"]
         volts = bool(request.args.get("volts", False))
-        self.controller.prepare(values, volts=volts)  # refuse before a job exists
-        actuators = [self.controller.resolve(name)[0] for name in values]
-        self.leases.check(request.client, actuators)
+        prepared = self.controller.check(values, volts=volts)  # refuse before a job exists
+        self.leases.check(request.client, list(prepared))
         job_id = self.jobs.next_id()
         job = self.jobs.start(
             "set",
             who,
-            self.controller.set(values, volts=volts, client=who, request=request.id, progress=self._progress(job_id)),
+            self.controller.set(
+                values, volts=volts, client=who, request=request.id, progress=self._progress(job_id), prepared=prepared
+            ),
             job_id=job_id,
         )
         if not request.args.get("wait", True):
