@@ -489,3 +489,24 @@ def test_an_output_found_above_a_lowered_limit_blocks_arming_until_disarmed(make
     _check_write_log(config, name)
     with Journal(config.journal.path) as journal:
         assert journal.events(kind="above_limit")
+
+
+def test_arming_notices_a_tripped_watchdog_before_clearing_it(make_bench: Bench) -> None:
+    """Arming right after a stall (no heartbeat in between) still records the trip and resyncs
+    the outputs before it clears the board's flags, so no ramp starts from a stale value."""
+    config, name = make_bench(watchdog_s=1)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 10.0}, volts=True)
+            assert ctl._heartbeat_task is not None
+            ctl._heartbeat_task.cancel()
+            await asyncio.sleep(2.0)
+            await ctl.arm()
+            assert ctl.boards["b0"].needs_restore
+            assert ctl.snapshot()["actuators"]["c0"]["code"] == 0
+
+    run(scenario())
+    with Journal(config.journal.path) as journal:
+        assert journal.events(kind="watchdog_tripped")
