@@ -494,7 +494,7 @@ def test_an_output_found_above_a_lowered_limit_blocks_arming_until_disarmed(make
 def test_arming_notices_a_tripped_watchdog_before_clearing_it(make_bench: Bench) -> None:
     """Arming right after a stall (no heartbeat in between) still records the trip and resyncs
     the outputs before it clears the board's flags, so no ramp starts from a stale value."""
-    config, name = make_bench(watchdog_s=1)
+    config, _ = make_bench(watchdog_s=1)
 
     async def scenario() -> None:
         async with open_controller(config) as ctl:
