@@ -21,6 +21,7 @@ from meshwarden.controller import Controller
 from meshwarden.drivers.rack import Rack
 from meshwarden.errors import ConfigError, ConfigIssue
 from meshwarden.journal import Journal
+from meshwarden.rackstate import ceiling_codes
 
 
 def with_ports(config: Config, ports: dict[str, str]) -> Config:
@@ -38,7 +39,7 @@ async def open_controller(config: Config, ports: dict[str, str] | None = None) -
     if ports:
         config = with_ports(config, ports)
     journal = Journal(config.journal.path)
-    rack = Rack(config.rack)
+    rack = Rack(config.rack, ceilings=ceiling_codes(config))
     controller = Controller(config, rack, journal)
     try:
         await controller.start()

@@ -1,15 +1,20 @@
-"""The controller: the single owner of the rack. Every output change goes through it.
+"""The controller: the single owner of the rack, its state machine and its front door.
 
 Flow of a ``set``: resolve names -> map logical values to volts (refusing the unreachable) ->
-codes -> guard (hard limits, ramp plan in steps within the step limit and the dynamic check)
--> journal (targets recorded and synced before any write) -> per-board writes, concurrently
-across boards, each verified against the codes the board reports latched -> state.
+codes -> guard check -> a motion claim on the actuators (refused ``busy`` if another owner
+holds one) -> motion: plan from the codes the boards were seen to hold -> journal (targets
+recorded and synced before any write) -> steps, each re-checked and verified -> state.
 
-State rules (docs/architecture.md): the controller starts disarmed; outputs change only while
-armed, except toward zero; an emergency stop latches, cancels any ramp in progress and queued
-work, zeroes every board first, and holds until an explicit re-arm; on start nothing is written:
-boards still holding the journaled codes are adopted, a board that was reset stays at zero until
-``restore``. Every refusal changes nothing and says why.
+The rooms (docs/architecture.md): :mod:`meshwarden.rackstate` (the shared facts),
+:mod:`meshwarden.motion` (plans and writes, re-read on doubt, cooperative stop),
+:mod:`meshwarden.supervision` (bring-up, heartbeat, recover, resync), :mod:`meshwarden.claims`
+(who may move what). This module: arm, disarm, estop, set, restore, claims for procedures,
+reads.
+
+State rules: the controller starts disarmed; outputs change only while armed, except toward
+zero; an emergency stop latches, ends every claim, zeroes every board first (faulted ones too)
+and holds until an explicit re-arm; on start nothing is written. Every refusal changes nothing
+and says why.
 """
 
 from __future__ import annotations
@@ -17,295 +22,113 @@ from __future__ import annotations
 import asyncio
 import math
 import time
-from collections.abc import Callable
-from dataclasses import dataclass, field
+from collections.abc import AsyncIterator, Callable
+from contextlib import asynccontextmanager
 from typing import Any
 
-from meshwarden.calibration import load_calibration
-from meshwarden.config.model import ActuatorConfig, BoardConfig, Config
-from meshwarden.drivers.base import BoardDriver, BoardIdentity
+from meshwarden.claims import Claim, ClaimRegistry
+from meshwarden.config.model import Config
 from meshwarden.drivers.rack import EMERGENCY, Rack
 from meshwarden.errors import (
-    AbortedError,
     FaultedRefused,
     LimitRefused,
-    LinkError,
     MeshwardenError,
     NotArmedRefused,
     UnknownTargetRefused,
     UnreachableRefused,
 )
-from meshwarden.guard import ChannelLimit, RampPlan, check_targets, plan_ramp
-from meshwarden.journal import Journal, TargetRecord
-from meshwarden.logsetup import get_logger
-from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
+from meshwarden.guard import RampPlan, check_targets
+from meshwarden.journal import Journal
+from meshwarden.mapping import code_to_volts, volts_to_code
+from meshwarden.motion import Motion, Progress
+from meshwarden.rackstate import ActuatorState, BoardState, Listener, RackState
 from meshwarden.readout import acquire_monitors, read_sense
-from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes
+from meshwarden.supervision import Supervisor
 
-Listener = Callable[[str, dict[str, Any]], None]
 Prepared = dict[str, tuple[int, float | None]]  # actuator -> (target code, logical value or None)
 
-
-@dataclass
-class ActuatorState:
-    """What the controller knows of one actuator."""
-
-    config: ActuatorConfig
-    board: BoardConfig
-    map: ActuatorMap
-    limit: ChannelLimit
-    calibration_version: str
-    value: float | None = None  # the logical value last requested (None: set in volts or unknown)
-    last_write: float = -math.inf  # monotonic time of the last write to this channel
-
-
-@dataclass
-class BoardState:
-    config: BoardConfig
-    codes: list[int]  # last codes confirmed latched, every output
-    identity: BoardIdentity | None = None
-    boot_count: int | None = None
-    needs_restore: bool = False
-    faulted: bool = False
-    notes: list[str] = field(default_factory=list)
+__all__ = ["ActuatorState", "BoardState", "Controller", "Prepared"]
 
 
 class Controller:
     """Owns the rack; use :func:`meshwarden.api.open_controller` to get one started."""
 
-    def __init__(
-        self, config: Config, rack: Rack, journal: Journal, monotonic: Callable[[], float] = time.monotonic
-    ) -> None:
+    def __init__(self, config: Config, rack: Rack, journal: Journal) -> None:
         self.config = config
-        self.rack = rack
+        self._state = RackState(config, rack, journal)
         self.journal = journal
-        self.monotonic = monotonic
-        self.log = get_logger(component="controller")
-        self.armed = False
-        self.estopped = False
-        self._motion = asyncio.Lock()
-        self._heartbeat_task: asyncio.Task[None] | None = None
-        self._last_step_time = -math.inf
-        self.listeners: list[Listener] = []
-        self.boards = {b.id: BoardState(b, [0] * b.outputs) for b in config.rack.boards}
-        self.actuators: dict[str, ActuatorState] = {}
-        for act in config.chip.actuators:
-            board = config.rack.board(act.output.board)
-            table = load_calibration(act.calibration)
-            hard = config.hard_limit_volts(act)
-            lsb = board.full_scale_volts / (1 << board.dac_bits)
-            self.actuators[act.id] = ActuatorState(
-                act,
-                board,
-                ActuatorMap(act.id, act.kind, table, hard),
-                ChannelLimit(
-                    act.id,
-                    act.kind,
-                    lsb,
-                    hard,
-                    act.step_limit_volts,
-                    act.dwell_s,
-                    act.pull_in_volts,
-                    config.safety.pull_in_margin,
-                    (1 << board.dac_bits) - 1,
-                ),
-                table.version,
-            )
-        self.gates = {g.id: g for g in config.chip.gates}
+        self.log = self._state.log
+        self.claims = ClaimRegistry()
+        self._motion = Motion(self._state)
+        self._supervisor = Supervisor(self._state, self._motion, self.estop)
 
-    # ------------------------------------------------------------------ events
+    # ------------------------------------------------------------------ state, read-only views
+
+    @property
+    def armed(self) -> bool:
+        return self._state.armed
+
+    @property
+    def estopped(self) -> bool:
+        return self._state.estopped
+
+    @property
+    def boards(self) -> dict[str, BoardState]:
+        return self._state.boards
+
+    @property
+    def actuators(self) -> dict[str, ActuatorState]:
+        return self._state.actuators
+
+    @property
+    def gates(self) -> dict[str, Any]:
+        return self._state.gates
+
+    @property
+    def listeners(self) -> list[Listener]:
+        return self._state.listeners
+
+    @property
+    def _heartbeat_task(self) -> Any:
+        return self._supervisor.task
 
     def _emit(self, kind: str, client: str | None = None, **detail: Any) -> None:
-        self.journal.event(
-            kind,
-            client=client,
-            board=detail.get("board"),
-            actuator=detail.get("actuator"),
-            **{k: v for k, v in detail.items() if k not in ("board", "actuator")},
-        )
-        for listener in list(self.listeners):
-            listener(kind, detail)
+        self._state.emit(kind, client, **detail)
 
     # ------------------------------------------------------------------ start and stop
 
     async def start(self) -> None:
-        """Open every board, check it is the board the configuration describes, configure its
-        watchdog and monitor gains, and adopt its outputs without writing any."""
-        self.rack.start()
-        journaled = self.journal.latest_targets()
-        boots = self.journal.board_boot_counts()
-        chip = self.config.chip
-        results = await self.rack.each(lambda driver: bring_up(driver, chip))
-        for board_id, result in results.items():
-            state = self.boards[board_id]
-            if isinstance(result, BaseException):
-                state.faulted = True
-                self._emit("board_unreachable", board=board_id, error=str(result))
-                self.log.error("board unreachable at start", board=board_id, error=str(result))
-                continue
-            state.identity, state.boot_count = result.identity, result.identity.boot_count
-            state.codes = list(result.codes)
-            self._adopt(state, journaled, boots.get(board_id), result)
-            self.journal.record_board(board_id, result.identity.boot_count, result.identity.serial)
-        for aid, record in journaled.items():
-            if aid in self.actuators:
-                act = self.actuators[aid]
-                if self.boards[act.board.id].codes[act.config.output.index] == record.code:
-                    act.value = record.value
+        """Bring every board up and adopt its outputs without writing any."""
+        await self._supervisor.start()
         for aid in self.over_limit():
-            self._emit("above_limit", actuator=aid, code=self._current_codes()[aid])
+            self._emit("above_limit", actuator=aid, code=self._state.code_of(aid))
             self.log.error("output found above its hard limit; disarm to ramp it down", actuator=aid)
-        self._emit(
-            "start", armed=False, calibration_versions=sorted({a.calibration_version for a in self.actuators.values()})
-        )
-        self._heartbeat_task = asyncio.create_task(self._heartbeat_loop(), name="heartbeat")
-
-    def _adopt(
-        self, state: BoardState, journaled: dict[str, TargetRecord], old_boot: int | None, found: BoardFound
-    ) -> None:
-        board_id = state.config.id
-        verdict = adopt(found, journaled_codes(board_id, state.config.outputs, journaled), old_boot)
-        state.needs_restore = verdict.needs_restore
-        detail: dict[str, Any] = {"board": board_id}
-        if verdict.kind == "adopted":
-            detail["channels_on"] = sum(1 for c in found.codes if c)
-        elif verdict.kind == "board_reset_detected":
-            detail.update(old_boot=old_boot, boot=found.identity.boot_count)
-        elif verdict.kind == "adoption_mismatch":
-            detail["channels"] = list(verdict.channels[:16])
-        self._emit(verdict.kind, **detail)
-        if verdict.kind != "adopted":
-            self.log.warning(
-                "board not adopted; outputs left as found",
-                board=board_id,
-                reason=verdict.kind,
-                needs_restore=state.needs_restore,
-            )
+        versions = sorted({a.calibration_version for a in self.actuators.values()})
+        self._emit("start", armed=False, calibration_versions=versions)
 
     async def close(self) -> None:
         """Stop background work and the board threads; outputs stay as they are (the boards'
         watchdogs take over if no daemon comes back; a restarted daemon adopts them)."""
-        if self._heartbeat_task is not None:
-            self._heartbeat_task.cancel()
-            await asyncio.gather(self._heartbeat_task, return_exceptions=True)
-            self._heartbeat_task = None
-        await asyncio.to_thread(self.rack.stop)
+        await self._supervisor.stop()
+        await asyncio.to_thread(self._state.rack.stop)
         self._emit("stop")
 
-    # ------------------------------------------------------------------ heartbeat
-
     def heartbeat_interval_s(self) -> float:
-        return max(0.2, min(min(b.watchdog.timeout_s for b in self.config.rack.boards) / 4.0, 5.0))
-
-    async def _heartbeat_loop(self) -> None:
-        while True:
-            await asyncio.sleep(self.heartbeat_interval_s())
-            await self.heartbeat_once()
+        return self._supervisor.interval_s()
 
     async def heartbeat_once(self) -> None:
-        """Feed every watchdog; notice resets (boot counter), tripped watchdogs and faulted links;
-        bring up boards that were unreachable at start (a rack powered after the daemon)."""
-        absent = [b for b, s in self.boards.items() if s.identity is None]
-        if absent:
-            await self._bring_up_late(absent)
-        present = [b for b, s in self.boards.items() if s.identity is not None]
-        results = await self.rack.each(lambda d: (d.heartbeat(), d.status()), boards=present)
-        for board_id, result in results.items():
-            state = self.boards[board_id]
-            if isinstance(result, asyncio.CancelledError | AbortedError):
-                continue  # an emergency stop took the board meanwhile
-            if isinstance(result, BaseException):
-                self._emit("link_fault", board=board_id, error=str(result))
-                if self.rack.drivers[board_id].faulted and not state.faulted:
-                    state.faulted = True
-                    self._emit("board_faulted", board=board_id)
-                    await self.estop(reason=f"board {board_id} faulted")
-                continue
-            beat, status = result
-            if state.boot_count is not None and beat.boot_count != state.boot_count:
-                await self._board_was_reset(state, beat.boot_count)
-            elif status.watchdog_tripped and not state.needs_restore:
-                # The board acted on its own (we were stalled): its outputs are not what we think.
-                self._emit("watchdog_tripped", board=board_id)
-                await self._resync(board_id)
-                state.needs_restore = True
-
-    async def _bring_up_late(self, boards: list[str]) -> None:
-        chip = self.config.chip
-        journaled = self.journal.latest_targets()
-        boots = self.journal.board_boot_counts()
-        results = await self.rack.each(lambda driver: bring_up(driver, chip), boards=boards)
-        for board_id, result in results.items():
-            if isinstance(result, BaseException):
-                continue  # still away; the driver's backoff paces the retries
-            state = self.boards[board_id]
-            state.identity, state.boot_count = result.identity, result.identity.boot_count
-            state.codes = list(result.codes)
-            state.faulted = False
-            self._adopt(state, journaled, boots.get(board_id), result)
-            self.journal.record_board(board_id, result.identity.boot_count, result.identity.serial)
-            self._emit("board_up", board=board_id, boot=result.identity.boot_count)
+        """One heartbeat pass (see :mod:`meshwarden.supervision`)."""
+        await self._supervisor.beat()
 
     async def recover(self, board_id: str, client: str | None = None) -> dict[str, Any]:
-        """After the operator has fixed a faulted board's link: forget its error history, bring
-        it up again (no writes) and adopt it or mark it for restore. Needs the daemon disarmed."""
-        if board_id not in self.boards:
-            raise UnknownTargetRefused(f"unknown board '{board_id}'", target=board_id)
-        if self.armed:
-            raise FaultedRefused("disarm before recovering a board")
-        state = self.boards[board_id]
-        await self.rack.call(board_id, lambda d: d.recover())
-        state.identity = None
-        await self._bring_up_late([board_id])
-        if state.identity is None:
-            state.faulted = True
-            raise FaultedRefused(
-                f"board {board_id} still does not answer; it is tried again at every heartbeat", board=board_id
-            )
-        self._emit("recover", client=client, board=board_id)
-        return {"board": board_id, "boot_count": state.boot_count, "needs_restore": state.needs_restore}
-
-    async def _resync(self, board_id: str) -> None:
-        """Believe the board: read back every output code into the controller's state."""
-        state = self.boards[board_id]
-        try:
-            codes = await self.rack.call(board_id, lambda d: d.read_codes(0, d.config.outputs))
-        except MeshwardenError as exc:
-            self._emit("link_fault", board=board_id, error=str(exc))
-            return
-        if list(codes) != state.codes:
-            changed = [i for i, (a, b) in enumerate(zip(codes, state.codes, strict=True)) if a != b]
-            self._emit("resync", board=board_id, channels=changed[:16])
-            for act in self.actuators.values():
-                if act.board.id == board_id and act.config.output.index in changed:
-                    act.value = None
-        state.codes = list(codes)
-
-    async def _board_was_reset(self, state: BoardState, boot: int) -> None:
-        board_id = state.config.id
-        old = state.boot_count
-        state.boot_count = boot
-        state.codes = [0] * state.config.outputs
-        state.needs_restore = True
-        for act in self.actuators.values():
-            if act.board.id == board_id:
-                act.value = None
-        self.journal.record_board(board_id, boot, state.identity.serial if state.identity else None)
-        self._emit("board_reset_detected", board=board_id, old_boot=old, boot=boot)
-        self.log.error("board was reset; its outputs are at zero until restore", board=board_id)
-        try:
-            await self.rack.call(
-                board_id, lambda d: d.configure_watchdog(state.config.watchdog.timeout_s, state.config.watchdog.action)
-            )
-        except MeshwardenError as exc:
-            self._emit("link_fault", board=board_id, error=str(exc))
+        return await self._supervisor.recover(board_id, client)
 
     # ------------------------------------------------------------------ arm, disarm, stop
 
     def over_limit(self) -> list[str]:
         """Actuators whose output is above their hard limit: found so at start (the limit was
         lowered while the boards held a higher code). Only moves toward zero are allowed then."""
-        current = self._current_codes()
+        current = self._state.current_codes()
         return [aid for aid, a in self.actuators.items() if current[aid] > a.limit.hard_limit_code]
 
     async def arm(self, client: str | None = None) -> None:
@@ -319,56 +142,69 @@ class Controller:
             raise LimitRefused(
                 f"cannot arm: {', '.join(above)} above the hard limit; disarm first (ramps to zero)", actuators=above
             )
-        faulted = [b for b, s in self.boards.items() if s.faulted]
+        faulted = [b for b, s in self.boards.items() if s.faulted or s.zero_pending is not None]
         if faulted:
             self._emit("refused", client=client, op="arm", reason="faulted boards", boards=faulted)
             raise FaultedRefused(f"cannot arm: board(s) {', '.join(faulted)} faulted or unreachable", boards=faulted)
-        results = await self.rack.each(lambda d: d.clear_faults())
+        results = await self._state.rack.each(lambda d: d.clear_faults())
         failed = {b: str(r) for b, r in results.items() if isinstance(r, BaseException)}
         if failed:
             raise FaultedRefused(f"cannot arm: {failed}", boards=sorted(failed))
         for board_id in self.boards:  # ramps start from what the boards really hold
-            await self._resync(board_id)
-        self.estopped = False
-        self.armed = True
+            await self._supervisor.resync(board_id)
+        doubtful = [b for b, s in self.boards.items() if s.doubt is not None]
+        if doubtful:
+            raise FaultedRefused(f"cannot arm: outputs of board(s) {', '.join(doubtful)} could not be read")
+        self._state.estopped = False
+        self._state.armed = True
         self._emit("arm", client=client)
 
     async def disarm(self, client: str | None = None) -> None:
-        """Ramp every output to zero within the guard's steps, then stay disarmed."""
-        async with self._motion:
+        """Stop all motion (cooperatively), end every claim, ramp every output to zero within
+        the guard's steps, then stay disarmed."""
+        self._state.armed = False
+        self.claims.end_all("disarm")
+        await self.claims.idle()
+        claim = await self.claims.acquire("disarm", self.actuators, held=False, mover=self)
+        try:
             targets = {aid: 0 for aid in self.actuators}
-            current = self._current_codes()
-            plan = plan_ramp(self._limits(), current, targets)
-            now = time.time()
-            self.journal.record_targets([self._record(a, 0, None, now) for a, c in current.items() if c], None, client)
-            try:
-                await self._execute(plan, client, allow_disarmed=True)
-            finally:
-                self.armed = False
-                self._emit("disarm", client=client)
+
+            def journal(plan: RampPlan) -> None:
+                moving = {a for s in plan.steps for a in s.codes}
+                self.journal.record_targets([self._state.record(a, 0, None) for a in moving], None, client)
+
+            await self._motion.run(claim, targets, allow_disarmed=True, client=client, before_first_write=journal)
+            for act in self.actuators.values():
+                act.value = None  # the logical value is what the outputs mean now: unknown at 0 V
+        finally:
+            self.claims.release(claim)
+            self._emit("disarm", client=client)
 
     async def estop(self, client: str | None = None, reason: str = "") -> dict[str, str]:
-        """Latch the emergency stop and zero every board now, before any queued work. Never raises."""
-        self.estopped = True
-        self.armed = False
-        results = await self.rack.each(lambda d: d.zero_all(), priority=EMERGENCY)
+        """Latch the emergency stop and zero every board now - faulted ones too - before any
+        queued work. Never raises. A board that cannot confirm is retried at every heartbeat."""
+        self._state.estopped = True
+        self._state.armed = False
+        self.claims.end_all("emergency stop")
+        results = await self._state.rack.each(lambda d: d.emergency_zero(), priority=EMERGENCY)
         outcome = {}
         for board_id, result in results.items():
+            board = self.boards[board_id]
             if isinstance(result, BaseException):
-                outcome[board_id] = f"not confirmed: {result} (its watchdog will act)"
+                board.zero_pending = str(result)
+                outcome[board_id] = f"not confirmed: {result} (retried at every heartbeat; its watchdog will act)"
             else:
-                self.boards[board_id].codes = [0] * self.boards[board_id].config.outputs
+                board.zero_pending = None
                 outcome[board_id] = "zero"
         zeroed = [a for a, act in self.actuators.items() if outcome.get(act.board.id) == "zero"]
         for aid in zeroed:
             self.actuators[aid].value = None
-        now = time.time()
-        self.journal.record_targets([self._record(a, 0, None, now) for a in zeroed], None, client)
+        self.journal.record_targets([self._state.record(a, 0, None) for a in zeroed], None, client)
         self._emit("estop", client=client, reason=reason, boards=outcome)
         self.log.warning("emergency stop", reason=reason, boards=outcome)
         return outcome
 
-    # ------------------------------------------------------------------ set and restore
+    # ------------------------------------------------------------------ requests
 
     def resolve(self, name: str) -> tuple[str, str | None]:
         """``c03`` -> (c03, None); ``g05.kappa`` -> (coupler of g05, "kappa"); ``g05.phase`` likewise."""
@@ -406,24 +242,26 @@ class Controller:
             out[actuator_id] = (code, value)
         return out
 
-    def check(self, values: dict[str, float], *, volts: bool = False) -> Prepared:
-        """Validate a whole request against the calibration, the limits and the current state,
-        without touching anything; the result can be handed to :meth:`set`."""
+    def check(self, values: dict[str, float], *, volts: bool = False, owner: str | None = None) -> Prepared:
+        """Validate a whole request against the calibration, the limits, the claims and the
+        current state, without touching anything; the result can be handed to :meth:`set`."""
         if self.estopped:
             raise NotArmedRefused("emergency stop is latched: arm again first")
         prepared = self.prepare(values, volts=volts)
-        self._check_state(prepared)
+        self._check_state(prepared, owner)
         return prepared
 
-    def _check_state(self, prepared: Prepared) -> None:
+    def _check_state(self, prepared: Prepared, owner: str | None = None) -> None:
         if self.estopped:
             raise NotArmedRefused("emergency stop is latched: arm again first")
-        current = self._current_codes()
+        current = self._state.current_codes(list(prepared))
         if not self.armed and any(code > current[a] for a, (code, _) in prepared.items()):
             raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
-        blocked = sorted({self.actuators[a].board.id for a in prepared} & self._unavailable_boards())
-        if blocked:
-            raise FaultedRefused(f"board(s) {', '.join(blocked)} faulted or waiting for restore", boards=blocked)
+        self.claims.check(owner or "local", prepared)
+        blocked = {b: why for b, why in self._state.unavailable({self.actuators[a].board.id for a in prepared}).items()}
+        if blocked and any(not why.startswith("outputs in doubt") for why in blocked.values()):
+            text = ", ".join(f"{b} ({why})" for b, why in blocked.items())
+            raise FaultedRefused(f"board(s) {text}: faulted or waiting for restore", boards=sorted(blocked))
 
     async def set(
         self,
@@ -432,43 +270,115 @@ class Controller:
         volts: bool = False,
         client: str | None = None,
         request: str | None = None,
-        progress: Callable[[int, int], None] | None = None,
+        progress: Progress | None = None,
         prepared: Prepared | None = None,
+        owner: str | None = None,
+        stop: Callable[[Claim], None] | None = None,
     ) -> dict[str, dict[str, Any]]:
         """Apply a whole request, or refuse it whole before the first write. ``prepared`` (from
         :meth:`check`) spares mapping the values twice; the state is checked again here anyway.
-        ``progress(done, total)`` is called after each step of the ramp."""
+        ``owner`` is whose claim the motion runs under (default: ``client``); ``stop`` is given
+        the motion's claim, so the caller can stop it cooperatively."""
+        owner = owner or client or "local"
         try:
             if prepared is None:
-                prepared = self.check(values, volts=volts)
+                prepared = self.check(values, volts=volts, owner=owner)
             else:
-                self._check_state(prepared)
+                self._check_state(prepared, owner)
+            claim = await self.claims.acquire(owner, prepared, held=False, mover=self)
         except MeshwardenError as exc:
             self._emit("refused", client=client, op="set", code=exc.code, reason=exc.message)
             raise
-        async with self._motion:
-            plan = plan_ramp(self._limits(), self._current_codes(), {a: c for a, (c, _) in prepared.items()})
-            now = time.time()
-            self.journal.record_targets(
-                [self._record(a, code, value, now) for a, (code, value) in prepared.items()], request, client
+        if stop is not None:
+            stop(claim)
+        try:
+            self._check_state(prepared, owner)  # again: the state may have changed while we waited
+            return await self._move(claim, prepared, client=client, request=request, progress=progress)
+        finally:
+            self.claims.release(claim)
+
+    async def _move(
+        self,
+        claim: Claim,
+        prepared: Prepared,
+        *,
+        client: str | None,
+        request: str | None = None,
+        progress: Progress | None = None,
+        journal: bool = True,
+    ) -> dict[str, dict[str, Any]]:
+        before = self._state.current_codes(list(prepared))
+
+        def record(plan: RampPlan) -> None:
+            if journal:
+                now = time.time()
+                rows = [self._state.record(a, code, value, now) for a, (code, value) in prepared.items()]
+                self.journal.record_targets(rows, request, client)
+
+        try:
+            await self._motion.run(
+                claim,
+                {a: c for a, (c, _) in prepared.items()},
+                allow_disarmed=not self.armed,
+                client=client,
+                progress=progress,
+                before_first_write=record,
             )
-            await self._execute(plan, client, allow_disarmed=not self.armed, progress=progress)
-            for aid, (_, value) in prepared.items():
-                self.actuators[aid].value = value
+        finally:
+            after = self._state.current_codes(list(prepared))
+            for aid, (code, value) in prepared.items():
+                if after[aid] == code:
+                    self.actuators[aid].value = value
+                elif after[aid] != before[aid]:
+                    self.actuators[aid].value = None
         return {aid: self.describe(aid) for aid in prepared}
 
-    def _record(self, actuator_id: str, code: int, value: float | None, ts: float) -> TargetRecord:
-        act = self.actuators[actuator_id]
-        return TargetRecord(
-            actuator_id,
-            act.board.id,
-            act.config.output.index,
-            code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits),
-            code,
-            value,
-            act.calibration_version,
-            ts,
-        )
+    async def move_claimed(
+        self,
+        claim: Claim,
+        values: dict[str, float],
+        *,
+        volts: bool = False,
+        journal: bool = True,
+        progress: Progress | None = None,
+    ) -> dict[str, dict[str, Any]]:
+        """A move under a held claim (what :meth:`Claim.move` calls)."""
+        claim.check()
+        if claim.ended or not claim.held:
+            raise NotArmedRefused(f"{claim.id} has ended")
+        prepared = self.prepare(values, volts=volts)
+        outside = sorted(set(prepared) - claim.actuators)
+        if outside:
+            raise UnknownTargetRefused(f"{', '.join(outside)} not held by {claim.id}", actuators=outside)
+        self._check_state(prepared, claim.owner)
+        return await self._move(claim, prepared, client=claim.owner, journal=journal, progress=progress)
+
+    @asynccontextmanager
+    async def claim(
+        self, actuators: list[str], *, owner: str, purpose: str = "", ttl_s: float | None = None
+    ) -> AsyncIterator[Claim]:
+        """Hold the motion of ``actuators`` (ids or gate ids) for a procedure::
+
+            async with controller.claim(["p03", "g05"], owner="calibrate:job-4") as c:
+                await c.move({"p03": 1.2})
+                levels = await c.read_monitors()
+
+        Other owners' motion on them is refused ``busy`` while it is held; disarm and estop end it."""
+        ids: list[str] = []
+        for target in actuators:
+            if target in self.actuators:
+                ids.append(target)
+            elif target in self.gates:
+                ids += [self.gates[target].coupler, self.gates[target].phase]
+            else:
+                raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
+        claim = await self.claims.acquire(owner, ids, held=True, ttl_s=ttl_s, purpose=purpose, mover=self)
+        self._emit("claim", client=owner, claim=claim.id, purpose=purpose, actuators=sorted(ids)[:32])
+        try:
+            yield claim
+        finally:
+            self.claims.release(claim)
+            self._emit("release", client=owner, claim=claim.id)
 
     async def restore(self, client: str | None = None) -> dict[str, dict[str, Any]]:
         """Ramp boards that were reset (or tripped) back to their journaled targets; needs arming."""
@@ -477,106 +387,27 @@ class Controller:
         waiting = [b for b, s in self.boards.items() if s.needs_restore and not s.faulted]
         journaled = self.journal.latest_targets()
         targets = {a: r for a, r in journaled.items() if a in self.actuators and self.actuators[a].board.id in waiting}
-        async with self._motion:
-            plan = plan_ramp(self._limits(), self._current_codes(), {a: r.code for a, r in targets.items()})
-            await self._execute(plan, client, allow_disarmed=False)
+        claim = await self.claims.acquire(client or "local", targets, held=False, mover=self)
+        try:
+            for b in waiting:  # the restore itself is what these boards wait for
+                self.boards[b].needs_restore = False
+            try:
+                await self._motion.run(claim, {a: r.code for a, r in targets.items()}, allow_disarmed=False)
+            except BaseException:
+                for b in waiting:
+                    self.boards[b].needs_restore = True
+                raise
             for aid, record in targets.items():
                 self.actuators[aid].value = record.value
-            for b in waiting:
-                self.boards[b].needs_restore = False
+        finally:
+            self.claims.release(claim)
         self._emit("restore", client=client, boards=waiting)
         return {aid: self.describe(aid) for aid in targets}
-
-    # ------------------------------------------------------------------ plan execution
-
-    def _limits(self) -> dict[str, ChannelLimit]:
-        return {aid: a.limit for aid, a in self.actuators.items()}
-
-    def _current_codes(self) -> dict[str, int]:
-        return {aid: self.boards[a.board.id].codes[a.config.output.index] for aid, a in self.actuators.items()}
-
-    def _unavailable_boards(self) -> frozenset[str]:
-        return frozenset(b for b, s in self.boards.items() if s.faulted or s.needs_restore)
-
-    async def _execute(
-        self,
-        plan: RampPlan,
-        client: str | None,
-        allow_disarmed: bool,
-        progress: Callable[[int, int], None] | None = None,
-    ) -> None:
-        """Write the plan's steps, waiting each step's dwell; stop at an emergency stop."""
-        for index, step in enumerate(plan.steps):
-            moving = list(step.codes)
-            ready_at = max(self.actuators[a].last_write + self.actuators[a].limit.dwell_s for a in moving)
-            if index > 0:
-                ready_at = max(ready_at, self._last_step_time + step.dwell_before_s)
-            delay = ready_at - self.monotonic()
-            if delay > 0:
-                await asyncio.sleep(delay)
-            if self.estopped or (not self.armed and not allow_disarmed):
-                raise NotArmedRefused("stopped: emergency stop or disarm during the ramp")
-            if not self.armed:  # rule 3, checked on the real state at every step: only toward zero
-                current = self._current_codes()
-                if any(code > current[a] for a, code in step.codes.items()):
-                    raise NotArmedRefused("outputs may only move toward zero while disarmed: arm first")
-            await self._write_step(step.codes, client)
-            self._last_step_time = self.monotonic()
-            if progress is not None:
-                progress(index + 1, len(plan.steps))
-
-    async def _write_step(self, codes: dict[str, int], client: str | None) -> None:
-        by_board: dict[str, dict[int, int]] = {}
-        for aid, code in codes.items():
-            act = self.actuators[aid]
-            by_board.setdefault(act.board.id, {})[act.config.output.index] = code
-        batches: dict[str, tuple[int, tuple[int, ...]]] = {}
-        for board_id, channels in by_board.items():
-            first, last = min(channels), max(channels)
-            block = list(self.boards[board_id].codes[first : last + 1])
-            for ch, code in channels.items():
-                block[ch - first] = code
-            batches[board_id] = (first, tuple(block))
-        results = await asyncio.gather(
-            *(self.rack.call(b, _writer(*batch)) for b, batch in batches.items()),
-            return_exceptions=True,
-        )
-        now = self.monotonic()
-        if self.estopped:
-            return  # an emergency stop zeroed the boards after these writes: zero is the truth
-        errors = []
-        for (board_id, (first, span)), result in zip(batches.items(), results, strict=True):
-            if isinstance(result, BaseException):
-                errors.append((board_id, result))
-                continue
-            self.boards[board_id].codes[first : first + len(span)] = list(span)
-        for aid in codes:
-            if self.actuators[aid].board.id not in {b for b, _ in errors}:
-                self.actuators[aid].last_write = now
-        if errors:
-            for board_id, exc in errors:
-                self._emit(
-                    "write_failed", client=client, board=board_id, error=str(exc), code=getattr(exc, "code", "error")
-                )
-            board_id, exc = errors[0]
-            if isinstance(exc, MeshwardenError):
-                raise exc
-            raise LinkError(f"board {board_id}: {exc}") from exc
 
     # ------------------------------------------------------------------ reading
 
     def describe(self, actuator_id: str) -> dict[str, Any]:
-        act = self.actuators[actuator_id]
-        code = self.boards[act.board.id].codes[act.config.output.index]
-        return {
-            "kind": act.config.kind,
-            "board": act.board.id,
-            "channel": act.config.output.index,
-            "volts": code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits),
-            "code": code,
-            "limit_v": act.limit.hard_limit_volts,
-            "value": act.value,
-        }
+        return self._state.describe(actuator_id)
 
     def snapshot(self) -> dict[str, Any]:
         """The state as ``get --json`` reports it."""
@@ -588,7 +419,9 @@ class Controller:
                     "boot_count": s.boot_count,
                     "needs_restore": s.needs_restore,
                     "faulted": s.faulted,
-                    "error_rate": round(self.rack.drivers[b].error_rate, 4),
+                    "uncertain": s.doubt if s.identity is not None else None,
+                    "zero_pending": s.zero_pending,
+                    "error_rate": round(s.driver.error_rate, 4),
                 }
                 for b, s in self.boards.items()
             },
@@ -598,12 +431,8 @@ class Controller:
     async def read_monitors(self, average: int = 1, integration_s: float = 1e-3) -> dict[str, dict[str, float]]:
         """Every monitor in amps (photocurrent), watts (optical, by responsivity) and mean ADC counts."""
         full_scale = {b: s.identity.adc_full_scale_volts for b, s in self.boards.items() if s.identity is not None}
-        return await acquire_monitors(self.rack, self.config, full_scale, average, integration_s)
+        return await acquire_monitors(self._state.rack, self.config, full_scale, average, integration_s)
 
     async def read_sense(self) -> dict[str, float]:
         """The boards' own measurement of every wired output, in volts."""
-        return await read_sense(self.rack, self.config.chip.actuators)
-
-
-def _writer(first: int, codes: tuple[int, ...]) -> Callable[[BoardDriver], tuple[int, ...]]:
-    return lambda driver: driver.write_codes(first, codes)
+        return await read_sense(self._state.rack, self.config.chip.actuators)

@@ -23,7 +23,10 @@ on the wire" without knowing the details::
         ├── NotArmedRefused              not_armed       outputs may change only while armed
         ├── LeaseRefused                 lease           another client holds the actuator
         ├── UnknownTargetRefused         unknown_target  no actuator, gate or attribute of that name
-        └── FaultedRefused               faulted         a board needed for the request is faulted or unreachable
+        ├── FaultedRefused               faulted         a board needed for the request is faulted or unreachable
+        │   └── UncertainRefused         uncertain       a board's outputs are in doubt until a re-read succeeds
+        ├── BusyRefused                  busy            another owner's motion claim holds the actuator
+        └── StoppedRefused               stopped         motion stopped before its end (stop, disarm, estop)
 
 Foreign exceptions are re-raised ``from`` the original so the cause stays in the log.
 """
@@ -170,6 +173,26 @@ class FaultedRefused(RefusedError):
     """A request that needs a board which is faulted, unreachable or waiting to be restored."""
 
     code = "faulted"
+
+
+class UncertainRefused(FaultedRefused):
+    """Motion on a board whose outputs are in doubt (a write was not verified and the re-read
+    that should follow it failed); refused until a read of the board succeeds."""
+
+    code = "uncertain"
+
+
+class BusyRefused(RefusedError):
+    """Motion on an actuator that another owner's claim (a procedure, a lease) holds."""
+
+    code = "busy"
+
+
+class StoppedRefused(RefusedError):
+    """Motion ended before its target by a stop request, a disarm or an emergency stop; the
+    outputs are where the last verified step left them."""
+
+    code = "stopped"
 
 
 class BusError(MeshwardenError):

@@ -108,6 +108,18 @@ class RecordingDriver(BoardDriver):
 register_driver("recording", __name__, "RecordingDriver")
 
 
+def unguarded_driver(board: BoardConfig) -> BoardDriver:
+    """An unopened driver for ``board`` whose output ceiling is the DAC's top code on every
+    output: no hard limit behind it. Only for tests that must show what a write the guard would
+    never plan does at the board (a raw step that snaps an actuator, a driver test suite); the
+    daemon never creates one."""
+    from meshwarden.drivers.registry import create_driver
+
+    driver = create_driver(board)
+    driver.set_ceiling((driver.max_code,) * board.outputs)
+    return driver
+
+
 def free_port() -> int:
     """A TCP port on 127.0.0.1 that is free now (for tests and benchmarks; another process could
     still take it before it is bound)."""

@@ -251,9 +251,9 @@ def test_guard_plans_never_snap_but_a_raw_step_does(make_bench: Bench) -> None:
     run(guarded())
 
     raw_config, raw_name = make_bench(coupler_q=10000, margin=0.05, coupler_limit=47)
-    from meshwarden.drivers.reference import ReferenceDriver
+    from meshwarden.testing import unguarded_driver
 
-    driver = ReferenceDriver(raw_config.rack.boards[0])
+    driver = unguarded_driver(raw_config.rack.boards[0])
     driver.open()
     try:
         driver.write_codes(0, (round(target / (60.0 / 65536)),))

@@ -17,6 +17,7 @@ from meshwarden.config.model import BoardConfig
 from meshwarden.drivers import create_driver
 from meshwarden.drivers.base import BoardDriver
 from meshwarden.errors import BoardNakError, LinkError, LinkTimeout, MeshwardenError
+from meshwarden.testing import unguarded_driver
 from tests.control.bench import write_bench
 from tests.sim.test_transports import start_server, stop_server
 
@@ -39,7 +40,7 @@ def board(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[BoardConfi
 
 @pytest.fixture
 def driver(board: BoardConfig) -> Iterator[BoardDriver]:
-    d = create_driver(board)
+    d = unguarded_driver(board)
     d.open()
     yield d
     d.close()

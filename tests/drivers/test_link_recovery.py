@@ -16,9 +16,8 @@ from meshsim.rack import SimRack
 from meshsim.serve import RackServer
 from meshwarden.config import load_config
 from meshwarden.config.model import BoardConfig
-from meshwarden.drivers import create_driver
 from meshwarden.errors import LinkError, LinkTimeout
-from meshwarden.testing import free_port
+from meshwarden.testing import free_port, unguarded_driver
 from tests.control.bench import write_bench
 
 
@@ -32,7 +31,7 @@ def bench(tmp_path: Path) -> Iterator[tuple[Path, str, BoardConfig]]:
 def test_unplugged_link_times_out_then_comes_back(bench: tuple[Path, str, BoardConfig]) -> None:
     """While the link is silent every call times out after its retries; afterwards it works again."""
     _, rack_name, board = bench
-    driver = create_driver(dataclasses.replace(board, timeout_s=0.05, retries=1, error_rate_limit=0.99))
+    driver = unguarded_driver(dataclasses.replace(board, timeout_s=0.05, retries=1, error_rate_limit=0.99))
     driver.open()
     try:
         driver.heartbeat()
@@ -51,7 +50,7 @@ def test_delayed_replies_are_waited_for_or_retried(bench: tuple[Path, str, Board
     """Replies delayed past the timeout are retried with the same sequence number; a late reply
     to the same seq is accepted, stale ones are dropped; writes land exactly."""
     _, rack_name, board = bench
-    driver = create_driver(dataclasses.replace(board, timeout_s=0.05, retries=6, error_rate_limit=0.99))
+    driver = unguarded_driver(dataclasses.replace(board, timeout_s=0.05, retries=6, error_rate_limit=0.99))
     driver.open()
     inprocess.get(rack_name).inject(Fault("delay", "*", 0.3, 0.08))
     try:
@@ -77,7 +76,7 @@ def test_tcp_link_lost_and_reconnected_with_backoff(tmp_path: Path) -> None:
         error_rate_limit=0.99,
     )
     server = RackServer(rack, "tcp", base_port=port).start()
-    driver = create_driver(board)
+    driver = unguarded_driver(board)
     driver.open()
     try:
         assert driver.write_codes(0, (1234,)) == (1234,)

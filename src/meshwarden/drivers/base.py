@@ -5,18 +5,35 @@ range), logs with the board id bound, verifies what the board says it did, and c
 errors; a backend implements three hooks - open the link, close it, exchange one request for
 one reply - so no backend can skip a check. When the share of failed attempts over the recent
 transactions passes the board's ``error_rate_limit``, the board is declared faulted and every
-further call raises :class:`~meshwarden.errors.BoardFaulted` until :meth:`BoardDriver.recover`.
+further call raises :class:`~meshwarden.errors.BoardFaulted` until :meth:`BoardDriver.recover` -
+except :meth:`BoardDriver.emergency_zero`, which an emergency stop sends to every board, faulted
+or not.
+
+Two records are kept here because every exchange passes through here, in the order the board
+executed it (the rack gives each board one thread):
+
+* **What the board was seen to hold** (:meth:`BoardDriver.outputs_seen`): updated only from a
+  verified acknowledgement (a write whose latched codes match, a read, a confirmed zero). Any
+  write that does not end in a verified acknowledgement - timeout, NAK, readback mismatch, link
+  loss, an emergency abort - puts the whole board in *doubt* until a full read succeeds. Motion
+  plans only from codes seen, never from what it asked for.
+* **The output ceiling** (:meth:`BoardDriver.set_ceiling`): each channel's hard-limit code,
+  given by the rack from the configuration. :meth:`BoardDriver.write_codes` refuses a code above
+  it (defence in depth behind the guard), unless the channel was seen holding at least that code
+  (a ramp down from an output found above a lowered limit). Until a ceiling is set, every code
+  above zero is refused.
 """
 
 from __future__ import annotations
 
 import threading
+import time
 from abc import ABC, abstractmethod
 from collections import deque
 from dataclasses import dataclass
 
 from meshwarden.config.model import BoardConfig
-from meshwarden.errors import BoardFaulted, MeshwardenError, ProtocolError, ReadbackError
+from meshwarden.errors import BoardFaulted, LimitRefused, MeshwardenError, ProtocolError, ReadbackError
 from meshwarden.logsetup import get_logger
 from meshwarden.protocol import messages as m
 from meshwarden.protocol.messages import StatusFlag, WatchdogAction
@@ -69,6 +86,49 @@ class BoardDriver(ABC):
         self._attempts: deque[bool] = deque(maxlen=ERROR_WINDOW)
         self.faulted = False
         self.abort = threading.Event()  # set by an emergency stop: give up retries at once
+        self._seen_lock = threading.Lock()
+        self._codes = [0] * config.outputs  # last codes seen latched (valid only without doubt)
+        self._doubt: str | None = "not read yet"
+        self._written_at = [-float("inf")] * config.outputs  # monotonic time of each channel's last ack
+        self._ceiling = (0,) * config.outputs
+
+    # ------------------------------------------------------------------ what the board holds
+
+    def set_ceiling(self, codes: tuple[int, ...]) -> None:
+        """Each output's hard-limit code; :meth:`write_codes` refuses anything above it."""
+        if len(codes) != self.config.outputs or any(not 0 <= c <= self.max_code for c in codes):
+            raise MeshwardenError(
+                f"board {self.config.id}: a ceiling needs {self.config.outputs} codes in 0..{self.max_code}"
+            )
+        self._ceiling = tuple(codes)
+
+    @property
+    def ceiling(self) -> tuple[int, ...]:
+        return self._ceiling
+
+    def outputs_seen(self) -> tuple[tuple[int, ...], str | None]:
+        """The codes last seen latched on every output, and the reason they are in doubt (None
+        when they are certain: the last write or read of this board was verified)."""
+        with self._seen_lock:
+            return tuple(self._codes), self._doubt
+
+    def written_at(self, channel: int) -> float:
+        """Monotonic time of the last verified write that changed ``channel`` (-inf if none)."""
+        return self._written_at[channel]
+
+    def _seen(self, first: int, codes: tuple[int, ...], whole: bool = False) -> None:
+        with self._seen_lock:
+            now = time.monotonic()
+            for offset, code in enumerate(codes):
+                if self._codes[first + offset] != code:
+                    self._written_at[first + offset] = now
+                self._codes[first + offset] = code
+            if whole:
+                self._doubt = None
+
+    def _doubted(self, why: str) -> None:
+        with self._seen_lock:
+            self._doubt = why
 
     # ------------------------------------------------------------------ backend hooks
 
@@ -105,8 +165,8 @@ class BoardDriver(ABC):
         self._attempts.clear()
         self.faulted = False
 
-    def _call(self, request: m.Message, expected: type[m.Message]) -> m.Message:
-        if self.faulted:
+    def _call(self, request: m.Message, expected: type[m.Message], force: bool = False) -> m.Message:
+        if self.faulted and not force:
             raise BoardFaulted(
                 f"board {self.config.id} is faulted (link error rate above {self.config.error_rate_limit:g})",
                 board=self.config.id,
@@ -138,6 +198,7 @@ class BoardDriver(ABC):
     # ------------------------------------------------------------------ life cycle
 
     def open(self) -> None:
+        self._doubted("link opened, outputs not read yet")
         self._open_link()
         self.log.info("link open", url=self.config.url)
 
@@ -164,25 +225,54 @@ class BoardDriver(ABC):
         )
 
     def write_codes(self, first: int, codes: tuple[int, ...]) -> tuple[int, ...]:
-        """Latch ``codes`` at outputs ``first``...; the codes the board reports latched must match."""
+        """Latch ``codes`` at outputs ``first``...; the codes the board reports latched must match.
+        Nothing is sent if a code is above its channel's ceiling (and not a move down from a code
+        seen higher). A write that is sent but not verified puts the board in doubt."""
         self._check_range(first, len(codes), self.config.outputs, "outputs")
-        for code in codes:
-            if not 0 <= code <= self.max_code:
-                raise MeshwardenError(f"board {self.config.id}: code {code} outside 0..{self.max_code}")
-        r = self._call(m.WriteOutputs(first, tuple(codes)), m.OutputsReply)
+        codes = tuple(codes)
+        with self._seen_lock:
+            held = list(self._codes) if self._doubt is None else None
+        for offset, code in enumerate(codes):
+            if not isinstance(code, int) or not 0 <= code <= self.max_code:
+                raise MeshwardenError(f"board {self.config.id}: code {code!r} outside 0..{self.max_code}")
+            ch = first + offset
+            if code > self._ceiling[ch] and (held is None or code > held[ch]):
+                raise LimitRefused(
+                    f"board {self.config.id}: code {code} on output {ch} is above its ceiling {self._ceiling[ch]}",
+                    board=self.config.id,
+                    channel=ch,
+                )
+        try:
+            r = self._call(m.WriteOutputs(first, codes), m.OutputsReply)
+        except BaseException as exc:
+            self._doubted(f"write to outputs {first}..{first + len(codes) - 1} not acknowledged: {exc}")
+            raise
         assert isinstance(r, m.OutputsReply)
-        if r.first != first or tuple(r.values) != tuple(codes):
+        if r.first != first or tuple(r.values) != codes:
+            self._doubted("the board latched other codes than written")
             raise ReadbackError(
                 f"board {self.config.id}: wrote {list(codes)} at {first}, board latched {list(r.values)} at {r.first}",
                 board=self.config.id,
             )
+        self._seen(first, codes)
         return tuple(r.values)
 
     def read_codes(self, first: int, count: int) -> tuple[int, ...]:
+        """The latched codes of outputs ``first``...; a read of every output ends any doubt."""
         self._check_range(first, count, self.config.outputs, "outputs")
         r = self._call(m.ReadOutputs(first, count), m.OutputsReply)
         assert isinstance(r, m.OutputsReply)
-        return tuple(r.values)
+        values = tuple(r.values)
+        if r.first != first or len(values) != count:
+            raise ProtocolError(
+                f"board {self.config.id}: asked for outputs {first}+{count}, got {r.first}+{len(values)}"
+            )
+        whole = first == 0 and count == self.config.outputs
+        with self._seen_lock:
+            certain = self._doubt is None
+        if whole or certain:
+            self._seen(first, values, whole=whole)
+        return values
 
     def read_sense_volts(self, first: int, count: int) -> tuple[float, ...]:
         self._check_range(first, count, self.config.outputs, "outputs")
@@ -210,7 +300,20 @@ class BoardDriver(ABC):
         return HeartbeatInfo(r.uptime_ms / 1000.0, r.boot_count)
 
     def zero_all(self) -> None:
-        self._call(m.ZeroAll(), m.Ack)
+        self._zero(force=False)
+
+    def emergency_zero(self) -> None:
+        """Zero every output even on a board faulted for its link error rate: an emergency stop
+        tries every board it can (its retries are never given up for an abort)."""
+        self._zero(force=True)
+
+    def _zero(self, force: bool) -> None:
+        try:
+            self._call(m.ZeroAll(), m.Ack, force=force)
+        except BaseException as exc:
+            self._doubted(f"zero all not acknowledged: {exc}")
+            raise
+        self._seen(0, (0,) * self.config.outputs, whole=True)
 
     def status(self) -> BoardStatus:
         r = self._call(m.Status(), m.StatusReply)
@@ -229,6 +332,7 @@ class BoardDriver(ABC):
         )
 
     def reset(self) -> None:
+        self._doubted("board reset")
         self._call(m.Reset(), m.Ack)
 
     def clear_faults(self) -> None:

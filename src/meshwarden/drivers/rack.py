@@ -82,14 +82,27 @@ class BoardWorker:
 class Rack:
     """Drivers for every board of the configuration, each with its worker."""
 
-    def __init__(self, config: RackConfig, drivers: dict[str, BoardDriver] | None = None) -> None:
+    def __init__(
+        self,
+        config: RackConfig,
+        drivers: dict[str, BoardDriver] | None = None,
+        ceilings: dict[str, tuple[int, ...]] | None = None,
+    ) -> None:
+        """``ceilings``: each board's per-output hard-limit codes, handed to its driver (which
+        then refuses any code above them); boards without one accept no code above zero."""
         self.config = config
         self.drivers = drivers or {b.id: create_driver(b) for b in config.boards}
+        for board_id, codes in (ceilings or {}).items():
+            self.drivers[board_id].set_ceiling(codes)
         self.workers: dict[str, BoardWorker] = {}
 
     def start(self) -> None:
         for board_id, driver in self.drivers.items():
             self.workers[board_id] = BoardWorker(driver)
+
+    def submit(self, board_id: str, fn: Callable[[BoardDriver], T], priority: int = NORMAL) -> Future[T]:
+        """Queue ``fn(driver)`` on the board's thread; the future of its result."""
+        return self.workers[board_id].submit(fn, priority)
 
     async def call(self, board_id: str, fn: Callable[[BoardDriver], T], priority: int = NORMAL) -> T:
         """Run ``fn(driver)`` on the board's thread and await its result. Work dropped from the
