@@ -117,7 +117,7 @@ class Dispatcher:
     # ------------------------------------------------------------------ changes
 
     async def _op_estop(self, request: Request, who: str) -> Any:
-        self.jobs.cancel_all()
+        self.jobs.cancel_all("emergency stop")
         return await self.controller.estop(client=who, reason=str(request.args.get("reason", "")))
 
     def _actuators_of(self, targets: list[str]) -> list[str]:
@@ -138,11 +138,21 @@ class Dispatcher:
         prepared = self.controller.check(values, volts=volts)  # refuse before a job exists
         self.leases.check(request.client, list(prepared))
         job_id = self.jobs.next_id()
+
+        def attach(claim: Any) -> None:  # the motion runs: a cancel now stops it between steps
+            job.stopper = claim.request_stop
+
         job = self.jobs.start(
             "set",
             who,
             self.controller.set(
-                values, volts=volts, client=who, request=request.id, progress=self._progress(job_id), prepared=prepared
+                values,
+                volts=volts,
+                client=who,
+                request=request.id,
+                progress=self._progress(job_id),
+                prepared=prepared,
+                stop=attach,
             ),
             job_id=job_id,
         )
@@ -195,7 +205,7 @@ class Dispatcher:
         return {"job": request.args["job"], "cancelled": self.jobs.cancel(request.args["job"])}
 
     async def _op_disarm(self, request: Request, who: str) -> Any:
-        self.jobs.cancel_all()
+        self.jobs.cancel_all("disarm")
         await self.controller.disarm(client=who)
         return self.state()
 

@@ -1,6 +1,10 @@
 """Jobs: long-running work (ramps now; calibration, locks and scans later) with an id, progress
 on the telemetry stream and cancellation. A job runs as its own asyncio task, so status and
-estop requests are served while it runs."""
+estop requests are served while it runs.
+
+Cancelling a job that moves outputs is a cooperative stop: the job's motion claim is asked to
+stop before its next step (the write in flight completes and is recorded), and the job ends
+``cancelled``. Only a job that has not started moving yet is cancelled as a task."""
 
 from __future__ import annotations
 
@@ -12,7 +16,7 @@ from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from typing import Any
 
-from meshwarden.errors import MeshwardenError
+from meshwarden.errors import MeshwardenError, StoppedRefused
 
 KEEP_FINISHED = 200
 
@@ -27,6 +31,16 @@ class Job:
     state: str = "running"  # running | done | failed | cancelled
     result: Any = None
     error: dict[str, Any] | None = None
+    stopper: Callable[[str], None] | None = None  # cooperative stop, once the job's motion runs
+    stop_requested: bool = False
+
+    def stop(self, reason: str) -> None:
+        """Stop the job: cooperatively when its motion runs, else by cancelling its task."""
+        self.stop_requested = True
+        if self.stopper is not None:
+            self.stopper(reason)
+        else:
+            self.task.cancel()
 
     def describe(self) -> dict[str, Any]:
         return {
@@ -74,6 +88,11 @@ class Jobs:
     async def _finished(self, job: Job) -> None:
         if job.task.cancelled():
             job.state = "cancelled"
+        elif job.stop_requested and isinstance(job.task.exception(), StoppedRefused):
+            job.state = "cancelled"
+            exc = job.task.exception()
+            assert isinstance(exc, StoppedRefused)
+            job.error = exc.as_dict()
         elif (exc := job.task.exception()) is not None:
             job.state = "failed"
             job.error = exc.as_dict() if isinstance(exc, MeshwardenError) else {"code": "error", "message": str(exc)}
@@ -89,13 +108,13 @@ class Jobs:
         job = self._jobs.get(job_id)
         if job is None or job.task.done():
             return False
-        job.task.cancel()
+        job.stop("cancelled by a client")
         return True
 
-    def cancel_all(self) -> None:
+    def cancel_all(self, reason: str = "cancelled") -> None:
         for job in self._jobs.values():
             if not job.task.done():
-                job.task.cancel()
+                job.stop(reason)
 
     def running(self) -> list[Job]:
         return [j for j in self._jobs.values() if j.state == "running"]
