@@ -66,54 +66,64 @@ def _channels(config: Config, board_id: str) -> dict[int, _Channel]:
     return out
 
 
+class BoardLogChecker:
+    """Checks one board's write log as it grows: feed it new entries as often as you like."""
+
+    def __init__(self, config: Config, board_id: str, result: LogCheck | None = None) -> None:
+        board = next(b for b in config.rack.boards if b.id == board_id)
+        self.board_id = board_id
+        self.lsb = board.full_scale_volts / (1 << board.dac_bits)
+        self.channels = _channels(config, board_id)
+        self.held = [0] * board.outputs
+        self.last_change = [-math.inf] * board.outputs
+        self.result = result or LogCheck()
+        self.no_write_windows: list[tuple[float, float]] = []
+
+    def feed(self, log: Iterable[tuple[float, str, int, tuple[int, ...]]]) -> LogCheck:
+        for t, kind, first, codes in log:
+            if kind in ("zero", "boot", "ramped_to_zero"):
+                self.held = [0] * len(self.held)
+                continue
+            if kind == "write":
+                self._write(t, first, codes)
+        return self.result
+
+    def _violation(self, rule: str, channel: int, t: float, detail: str) -> None:
+        self.result.violations.append(Violation(rule, self.board_id, channel, t, detail))
+
+    def _write(self, t: float, first: int, codes: tuple[int, ...]) -> None:
+        self.result.writes += 1
+        for start, end in self.no_write_windows:
+            if start <= t <= end:
+                self._violation("5", first, t, "a write during start-up, before any request could cause one")
+        for offset, code in enumerate(codes):
+            ch = first + offset
+            spec = self.channels.get(ch)
+            volts, before = code * self.lsb, self.held[ch] * self.lsb
+            self.held[ch] = code
+            if spec is None:
+                if code != 0:
+                    self._violation("1", ch, t, f"unwired output set to {volts:.4f} V")
+                continue
+            if volts > spec.ceiling_volts + 1e-9:
+                self._violation("1", ch, t, f"{volts:.4f} V above its ceiling {spec.ceiling_volts:.4f} V")
+            if volts == before:
+                continue
+            if abs(volts - before) > spec.step_volts + 1e-9:
+                self._violation("2", ch, t, f"step {before:.4f} -> {volts:.4f} V over {spec.step_volts} V")
+            if t - self.last_change[ch] < spec.dwell_s * DWELL_TOLERANCE:
+                gap_ms = (t - self.last_change[ch]) * 1e3
+                self._violation("2", ch, t, f"changed {gap_ms:.3f} ms after the last change")
+            self.last_change[ch] = t
+
+
 def check_board_log(
     config: Config,
     board_id: str,
     log: Iterable[tuple[float, str, int, tuple[int, ...]]],
     no_write_windows: Iterable[tuple[float, float]] = (),
-    result: LogCheck | None = None,
 ) -> LogCheck:
-    """Check one board's write log; violations are collected, not raised."""
-    result = result or LogCheck()
-    board = next(b for b in config.rack.boards if b.id == board_id)
-    lsb = board.full_scale_volts / (1 << board.dac_bits)
-    channels = _channels(config, board_id)
-    held = [0] * board.outputs
-    last_change = [-math.inf] * board.outputs
-    windows = list(no_write_windows)
-    for t, kind, first, codes in log:
-        if kind in ("zero", "boot", "ramped_to_zero"):
-            held = [0] * board.outputs
-            continue
-        if kind != "write":
-            continue
-        result.writes += 1
-        for start, end in windows:
-            if start <= t <= end:
-                result.violations.append(Violation("5", board_id, first, t, "a write during start-up"))
-        for offset, code in enumerate(codes):
-            ch = first + offset
-            spec = channels.get(ch)
-            volts, before = code * lsb, held[ch] * lsb
-            if spec is None:
-                if code != 0:
-                    result.violations.append(Violation("1", board_id, ch, t, f"unwired output set to {volts:.4f} V"))
-                held[ch] = code
-                continue
-            if volts > spec.ceiling_volts + 1e-9:
-                result.violations.append(
-                    Violation("1", board_id, ch, t, f"{volts:.4f} V above its ceiling {spec.ceiling_volts:.4f} V")
-                )
-            if code != held[ch]:
-                if abs(volts - before) > spec.step_volts + 1e-9:
-                    result.violations.append(
-                        Violation("2", board_id, ch, t, f"step {before:.4f} -> {volts:.4f} V over {spec.step_volts} V")
-                    )
-                if t - last_change[ch] < spec.dwell_s * DWELL_TOLERANCE:
-                    gap = t - last_change[ch]
-                    result.violations.append(
-                        Violation("2", board_id, ch, t, f"changed {gap * 1e3:.3f} ms after the last change")
-                    )
-                last_change[ch] = t
-            held[ch] = code
-    return result
+    """Check one whole board's write log; violations are collected, not raised."""
+    checker = BoardLogChecker(config, board_id)
+    checker.no_write_windows = list(no_write_windows)
+    return checker.feed(log)
