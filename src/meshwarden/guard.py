@@ -24,8 +24,6 @@ from __future__ import annotations
 import math
 from dataclasses import dataclass
 
-import numpy as np
-
 from meshwarden.errors import LimitRefused
 
 MAX_STEPS = 20000
@@ -97,15 +95,14 @@ def plate_peak_fraction(volts_from: float, volts_to: float, pull_in_volts: float
     if r2 <= r1:
         return u1
     a = 4.0 / 27.0 * r2 * r2
-    roots = np.sort(np.real(np.roots([1.0, -2.0, 1.0, -a])))  # equilibria: u (1 - u)^2 = a
-    saddle = float(roots[1])
+    stable, saddle = _equilibria(a)  # u (1 - u)^2 = a: the stable root and the saddle
 
     def level(u: float) -> float:
         return 0.5 * u * u - a / (1.0 - u) - (0.5 * u1 * u1 - a / (1.0 - u1))
 
     if level(saddle) <= 0.0:
         return math.inf  # the energy carries it over the unstable equilibrium: dynamic pull-in
-    low, high = float(roots[0]), saddle
+    low, high = stable, saddle
     for _ in range(80):
         mid = 0.5 * (low + high)
         if level(mid) < 0.0:
@@ -115,10 +112,21 @@ def plate_peak_fraction(volts_from: float, volts_to: float, pull_in_volts: float
     return high
 
 
-def _stable_root(r: float) -> float:
-    a = 4.0 / 27.0 * r * r
+def _equilibria(a: float) -> tuple[float, float]:
+    """The two roots of u (1 - u)^2 = a in [0, 1] for 0 <= a <= 4/27: stable, then saddle.
+
+    With u = 2/3 + t the cubic becomes t^3 - t/3 + (2/27 - a) = 0, three real roots
+    t_k = (2/3) cos(theta/3 - 2 pi k/3) with cos(theta) = (27 a - 2) / 2 (the trigonometric
+    solution of a depressed cubic); k = 2 is the smallest root, k = 1 the middle one."""
     arg = min(max((27.0 * a - 2.0) / 2.0, -1.0), 1.0)
-    return 2.0 / 3.0 + 2.0 / 3.0 * math.cos(math.acos(arg) / 3.0 - 4.0 * math.pi / 3.0)
+    third = math.acos(arg) / 3.0
+    stable = 2.0 / 3.0 + 2.0 / 3.0 * math.cos(third - 4.0 * math.pi / 3.0)
+    saddle = 2.0 / 3.0 + 2.0 / 3.0 * math.cos(third - 2.0 * math.pi / 3.0)
+    return stable, saddle
+
+
+def _stable_root(r: float) -> float:
+    return _equilibria(4.0 / 27.0 * r * r)[0]
 
 
 def step_is_dynamically_safe(limit: ChannelLimit, volts_from: float, volts_to: float) -> bool:

@@ -97,3 +97,19 @@ def test_hard_limit_never_exceeds_the_top_code() -> None:
     (Kester MT-001 convention), never to the non-existent code 2^N."""
     full = ChannelLimit("c0", "phase", LSB, 60.0, 2.0, 0.0, 1000.0, 0.0, 65535)
     assert full.hard_limit_code == 65535
+
+
+@settings(max_examples=200, deadline=None)
+@given(st.floats(1e-9, 4.0 / 27.0 - 1e-9))
+def test_closed_form_equilibria_match_numpy_roots(a: float) -> None:
+    """The guard's closed-form equilibria of a parallel plate, u (1 - u)^2 = a (Nathanson et al.
+    1967 normalisation), are the two smallest roots numpy.roots finds for u^3 - 2u^2 + u - a
+    (reference library), to 1e-9."""
+    import numpy as np
+
+    from meshwarden.guard import _equilibria
+
+    reference = np.sort(np.real(np.roots([1.0, -2.0, 1.0, -a])))
+    stable, saddle = _equilibria(a)
+    assert stable == pytest.approx(float(reference[0]), abs=1e-9)
+    assert saddle == pytest.approx(float(reference[1]), abs=1e-9)
