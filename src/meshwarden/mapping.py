@@ -3,8 +3,12 @@
 * Volts -> value interpolates the actuator's calibration table with a monotone piecewise-cubic
   Hermite interpolant (scipy's PCHIP, Fritsch & Carlson 1980): it never overshoots between
   points, so a monotone table gives a monotone, invertible curve.
-* Value -> volts solves that same interpolant (brentq), so that value -> volts -> value returns
-  the value exactly, up to the DAC's quantisation - no second, slightly different inverse table.
+* Value -> volts solves that same interpolant, so that value -> volts -> value returns the value
+  exactly, up to the DAC's quantisation - no second, slightly different inverse table. The
+  interpolant's per-segment cubic coefficients are taken from scipy once, when the table is
+  loaded; evaluating and inverting them is then plain arithmetic per call (a segment found by
+  bisection on the knots, the cubic solved in it by safeguarded Newton steps), with no scipy
+  call on the request path.
 * A phase is taken modulo 2 pi and the lowest-voltage solution within the actuator's hard limit
   is used: less voltage means less charging and more distance from pull-in.
 * Codes: an N-bit DAC of full scale FS outputs code * FS / 2^N volts (LSB = FS / 2^N, the
@@ -15,12 +19,12 @@ A value the calibration cannot reach within the hard limit is refused with the r
 
 from __future__ import annotations
 
+import bisect
 import math
 from dataclasses import dataclass, field
 
 import numpy as np
 from scipy.interpolate import PchipInterpolator
-from scipy.optimize import brentq
 
 from meshwarden.calibration import CalibrationTable
 from meshwarden.errors import LimitRefused, UnreachableRefused
@@ -46,10 +50,44 @@ class ActuatorMap:
     kind: str
     table: CalibrationTable
     hard_limit_volts: float
-    _curve: PchipInterpolator = field(init=False, repr=False, compare=False)
+    _knots: tuple[float, ...] = field(init=False, repr=False, compare=False)
+    _knot_values: tuple[float, ...] = field(init=False, repr=False, compare=False)
+    _coefficients: tuple[tuple[float, float, float, float], ...] = field(init=False, repr=False, compare=False)
 
     def __post_init__(self) -> None:
-        object.__setattr__(self, "_curve", PchipInterpolator(np.array(self.table.volts), np.array(self.table.values)))
+        curve = PchipInterpolator(np.array(self.table.volts), np.array(self.table.values))
+        # scipy's local power basis: y = c0 dx^3 + c1 dx^2 + c2 dx + c3, dx = v - knot[i]
+        coefficients = tuple(tuple(float(c) for c in column) for column in np.asarray(curve.c).T)
+        object.__setattr__(self, "_knots", tuple(self.table.volts))
+        object.__setattr__(self, "_knot_values", tuple(self.table.values))
+        object.__setattr__(self, "_coefficients", coefficients)
+
+    def _curve(self, volts: float) -> float:
+        i = min(max(bisect.bisect_right(self._knots, volts) - 1, 0), len(self._coefficients) - 1)
+        c0, c1, c2, c3 = self._coefficients[i]
+        dx = volts - self._knots[i]
+        return ((c0 * dx + c1) * dx + c2) * dx + c3
+
+    def _solve(self, wanted: float) -> float:
+        """The volts where the curve equals ``wanted`` (a value within the table's range)."""
+        i = min(max(bisect.bisect_right(self._knot_values, wanted) - 1, 0), len(self._coefficients) - 1)
+        c0, c1, c2, c3 = self._coefficients[i]
+        low, high = 0.0, self._knots[i + 1] - self._knots[i]
+        dx = (wanted - self._knot_values[i]) / (self._knot_values[i + 1] - self._knot_values[i]) * high
+        for _ in range(100):
+            f = ((c0 * dx + c1) * dx + c2) * dx + c3 - wanted
+            if f == 0.0:
+                break
+            if f > 0.0:
+                high = dx
+            else:
+                low = dx
+            slope = (3.0 * c0 * dx + 2.0 * c1) * dx + c2
+            step = dx - f / slope if slope > 0.0 else -1.0
+            dx = step if low <= step <= high else 0.5 * (low + high)
+            if high - low < 1e-13 or abs(f) < 1e-15:
+                break
+        return self._knots[i] + dx
 
     @property
     def top_volts(self) -> float:
@@ -64,11 +102,11 @@ class ActuatorMap:
                 actuator=self.actuator_id,
                 volts=volts,
             )
-        return float(self._curve(volts))
+        return self._curve(volts)
 
     def reachable(self) -> tuple[float, float]:
         """The range of values reachable from 0 V up to :attr:`top_volts`."""
-        return float(self._curve(0.0)), float(self._curve(self.top_volts))
+        return self._curve(0.0), self._curve(self.top_volts)
 
     def volts_for(self, value: float) -> float:
         """Volts that give ``value``; for phases the lowest-voltage solution modulo 2 pi."""
@@ -96,7 +134,7 @@ class ActuatorMap:
             return 0.0
         if wanted >= high:
             return self.top_volts
-        return float(brentq(lambda v: float(self._curve(v)) - wanted, 0.0, self.top_volts, xtol=1e-12, rtol=1e-14))
+        return min(self._solve(wanted), self.top_volts)
 
 
 def build_maps(

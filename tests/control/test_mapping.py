@@ -85,3 +85,15 @@ def test_hard_limit_cuts_the_reachable_range() -> None:
     assert amap.top_volts == 20.0
     with pytest.raises(UnreachableRefused, match="within its 20 V limit"):
         amap.volts_for(math.pi)
+
+
+@given(st.floats(min_value=0.001, max_value=2 * math.pi - 0.001))
+def test_inverse_agrees_with_a_root_finder_on_scipys_pchip(phase: float) -> None:
+    """volts_for solves the same curve scipy's PchipInterpolator draws: scipy.optimize.brentq on
+    it (reference computation) finds the same volts to 1e-9 V."""
+    from scipy.optimize import brentq
+
+    amap = phase_map()
+    reference = PchipInterpolator(np.array(VOLTS), np.array(PHASE))
+    expected = brentq(lambda v: float(reference(v)) - phase, 0.0, 44.0, xtol=1e-13)
+    assert amap.volts_for(phase) == pytest.approx(expected, abs=1e-9)
