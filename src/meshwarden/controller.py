@@ -169,9 +169,9 @@ class Controller:
         try:
             targets = {aid: 0 for aid in self.actuators}
 
-            def journal(plan: RampPlan) -> None:
+            async def journal(plan: RampPlan) -> None:
                 moving = {a for s in plan.steps for a in s.codes}
-                self.journal.record_targets([self._state.record(a, 0, None) for a in moving], None, client)
+                await self._durable([self._state.record(a, 0, None) for a in moving], None, client)
 
             await self._motion.run(claim, targets, allow_disarmed=True, client=client, before_first_write=journal)
             for act in self.actuators.values():
@@ -199,7 +199,8 @@ class Controller:
         zeroed = [a for a, act in self.actuators.items() if outcome.get(act.board.id) == "zero"]
         for aid in zeroed:
             self.actuators[aid].value = None
-        self.journal.record_targets([self._state.record(a, 0, None) for a in zeroed], None, client)
+        # queued, not awaited: an emergency stop never waits on the disk
+        self.journal.record_targets_async([self._state.record(a, 0, None) for a in zeroed], None, client)
         self._emit("estop", client=client, reason=reason, boards=outcome)
         self.log.warning("emergency stop", reason=reason, boards=outcome)
         return outcome
@@ -309,11 +310,11 @@ class Controller:
     ) -> dict[str, dict[str, Any]]:
         before = self._state.current_codes(list(prepared))
 
-        def record(plan: RampPlan) -> None:
+        async def record(plan: RampPlan) -> None:
             if journal:
                 now = time.time()
                 rows = [self._state.record(a, code, value, now) for a, (code, value) in prepared.items()]
-                self.journal.record_targets(rows, request, client)
+                await self._durable(rows, request, client)
 
         try:
             await self._motion.run(
@@ -332,6 +333,10 @@ class Controller:
                 elif after[aid] != before[aid]:
                     self.actuators[aid].value = None
         return {aid: self.describe(aid) for aid in prepared}
+
+    async def _durable(self, rows: list[Any], request: str | None, client: str | None) -> None:
+        """Journal targets and wait until they are synced (the writer thread commits them)."""
+        await asyncio.shield(asyncio.wrap_future(self.journal.record_targets_async(rows, request, client)))
 
     async def move_claimed(
         self,

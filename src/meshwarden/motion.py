@@ -22,7 +22,7 @@ from __future__ import annotations
 
 import asyncio
 import time
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from typing import Any
 
 from meshwarden.claims import Claim
@@ -87,7 +87,7 @@ class Motion:
         allow_disarmed: bool,
         client: str | None = None,
         progress: Progress | None = None,
-        before_first_write: Callable[[RampPlan], None] | None = None,
+        before_first_write: Callable[[RampPlan], Awaitable[None]] | None = None,
     ) -> RampPlan:
         """Ramp ``targets`` (codes) under ``claim``; ``before_first_write`` journals the plan."""
         boards = {self.state.actuators[a].board.id for a in targets}
@@ -95,7 +95,7 @@ class Motion:
         self.check_boards(boards)
         plan = plan_ramp(self.state.limits, self.state.current_codes(list(targets)), targets)
         if before_first_write is not None:
-            before_first_write(plan)
+            await before_first_write(plan)
         last_step = -float("inf")
         for index, step in enumerate(plan.steps):
             ready = max(self._ready_at(a) for a in step.codes)
