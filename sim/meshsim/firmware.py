@@ -246,6 +246,10 @@ class SimBoard:
         current = self.codes[req.first : req.first + count]
         if self.tripped_at is not None and (new > current).any():
             return m.Nak(0, NakReason.WATCHDOG_TRIPPED)
+        if self.flags & StatusFlag.POWER_ON and (new > current).any():
+            # Freshly booted: a write meant for the outputs before the reset (a retransmission,
+            # or a host that has not noticed yet) must not jump them from zero.
+            return m.Nak(0, NakReason.POWERED_ON)
         self.codes[req.first : req.first + count] = new
         self.writes_executed += 1
         self.write_log.append((now, "write", req.first, tuple(int(c) for c in new)))

@@ -256,6 +256,7 @@ def test_guard_plans_never_snap_but_a_raw_step_does(make_bench: Bench) -> None:
     driver = unguarded_driver(raw_config.rack.boards[0])
     driver.open()
     try:
+        driver.clear_faults()
         driver.write_codes(0, (round(target / (60.0 / 65536)),))
     finally:
         driver.close()

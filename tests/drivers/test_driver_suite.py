@@ -42,6 +42,7 @@ def board(request: pytest.FixtureRequest, tmp_path: Path) -> Iterator[BoardConfi
 def driver(board: BoardConfig) -> Iterator[BoardDriver]:
     d = unguarded_driver(board)
     d.open()
+    d.clear_faults()  # a freshly booted board refuses writes away from zero until then
     yield d
     d.close()
 

@@ -33,6 +33,7 @@ def test_unplugged_link_times_out_then_comes_back(bench: tuple[Path, str, BoardC
     _, rack_name, board = bench
     driver = unguarded_driver(dataclasses.replace(board, timeout_s=0.05, retries=1, error_rate_limit=0.99))
     driver.open()
+    driver.clear_faults()  # a freshly booted board refuses writes away from zero until then
     try:
         driver.heartbeat()
         rack = inprocess.get(rack_name)
@@ -52,6 +53,7 @@ def test_delayed_replies_are_waited_for_or_retried(bench: tuple[Path, str, Board
     _, rack_name, board = bench
     driver = unguarded_driver(dataclasses.replace(board, timeout_s=0.05, retries=6, error_rate_limit=0.99))
     driver.open()
+    driver.clear_faults()  # a freshly booted board refuses writes away from zero until then
     inprocess.get(rack_name).inject(Fault("delay", "*", 0.3, 0.08))
     try:
         for code in range(100, 2100, 100):
@@ -78,6 +80,7 @@ def test_tcp_link_lost_and_reconnected_with_backoff(tmp_path: Path) -> None:
     server = RackServer(rack, "tcp", base_port=port).start()
     driver = unguarded_driver(board)
     driver.open()
+    driver.clear_faults()  # a freshly booted board refuses writes away from zero until then
     try:
         assert driver.write_codes(0, (1234,)) == (1234,)
         server.stop()

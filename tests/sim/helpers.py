@@ -18,6 +18,7 @@ from meshsim.scenario import ActuatorSpec, BoardSpec, MonitorSpec, Scenario
 from meshwarden.errors import ProtocolError
 from meshwarden.protocol import Frame, FrameDecoder, decode_reply, encode_frame
 from meshwarden.protocol import messages as m
+from meshwarden.protocol.messages import StatusFlag
 
 
 def small_scenario() -> Scenario:
@@ -53,8 +54,12 @@ def small_params(**changes: object) -> SimParams:
 
 
 def small_rack(**changes: object) -> tuple[SimRack, ManualClock]:
+    """The small rack, its boards' power-on flags already cleared (as a host does before writing)."""
     clock = ManualClock()
-    return SimRack(small_scenario(), small_params(**changes), clock), clock
+    rack = SimRack(small_scenario(), small_params(**changes), clock)
+    for board in rack.boards.values():
+        board.flags &= ~StatusFlag.POWER_ON
+    return rack, clock
 
 
 class BareClient:

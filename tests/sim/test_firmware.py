@@ -47,9 +47,24 @@ def test_golden_requests_are_understood_by_the_firmware() -> None:
             continue
         board = BoardSpec("b0", address=address, outputs=64, monitor_inputs=32)
         rack = SimRack(Scenario((board,), (), (), ()), small_params(lattice=None), ManualClock(1.0))
+        rack.boards["b0"].flags &= ~StatusFlag.POWER_ON  # as a host clears it before writing
         replies = rack.exchange("b0", rows[name])
         frame = decode_frame(replies[0][1][:-1])
         assert (frame.address, frame.seq, frame.command) == (address, seq, command | m.REPLY_BIT), name
+
+
+def test_a_freshly_booted_board_refuses_writes_away_from_zero_until_faults_are_cleared(rack: SimRack) -> None:
+    """After a reset (power-on flag set) a write that raises an output - a retransmission from
+    before the reset, or a host that has not noticed it - is refused; lowering is allowed, and
+    after clear faults writes work again (docs/protocol.md, reason 10)."""
+    exchange(rack, m.Reset(), seq=1)
+    rack.clock.advance(0.2)  # type: ignore[attr-defined]
+    refused = exchange(rack, m.WriteOutputs(0, (1000,)), seq=2)
+    assert isinstance(refused, m.Nak) and refused.reason == NakReason.POWERED_ON
+    assert exchange(rack, m.WriteOutputs(0, (0,)), seq=3) == m.OutputsReply(0, (0,))
+    assert exchange(rack, m.ClearFaults(), seq=4) == m.Ack()
+    assert exchange(rack, m.WriteOutputs(0, (1000,)), seq=5) == m.OutputsReply(0, (1000,))
+    assert [entry[1] for entry in rack.board("b0").write_log][-3:] == ["boot", "write", "write"]
 
 
 def test_identify_reports_the_board(rack: SimRack) -> None:

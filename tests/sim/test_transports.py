@@ -84,6 +84,9 @@ def exercise_board(port: serial.SerialBase) -> None:
     identify = client.request(m.Identify())
     assert isinstance(identify, m.IdentifyReply) and identify.outputs == 64
     assert client.request(m.ConfigureWatchdog(30000, m.WatchdogAction.RAMP_TO_ZERO)) == m.WatchdogReply(30000, 2)
+    refused = client.request(m.WriteOutputs(0, (1000, 2000, 3000)))  # freshly booted: power-on set
+    assert isinstance(refused, m.Nak) and refused.reason == m.NakReason.POWERED_ON
+    assert client.request(m.ClearFaults()) == m.Ack()
     written = client.request(m.WriteOutputs(0, (1000, 2000, 3000)))
     assert written == m.OutputsReply(0, (1000, 2000, 3000))
     assert client.request(m.ReadOutputs(0, 3)) == m.OutputsReply(0, (1000, 2000, 3000))

@@ -45,6 +45,7 @@ class NakReason(enum.IntEnum):
     BUSY = 7
     WATCHDOG_TRIPPED = 8
     OUTPUT_FAULT = 9
+    POWERED_ON = 10
 
 
 class WatchdogAction(enum.IntEnum):
