@@ -12,7 +12,7 @@ from dataclasses import replace
 import serial
 
 from meshsim.clock import ManualClock
-from meshsim.params import CouplerDevice, LatticeSpec, PhaseDevice, SimParams, Spread, parse_params
+from meshsim.params import CouplerDevice, Crosstalk, Drift, LatticeSpec, PhaseDevice, SimParams, Spread, parse_params
 from meshsim.rack import SimRack
 from meshsim.scenario import ActuatorSpec, BoardSpec, MonitorSpec, Scenario
 from meshwarden.errors import ProtocolError
@@ -36,18 +36,26 @@ def small_scenario() -> Scenario:
     )
 
 
+IDEAL_SPREAD = Spread(0.0, 0.0, 0.0, static_phase_span_rad=0.0, splitting_angle_rad=0.0)
+NO_CROSSTALK = Crosstalk(within_gate_fraction=0.0, adjacent_gate_fraction=0.0)
+NO_DRIFT = Drift(random_walk_rad_per_sqrt_s=0.0)
+
+
 def small_params(**changes: object) -> SimParams:
-    """Nominal demo devices, no fabrication spread, no stiction unless asked."""
+    """Nominal demo devices on an ideal chip: no fabrication spread or errors, no crosstalk, no
+    drift, no phase-dependent loss, no stiction - unless asked."""
     base = parse_params({"seed": 3})
     lattice = LatticeSpec(
         modes=2, columns=((("g0", 0),), (("g1", 0),)), taps=(("m0", 1, 0), ("m1", 1, 1)), tap_fraction=0.01
     )
     params = replace(
         base,
-        spread=Spread(0.0, 0.0, 0.0),
+        spread=IDEAL_SPREAD,
         lattice=lattice,
         coupler=replace(CouplerDevice(), stiction_probability=0.0),
-        phase=replace(PhaseDevice(), stiction_probability=0.0),
+        phase=replace(PhaseDevice(), stiction_probability=0.0, loss_db_per_rad=0.0),
+        crosstalk=NO_CROSSTALK,
+        drift=NO_DRIFT,
     )
     return replace(params, **changes)  # type: ignore[arg-type]
 
