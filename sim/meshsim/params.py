@@ -229,8 +229,10 @@ def _drift(raw: Any) -> Drift:
     drift: Drift = _section(Drift, rest, "drift")
     if steps_raw is None:
         return drift
+    if not isinstance(steps_raw, list):
+        raise ParamsError(f"simulator.drift.temperature_steps: expected a list of [at_s, rad] pairs, got {steps_raw!r}")
     steps: list[tuple[float, float]] = []
-    for n, pair in enumerate(steps_raw if isinstance(steps_raw, list) else [None]):
+    for n, pair in enumerate(steps_raw):
         if (
             not isinstance(pair, list | tuple)
             or len(pair) != 2

@@ -9,8 +9,10 @@ from __future__ import annotations
 import time
 from dataclasses import replace
 
+import numpy as np
 import serial
 
+from meshsim.chip import SimChip
 from meshsim.clock import ManualClock
 from meshsim.params import CouplerDevice, Crosstalk, Drift, LatticeSpec, PhaseDevice, SimParams, Spread, parse_params
 from meshsim.rack import SimRack
@@ -58,6 +60,37 @@ def small_params(**changes: object) -> SimParams:
         drift=NO_DRIFT,
     )
     return replace(params, **changes)  # type: ignore[arg-type]
+
+
+def column_scenario(gates: int) -> Scenario:
+    """``gates`` gates side by side in one lattice column (gate i: coupler ci on output 2i, phase pi
+    on output 2i + 1, top mode 2i), a monitor on every output mode."""
+    actuators = []
+    for i in range(gates):
+        actuators += [ActuatorSpec(f"c{i}", "coupler", "b0", 2 * i), ActuatorSpec(f"p{i}", "phase", "b0", 2 * i + 1)]
+    return Scenario(
+        boards=(BoardSpec("b0", address=1, outputs=2 * gates, monitor_inputs=2 * gates),),
+        actuators=tuple(actuators),
+        gates=tuple((f"g{i}", f"c{i}", f"p{i}") for i in range(gates)),
+        monitors=tuple(MonitorSpec(f"m{k}", "b0", k) for k in range(2 * gates)),
+    )
+
+
+def column_params(gates: int, **changes: object) -> SimParams:
+    """The ideal chip of :func:`small_params` on the lattice of :func:`column_scenario`."""
+    lattice = LatticeSpec(
+        modes=2 * gates,
+        columns=(tuple((f"g{i}", 2 * i) for i in range(gates)),),
+        taps=tuple((f"m{k}", 0, k) for k in range(2 * gates)),
+        tap_fraction=0.01,
+    )
+    return small_params(lattice=lattice, **changes)
+
+
+def column_chip(gates: int, seed: int = 11, **changes: object) -> SimChip:
+    """A chip of :func:`column_scenario` with :func:`column_params`, seeded."""
+    rng = np.random.default_rng(np.random.SeedSequence(seed))
+    return SimChip(column_scenario(gates), column_params(gates, **changes), rng)
 
 
 def small_rack(**changes: object) -> tuple[SimRack, ManualClock]:
