@@ -104,7 +104,7 @@ class Drift:
     ``temperature_step_rad``. 0 turns each part off.
     """
 
-    random_walk_rad_per_sqrt_s: float = 0.05
+    random_walk_rad_per_sqrt_s: float = 0.02
     temperature_steps: tuple[tuple[float, float], ...] = ()
     temperature_step_interval_s: float = 0.0
     temperature_step_rad: float = 0.3

@@ -13,7 +13,7 @@ import pytest
 from scipy import stats
 
 from meshsim.clock import ManualClock, SimClock
-from meshsim.params import Drift, parse_params
+from meshsim.params import CouplerDevice, Drift, LatticeSpec, parse_params
 from meshsim.physics.drift import PhaseDrift
 from meshsim.rack import SimRack
 from meshsim.scenario import load_scenario
@@ -130,19 +130,59 @@ def test_time_scale_runs_minutes_of_drift_in_a_fraction_of_a_second() -> None:
     assert float(np.sqrt(np.mean(truth.drift_phase_rad**2))) > 0.2
 
 
-def test_demo_defaults_spoil_an_unlocked_circuit_within_minutes() -> None:
-    """The demo chip's drift, five simulated minutes on: the arms' rms drift exceeds 0.5 rad - far
-    beyond the 0.02 rad a locked phase is to be held to - and the output taps have changed."""
+def _nulled_mzis(pairs: int, drift: Drift) -> tuple[SimRack, ManualClock]:
+    """``pairs`` MZIs side by side (gate i then gate pairs + i on modes 2i, 2i + 1), light in every
+    top mode, couplers designed for kappa 0.5 at rest (C L = pi/4), no static error: every top
+    output starts dark."""
+    scenario = column_scenario(2 * pairs)
+    length = CouplerDevice().coupling_length_m
+    balanced = replace(
+        CouplerDevice(),
+        stiction_probability=0.0,
+        coupling_ref_gap_m=CouplerDevice().optical_gap_rest_m,
+        coupling_ref_per_m=(math.pi / 4) / length,
+    )
+    lattice = LatticeSpec(
+        modes=2 * pairs,
+        columns=tuple(tuple((f"g{c * pairs + i}", 2 * i) for i in range(pairs)) for c in range(2)),
+        taps=tuple((f"m{k}", 1, k) for k in range(2 * pairs)),
+        tap_fraction=0.01,
+    )
+    params = column_params(2 * pairs, coupler=balanced, drift=drift)
+    laser = replace(params.laser, input_modes=tuple(range(0, 2 * pairs, 2)))
+    clock = ManualClock()
+    return SimRack(scenario, replace(params, lattice=lattice, laser=laser), clock), clock
+
+
+def _extinction_db(tap_power_w: np.ndarray) -> np.ndarray:
+    top, bottom = tap_power_w[0::2], tap_power_w[1::2]
+    return np.asarray(10 * np.log10((top + bottom) / np.maximum(top, 1e-30)))
+
+
+def test_default_drift_spoils_an_unlocked_circuit_within_minutes() -> None:
+    """Fifty MZIs nulled at the start (extinction > 40 dB) drift, with the default random walk, to a
+    median extinction below 25 dB - the figure a lock to minimum must hold - within five simulated
+    minutes. Source: MZI output sin^2(phi / 2) with 50:50 couplers (standard); the default drift
+    rate is a stand-in."""
+    default = Drift()
+    assert default.random_walk_rad_per_sqrt_s > 0
+    rack, clock = _nulled_mzis(50, default)
+    clock.advance(0.01)
+    assert np.all(_extinction_db(rack.truth().tap_power_w[: 2 * 50]) > 40.0)
+    clock.advance(300.0)
+    assert float(np.median(_extinction_db(rack.truth().tap_power_w[: 2 * 50]))) < 25.0
+
+
+def test_demo_chip_drifts_like_the_defaults() -> None:
+    """The demo configuration turns drift on: after five simulated minutes its arms have drifted by
+    more than 0.2 rad rms."""
     scenario = load_scenario(DEMO)
     params = parse_params(scenario.simulator)
     assert params.drift.random_walk_rad_per_sqrt_s > 0
     clock = ManualClock()
     rack = SimRack(scenario, params, clock)
-    before = rack.truth()
     clock.advance(300.0)
-    after = rack.truth()
-    assert float(np.sqrt(np.mean(after.drift_phase_rad**2))) > 0.5
-    assert not np.allclose(after.tap_power_w, before.tap_power_w, rtol=0.05)
+    assert float(np.sqrt(np.mean(rack.truth().drift_phase_rad ** 2))) > 0.2
 
 
 def test_drift_switched_off_leaves_the_chip_still() -> None:
