@@ -341,14 +341,19 @@ class SimChip:
         if not self.crosstalk_shares.any():
             return dx
         eff = self.effective_volts(t)
-        v_eq = np.sqrt(equivalent_squared_volts(self.crosstalk_shares, eff))
+        extra = equivalent_squared_volts(self.crosstalk_shares, eff) - eff * eff
         c, p = self.couplers, self.phases
-        if c.size:
-            top = 0.999 * self.plate.pull_in_volts
-            own = np.minimum(np.abs(eff[c]), top)
-            dx[c] = self.plate.equilibrium(np.minimum(v_eq[c], top)) - self.plate.equilibrium(own)
+        # Only actuators with a driven neighbour move; at rest this costs nothing.
+        pushed = np.flatnonzero(extra[c] > 0.0)
+        if pushed.size:
+            top = 0.999 * self.plate.pull_in_volts[pushed]
+            own = np.minimum(np.abs(eff[c[pushed]]), top)
+            v_eq = np.minimum(np.sqrt(own * own + extra[c[pushed]]), top)
+            both = self.plate.equilibrium(np.concatenate([v_eq, own]), np.concatenate([pushed, pushed]))
+            dx[c[pushed]] = both[: pushed.size] - both[pushed.size :]
         if p.size:
-            dx[p] = self.comb.equilibrium(v_eq[p]) - self.comb.equilibrium(eff[p])
+            # A comb's displacement is linear in V^2, so the neighbours' share adds on its own.
+            dx[p] = self.comb.force(np.sqrt(np.maximum(extra[p], 0.0))) / self.comb.spring
         dx[self.pulled_in | self.stuck] = 0.0
         return dx
 
