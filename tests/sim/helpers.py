@@ -6,6 +6,7 @@ simulator on its own, as a lab would check a new board with a terminal program.
 
 from __future__ import annotations
 
+import math
 import time
 from dataclasses import replace
 
@@ -60,6 +61,17 @@ def small_params(**changes: object) -> SimParams:
         drift=NO_DRIFT,
     )
     return replace(params, **changes)  # type: ignore[arg-type]
+
+
+def balanced_coupler() -> CouplerDevice:
+    """The demo coupler redesigned to split 50:50 at rest (C L = pi/4 at its rest gap), no stiction."""
+    device = CouplerDevice()
+    return replace(
+        device,
+        stiction_probability=0.0,
+        coupling_ref_gap_m=device.optical_gap_rest_m,
+        coupling_ref_per_m=(math.pi / 4) / device.coupling_length_m,
+    )
 
 
 def column_scenario(gates: int) -> Scenario:

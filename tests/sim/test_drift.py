@@ -13,11 +13,11 @@ import pytest
 from scipy import stats
 
 from meshsim.clock import ManualClock, SimClock
-from meshsim.params import CouplerDevice, Drift, LatticeSpec, parse_params
+from meshsim.params import Drift, LatticeSpec, parse_params
 from meshsim.physics.drift import PhaseDrift
 from meshsim.rack import SimRack
 from meshsim.scenario import load_scenario
-from tests.sim.helpers import column_params, column_scenario
+from tests.sim.helpers import balanced_coupler, column_params, column_scenario
 
 DEMO = Path(__file__).resolve().parents[2] / "config" / "demo.yaml"
 ARMS, D = 4000, 0.05
@@ -135,13 +135,7 @@ def _nulled_mzis(pairs: int, drift: Drift) -> tuple[SimRack, ManualClock]:
     top mode, couplers designed for kappa 0.5 at rest (C L = pi/4), no static error: every top
     output starts dark."""
     scenario = column_scenario(2 * pairs)
-    length = CouplerDevice().coupling_length_m
-    balanced = replace(
-        CouplerDevice(),
-        stiction_probability=0.0,
-        coupling_ref_gap_m=CouplerDevice().optical_gap_rest_m,
-        coupling_ref_per_m=(math.pi / 4) / length,
-    )
+    balanced = balanced_coupler()
     lattice = LatticeSpec(
         modes=2 * pairs,
         columns=tuple(tuple((f"g{c * pairs + i}", 2 * i) for i in range(pairs)) for c in range(2)),

@@ -16,7 +16,7 @@ from scipy.optimize import brentq
 from meshsim.chip import SimChip
 from meshsim.params import CouplerDevice, Crosstalk, Drift, LatticeSpec, PhaseDevice, parse_params
 from meshsim.scenario import load_scenario
-from tests.sim.helpers import IDEAL_SPREAD, column_chip, small_params, small_scenario
+from tests.sim.helpers import IDEAL_SPREAD, balanced_coupler, column_chip, small_params, small_scenario
 
 DEMO = Path(__file__).resolve().parents[2] / "config" / "demo.yaml"
 TWO_PI = 2.0 * math.pi
@@ -81,13 +81,7 @@ def test_splitting_error_spreads_kappa_at_rest_as_a_normal_angle_error() -> None
     Source: kappa = sin^2(C L), Yariv, IEEE JQE 9:919 (1973); the additive splitting-angle error,
     Miller, Optica 2:747 (2015) and Pai et al., Phys. Rev. Applied 11:064044 (2019) (from memory);
     the normal spread is a stand-in."""
-    length = CouplerDevice().coupling_length_m
-    balanced = replace(
-        CouplerDevice(),
-        stiction_probability=0.0,
-        coupling_ref_gap_m=CouplerDevice().optical_gap_rest_m,
-        coupling_ref_per_m=(math.pi / 4) / length,
-    )
+    balanced = balanced_coupler()
     spread = replace(IDEAL_SPREAD, splitting_angle_rad=0.08)
     kappa = column_chip(400, coupler=balanced, spread=spread).truth(0.0).kappa
     recovered = np.arcsin(np.sqrt(kappa)) - math.pi / 4
