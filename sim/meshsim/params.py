@@ -243,9 +243,9 @@ def _drift(raw: Any) -> Drift:
     return replace(drift, temperature_steps=tuple(sorted(steps)))
 
 
-def _non_negative(group: str, values: dict[str, float]) -> None:
+def _non_negative(group: str, values: dict[str, Any]) -> None:
     for key, value in values.items():
-        if not (math.isfinite(value) and value >= 0.0):
+        if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0.0):
             raise ParamsError(f"simulator.{group}.{key}: expected a number >= 0, got {value!r}")
 
 
@@ -253,7 +253,8 @@ def _check_imperfections(params: SimParams) -> None:
     """The chip's imperfections must be usable numbers; 0 switches each one off."""
     spread, xt, drift = params.spread, params.crosstalk, params.drift
     _non_negative("spread", {"splitting_angle_rad": spread.splitting_angle_rad})
-    if not (0.0 <= spread.static_phase_span_rad <= 2.0 * math.pi + 1e-12):
+    _non_negative("spread", {"static_phase_span_rad": spread.static_phase_span_rad})
+    if spread.static_phase_span_rad > 2.0 * math.pi + 1e-12:
         raise ParamsError(
             f"simulator.spread.static_phase_span_rad: expected 0 to 2 pi, got {spread.static_phase_span_rad!r}"
         )

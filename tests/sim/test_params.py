@@ -70,6 +70,8 @@ def test_every_imperfection_switches_off_with_zero() -> None:
             "simulator.spread.splitting_angle_rad: expected a number >= 0",
         ),
         ({"phase": {"loss_db_per_rad": -1}}, "simulator.phase.loss_db_per_rad: expected a number >= 0"),
+        ({"drift": {"temperature_step_rad": "a lot"}}, "simulator.drift.temperature_step_rad: expected a number >= 0"),
+        ({"spread": {"static_phase_span_rad": -1}}, "simulator.spread.static_phase_span_rad: expected a number >= 0"),
     ],
 )
 def test_unusable_imperfection_values_are_refused_with_their_key(raw: dict[str, Any], message: str) -> None:
