@@ -18,6 +18,18 @@ Failure physics:
   ``charging_fraction * V`` with the device's time constant (minutes), and back to zero when
   the bias is removed - a first-order stand-in for the linear-then-logarithmic charging of
   Wibbeler et al. 1998.
+
+What makes the optics as hard as a real chip (all evaluated when the optics are read):
+
+* fabrication errors (:mod:`meshsim.fabrication`): a static phase error per phase arm, uniform
+  in [0, 2 pi), and a splitting-angle error per coupler;
+* electrostatic crosstalk (:mod:`meshsim.crosstalk`): neighbours' drive moves each actuator a
+  little, quasi-statically, on top of its own motion;
+* insertion loss of the phase arm that grows with the actuated phase;
+* drift (:mod:`meshsim.physics.drift`): a random walk per arm and common temperature steps, a
+  function of simulated time.
+
+The phase the light sees at a gate is (static + actuated + drift) mod 2 pi.
 """
 
 from __future__ import annotations
@@ -28,10 +40,13 @@ import numpy as np
 from numpy.typing import NDArray
 from scipy.constants import epsilon_0
 
+from meshsim.crosstalk import equivalent_squared_volts, neighbour_matrix
 from meshsim.devices import CombArrays, PlateArrays, comb_arrays, plate_arrays
 from meshsim.dynamics import Ringing, first_peak
+from meshsim.fabrication import draw_fabrication
 from meshsim.params import SimParams
 from meshsim.physics import optics
+from meshsim.physics.drift import PhaseDrift
 from meshsim.physics.electrostatics import parallel_plate_force
 from meshsim.scenario import Scenario
 
@@ -41,7 +56,16 @@ I = NDArray[np.int64]  # noqa: E741
 
 @dataclass(frozen=True)
 class ChipTruth:
-    """A snapshot of the chip's real state, for tests and inspection."""
+    """A snapshot of the chip's real state, for tests and inspection.
+
+    Per actuator: volts, displacement (own drive plus crosstalk), pulled-in and stuck flags.
+    Per gate: ``kappa`` is the coupling the light sees (splitting error and crosstalk included);
+    ``phase_rad`` is only what the actuator adds (its own drive plus crosstalk, relative to rest);
+    ``mesh_phase_rad`` is the phase the light sees, (static + actuated + drift) mod 2 pi, with its
+    parts ``static_phase_rad`` and ``drift_phase_rad``; ``splitting_angle_rad`` is the coupler's
+    fabrication error; ``insertion_loss_db`` the phase arm's loss (gate, transitions and the
+    phase-dependent part).
+    """
 
     time_s: float
     actuator_ids: tuple[str, ...]
@@ -54,6 +78,22 @@ class ChipTruth:
     kappa: F
     phase_rad: F
     tap_power_w: F
+    mesh_phase_rad: F
+    static_phase_rad: F
+    drift_phase_rad: F
+    splitting_angle_rad: F
+    insertion_loss_db: F
+
+
+@dataclass(frozen=True)
+class GateOptics:
+    """What the light meets at each gate at one time."""
+
+    kappa: F
+    actuated_phase_rad: F
+    drift_phase_rad: F
+    mesh_phase_rad: F
+    arm_loss_db: F
 
 
 class SimChip:
@@ -106,7 +146,24 @@ class SimChip:
             + params.phase.loss_db
             + 2 * (params.lattice.transition_loss_db if params.lattice else 0.0)
         )
+        self.gate_loss_db = loss_db
         self.gate_loss_amplitude = np.full(len(self.gate_ids), float(optics.db_to_amplitude(loss_db)))
+
+        # Imperfections of the optics, each from its own seeded stream (the draws above are untouched).
+        fabrication_seed, drift_seed = _child_seeds(rng, 2)
+        self.fabrication = draw_fabrication(params.spread, len(self.gate_ids), fabrication_seed)
+        self.crosstalk_shares = neighbour_matrix(
+            n, self.gate_coupler, self.gate_phase, self._gate_positions(params), params.crosstalk
+        )
+        drift = params.drift
+        self.drift = PhaseDrift(
+            len(self.gate_ids),
+            drift_seed,
+            drift.random_walk_rad_per_sqrt_s,
+            drift.temperature_steps,
+            drift.temperature_step_interval_s,
+            drift.temperature_step_rad,
+        )
 
     # ---------------------------------------------------------------- construction helpers
 
@@ -122,6 +179,13 @@ class SimChip:
             taps[monitor_index[mid]] = (after, mode)
         layout = optics.LatticeLayout(spec.modes, columns, tuple(taps), spec.tap_fraction)
         return optics.Lattice(layout)
+
+    def _gate_positions(self, params: SimParams) -> dict[int, tuple[int, int]]:
+        """Gate index -> (column, top mode) in the lattice, for the gates it places."""
+        if params.lattice is None:
+            return {}
+        gate_index = {gid: i for i, gid in enumerate(self.gate_ids)}
+        return {gate_index[g]: (c, top) for c, col in enumerate(params.lattice.columns) for g, top in col}
 
     # ---------------------------------------------------------------- mechanics
 
@@ -265,42 +329,113 @@ class SimChip:
         self.stuck_at[i] = self.displacement(t)[i]
         self.stuck[i] = True
 
-    def optical_state(self, t: float) -> tuple[F, F]:
-        """Power coupling and phase of every gate at time ``t``."""
-        x = self.displacement(t)
-        kappa_all = np.zeros(len(self.ids))
+    def crosstalk_displacement(self, t: float) -> F:
+        """Extra displacement of every actuator caused by its neighbours' drive (quasi-static).
+
+        Each free actuator sits where V_eq^2 = V^2 + sum f_j V_j^2 would put it; the part beyond
+        its own equilibrium is the crosstalk. Pulled-in and stuck actuators do not move. A plate
+        is held just below pull-in: crosstalk alone never snaps it (the guard's margin keeps
+        real drives far from that).
+        """
+        dx = np.zeros(len(self.ids))
+        if not self.crosstalk_shares.any():
+            return dx
+        eff = self.effective_volts(t)
+        extra = equivalent_squared_volts(self.crosstalk_shares, eff) - eff * eff
+        c, p = self.couplers, self.phases
+        # Only actuators with a driven neighbour move; at rest this costs nothing.
+        pushed = np.flatnonzero(extra[c] > 0.0)
+        if pushed.size:
+            top = 0.999 * self.plate.pull_in_volts[pushed]
+            own = np.minimum(np.abs(eff[c[pushed]]), top)
+            v_eq = np.minimum(np.sqrt(own * own + extra[c[pushed]]), top)
+            both = self.plate.equilibrium(np.concatenate([v_eq, own]), np.concatenate([pushed, pushed]))
+            dx[c[pushed]] = both[: pushed.size] - both[pushed.size :]
+        if p.size:
+            # A comb's displacement is linear in V^2, so the neighbours' share adds on its own.
+            dx[p] = self.comb.force(np.sqrt(np.maximum(extra[p], 0.0))) / self.comb.spring
+        dx[self.pulled_in | self.stuck] = 0.0
+        return dx
+
+    def optical_displacement(self, t: float) -> F:
+        """Where every actuator really is: its own motion plus crosstalk."""
+        return self.displacement(t) + self.crosstalk_displacement(t)
+
+    def gate_optics(self, t: float) -> GateOptics:
+        """Coupling, phases and arm loss of every gate at time ``t``."""
+        x = self.optical_displacement(t)
+        angle_all = np.zeros(len(self.ids))
         phase_all = np.zeros(len(self.ids))
-        kappa_all[self.couplers] = self.plate.kappa(x[self.couplers])
+        plate, d = self.plate, self.params.coupler
+        gap = np.maximum(plate.optical_gap_rest - x[self.couplers], 0.0)
+        coupling = optics.coupling_from_gap(gap, d.coupling_ref_per_m, d.coupling_ref_gap_m, d.coupling_decay_m)
+        angle_all[self.couplers] = coupling * d.coupling_length_m
         phase_all[self.phases] = self.comb.phase(x[self.phases], self.params.laser.wavelength_m)
-        return kappa_all[self.gate_coupler], phase_all[self.gate_phase]
+        kappa = optics.kappa_from_angle(angle_all[self.gate_coupler] + self.fabrication.splitting_angle_rad)
+        actuated = phase_all[self.gate_phase]
+        drift = self.drift.phase_rad(t)
+        mesh = np.mod(self.fabrication.static_phase_rad + actuated + drift, 2.0 * np.pi)
+        arm_loss = optics.arm_loss_db(actuated, self.params.phase.loss_db_per_rad)
+        return GateOptics(kappa, actuated, drift, mesh, arm_loss)
+
+    def optical_state(self, t: float) -> tuple[F, F]:
+        """Power coupling and the phase the light sees (mod 2 pi) of every gate at time ``t``."""
+        gates = self.gate_optics(t)
+        return gates.kappa, gates.mesh_phase_rad
+
+    def _propagate(self, gates: GateOptics) -> F:
+        assert self.lattice is not None
+        laser = self.params.laser
+        field = np.zeros(self.lattice.layout.modes, dtype=complex)
+        modes = list(laser.input_modes)
+        field[modes] = np.sqrt(laser.power_w / len(modes))
+        arm = optics.db_to_amplitude(gates.arm_loss_db)
+        _, taps = self.lattice.propagate(field, gates.kappa, gates.mesh_phase_rad, self.gate_loss_amplitude, arm)
+        return taps
 
     def tap_powers_w(self, t: float) -> F:
         """Optical power at each monitor tap, in monitor order."""
         if self.lattice is None:
             return np.zeros(len(self.monitor_ids))
-        kappa, phase = self.optical_state(t)
-        laser = self.params.laser
-        field = np.zeros(self.lattice.layout.modes, dtype=complex)
-        modes = list(laser.input_modes)
-        field[modes] = np.sqrt(laser.power_w / len(modes))
-        _, taps = self.lattice.propagate(field, kappa, phase, self.gate_loss_amplitude)
-        return taps
+        return self._propagate(self.gate_optics(t))
+
+    def transfer_matrix(self, t: float) -> NDArray[np.complex128]:
+        """The lattice's field transfer matrix at ``t`` (taps included); for tests and inspection."""
+        if self.lattice is None:
+            raise ValueError("the simulator section has no lattice")
+        gates = self.gate_optics(t)
+        arm = optics.db_to_amplitude(gates.arm_loss_db)
+        return self.lattice.transfer_matrix(gates.kappa, gates.mesh_phase_rad, self.gate_loss_amplitude, arm)
 
     def truth(self, t: float) -> ChipTruth:
-        kappa, phase = self.optical_state(t)
+        gates = self.gate_optics(t)
+        taps = self._propagate(gates) if self.lattice is not None else np.zeros(len(self.monitor_ids))
         return ChipTruth(
             time_s=t,
             actuator_ids=self.ids,
             terminal_volts=self.terminal_volts.copy(),
             effective_volts=self.effective_volts(t).copy(),
-            displacement_m=self.displacement(t),
+            displacement_m=self.optical_displacement(t),
             pulled_in=self.pulled_in.copy(),
             stuck=self.stuck.copy(),
             gate_ids=self.gate_ids,
-            kappa=kappa,
-            phase_rad=phase,
-            tap_power_w=self.tap_powers_w(t),
+            kappa=gates.kappa,
+            phase_rad=gates.actuated_phase_rad,
+            tap_power_w=taps,
+            mesh_phase_rad=gates.mesh_phase_rad,
+            static_phase_rad=self.fabrication.static_phase_rad.copy(),
+            drift_phase_rad=gates.drift_phase_rad,
+            splitting_angle_rad=self.fabrication.splitting_angle_rad.copy(),
+            insertion_loss_db=self.gate_loss_db + gates.arm_loss_db,
         )
+
+
+def _child_seeds(rng: np.random.Generator, count: int) -> list[np.random.SeedSequence]:
+    """Independent seed sequences derived from ``rng``'s seed without drawing from its stream."""
+    seed = rng.bit_generator.seed_seq
+    if not isinstance(seed, np.random.SeedSequence):
+        raise TypeError("the chip's generator must be seeded from a SeedSequence")
+    return seed.spawn(count)
 
 
 def _plate_force(plate: PlateArrays, ci: I, volts: F, x: F) -> F:

@@ -9,7 +9,7 @@ that move a dielectric beam toward the waveguide. See docs/simulator.md.
 from __future__ import annotations
 
 import math
-from dataclasses import dataclass, fields
+from dataclasses import dataclass, fields, replace
 from typing import Any
 
 
@@ -55,6 +55,9 @@ class PhaseDevice:
     index_decay_m: float = 250e-9
     length_m: float = 200e-6
     loss_db: float = 0.2
+    # Extra loss of the phase arm per radian of actuated phase: the nearer the beam, the more of
+    # the mode it scatters (a stand-in; a few hundredths of a dB over 2 pi).
+    loss_db_per_rad: float = 0.006
     charging_fraction: float = 0.005
     charging_time_s: float = 600.0
     stiction_probability: float = 0.3
@@ -62,11 +65,49 @@ class PhaseDevice:
 
 @dataclass(frozen=True)
 class Spread:
-    """Relative standard deviations of fabrication spread, drawn once per actuator (seeded)."""
+    """Fabrication spread, drawn once per chip from the seed.
+
+    The ``*_rel`` keys are relative standard deviations per actuator. ``static_phase_span_rad``:
+    each gate's phase arm carries a path-length error uniform in [0, span) (2 pi: the arm's phase
+    at rest is unknown). ``splitting_angle_rad``: standard deviation of an additive error of each
+    coupler's splitting angle, so kappa at 0 V is sin^2(C(g_rest) L + error). 0 turns either off.
+    """
 
     spring_rel: float = 0.03
     gap_rel: float = 0.02
     optical_gap_rel: float = 0.01
+    static_phase_span_rad: float = 2.0 * math.pi
+    splitting_angle_rad: float = 0.08
+
+
+@dataclass(frozen=True)
+class Crosstalk:
+    """Electrostatic crosstalk: the fraction of a neighbouring electrode's V^2 that acts on an
+    actuator as if it were its own drive (a stand-in for fringing fields; 0 turns it off).
+
+    ``within_gate_fraction`` couples a gate's coupler and phase shifter; ``adjacent_gate_fraction``
+    couples like actuators of gates side by side in one lattice column.
+    """
+
+    within_gate_fraction: float = 0.02
+    adjacent_gate_fraction: float = 0.01
+
+
+@dataclass(frozen=True)
+class Drift:
+    """Slow phase drift of every gate's phase arm, a function of simulated time (seeded).
+
+    ``random_walk_rad_per_sqrt_s``: each arm's phase is an independent Wiener process with
+    variance D^2 t. ``temperature_steps``: (at_s, rad) pairs, each moving every arm by the same
+    amount from that time on. ``temperature_step_interval_s`` > 0 adds random steps at that mean
+    interval (a Poisson process), each of normal size with standard deviation
+    ``temperature_step_rad``. 0 turns each part off.
+    """
+
+    random_walk_rad_per_sqrt_s: float = 0.02
+    temperature_steps: tuple[tuple[float, float], ...] = ()
+    temperature_step_interval_s: float = 0.0
+    temperature_step_rad: float = 0.3
 
 
 @dataclass(frozen=True)
@@ -111,6 +152,8 @@ class SimParams:
     laser: Laser
     board: BoardFirmware
     lattice: LatticeSpec | None
+    crosstalk: Crosstalk = Crosstalk()
+    drift: Drift = Drift()
 
 
 # key in YAML -> (field name, factor to SI)
@@ -179,13 +222,66 @@ def _lattice(raw: Any) -> LatticeSpec | None:
         raise ParamsError(f"simulator.lattice: expected modes, columns and taps ({exc!r})") from None
 
 
+def _drift(raw: Any) -> Drift:
+    """The drift group; ``temperature_steps`` is a list of [at_s, rad] pairs."""
+    steps_raw = raw.get("temperature_steps") if isinstance(raw, dict) else None
+    rest = {k: v for k, v in raw.items() if k != "temperature_steps"} if isinstance(raw, dict) else raw
+    drift: Drift = _section(Drift, rest, "drift")
+    if steps_raw is None:
+        return drift
+    if not isinstance(steps_raw, list):
+        raise ParamsError(f"simulator.drift.temperature_steps: expected a list of [at_s, rad] pairs, got {steps_raw!r}")
+    steps: list[tuple[float, float]] = []
+    for n, pair in enumerate(steps_raw):
+        if (
+            not isinstance(pair, list | tuple)
+            or len(pair) != 2
+            or not all(isinstance(v, int | float) and not isinstance(v, bool) and math.isfinite(v) for v in pair)
+        ):
+            raise ParamsError(f"simulator.drift.temperature_steps[{n}]: expected [at_s, rad], got {pair!r}")
+        steps.append((float(pair[0]), float(pair[1])))
+    return replace(drift, temperature_steps=tuple(sorted(steps)))
+
+
+def _non_negative(group: str, values: dict[str, Any]) -> None:
+    for key, value in values.items():
+        if not (isinstance(value, int | float) and math.isfinite(value) and value >= 0.0):
+            raise ParamsError(f"simulator.{group}.{key}: expected a number >= 0, got {value!r}")
+
+
+def _check_imperfections(params: SimParams) -> None:
+    """The chip's imperfections must be usable numbers; 0 switches each one off."""
+    spread, xt, drift = params.spread, params.crosstalk, params.drift
+    _non_negative("spread", {"splitting_angle_rad": spread.splitting_angle_rad})
+    _non_negative("spread", {"static_phase_span_rad": spread.static_phase_span_rad})
+    if spread.static_phase_span_rad > 2.0 * math.pi + 1e-12:
+        raise ParamsError(
+            f"simulator.spread.static_phase_span_rad: expected 0 to 2 pi, got {spread.static_phase_span_rad!r}"
+        )
+    _non_negative(
+        "crosstalk",
+        {"within_gate_fraction": xt.within_gate_fraction, "adjacent_gate_fraction": xt.adjacent_gate_fraction},
+    )
+    if xt.within_gate_fraction > 0.5 or xt.adjacent_gate_fraction > 0.5:
+        raise ParamsError("simulator.crosstalk: a neighbour's share of the drive must be at most 0.5")
+    _non_negative(
+        "drift",
+        {
+            "random_walk_rad_per_sqrt_s": drift.random_walk_rad_per_sqrt_s,
+            "temperature_step_interval_s": drift.temperature_step_interval_s,
+            "temperature_step_rad": drift.temperature_step_rad,
+        },
+    )
+    _non_negative("phase", {"loss_db_per_rad": params.phase.loss_db_per_rad})
+
+
 def parse_params(raw: dict[str, Any], seed: int | None = None) -> SimParams:
     """The simulator section as :class:`SimParams`; ``seed`` overrides the section's seed."""
-    known = {"seed", "coupler", "phase", "spread", "detectors", "laser", "board", "lattice"}
+    known = {"seed", "coupler", "phase", "spread", "detectors", "laser", "board", "lattice", "crosstalk", "drift"}
     for key in raw:
         if key not in known:
             raise ParamsError(f"simulator: unknown key '{key}' (known: {', '.join(sorted(known))})")
-    return SimParams(
+    params = SimParams(
         seed=int(seed if seed is not None else raw.get("seed", 0)),
         coupler=_section(CouplerDevice, raw.get("coupler"), "coupler"),
         phase=_section(PhaseDevice, raw.get("phase"), "phase"),
@@ -194,4 +290,8 @@ def parse_params(raw: dict[str, Any], seed: int | None = None) -> SimParams:
         laser=_section(Laser, raw.get("laser"), "laser"),
         board=_section(BoardFirmware, raw.get("board"), "board"),
         lattice=_lattice(raw.get("lattice")),
+        crosstalk=_section(Crosstalk, raw.get("crosstalk"), "crosstalk"),
+        drift=_drift(raw.get("drift")),
     )
+    _check_imperfections(params)
+    return params

@@ -1,5 +1,6 @@
 """A small bench configuration written into a temporary folder: one board, two gates, two monitors,
-with a simulator section, design-nominal calibration generated from the simulator's model."""
+with a simulator section of an ideal chip (every imperfection set to 0), design-nominal
+calibration generated from the simulator's model."""
 
 from __future__ import annotations
 
@@ -49,8 +50,11 @@ simulator:
   seed: 5
   laser: {{wavelength_nm: 1550, power_mw: 1.0, input_modes: [0]}}
   coupler: {{quality_factor: {coupler_q}, stiction_probability: 0.0}}
-  phase: {{stiction_probability: 0.0}}
-  spread: {{spring_rel: 0.0, gap_rel: 0.0, optical_gap_rel: 0.0}}
+  phase: {{stiction_probability: 0.0, loss_db_per_rad: 0.0}}
+  # an ideal chip: no fabrication spread or errors, no crosstalk, no drift
+  spread: {{spring_rel: 0.0, gap_rel: 0.0, optical_gap_rel: 0.0, static_phase_span_rad: 0.0, splitting_angle_rad: 0.0}}
+  crosstalk: {{within_gate_fraction: 0.0, adjacent_gate_fraction: 0.0}}
+  drift: {{random_walk_rad_per_sqrt_s: 0.0}}
   lattice:
     modes: 2
     tap_fraction: 0.01

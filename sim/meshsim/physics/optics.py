@@ -7,9 +7,15 @@
   Hochberg, *Silicon Photonics Design*, CUP 2015; from memory).
 * 2x2 coupler transfer matrix [[sqrt(1-k), i sqrt(k)], [i sqrt(k), sqrt(1-k)]]: unitary, the
   "bar" port is the same waveguide (port 0 -> 0), the "cross" port picks up +pi/2.
+* Splitting angle: the coupler matrix is [[cos t, i sin t], [i sin t, cos t]] with t = C L, so a
+  fabrication error of the angle adds to C L: kappa = sin^2(C L + delta) (the beam-splitter error
+  model of Miller, Optica 2:747, 2015; from memory).
 * Phase shifter: a dielectric beam moved toward the waveguide raises its effective index,
   dn(g) = dn_contact exp(-g / l_decay); phase = 2 pi dn L / lambda, positive phase = delay, the
   field multiplied by exp(+i phi) (our convention).
+* Insertion loss in dB of a power ratio: L = -10 log10(P_out / P_in); a field amplitude falls by
+  10^(-L / 20). The phase arm's loss grows with the actuated phase (the nearer beam scatters
+  more of the mode): L = L_0 + s phi, a linear stand-in.
 
 A gate is a tunable coupler on modes (m, m+1) followed by a phase shifter on mode m. The lattice
 propagates a field vector through columns of gates with vectorised numpy indexing; taps take a
@@ -37,6 +43,11 @@ def kappa_from_coupling(c_per_m: ArrayLike, length_m: ArrayLike) -> FloatArray:
     return np.asarray(np.sin(np.asarray(c_per_m) * np.asarray(length_m)) ** 2)
 
 
+def kappa_from_angle(angle_rad: ArrayLike) -> FloatArray:
+    """Power coupling ratio sin^2 of the splitting angle (C L plus any fabrication error)."""
+    return np.asarray(np.sin(np.asarray(angle_rad, dtype=float)) ** 2)
+
+
 def coupler_matrix(kappa: float) -> ComplexArray:
     """The unitary 2x2 transfer matrix of a lossless coupler with power coupling ``kappa``."""
     t = np.sqrt(1.0 - kappa)
@@ -52,6 +63,11 @@ def index_shift(gap_m: ArrayLike, dn_contact: ArrayLike, decay_m: ArrayLike) -> 
 def phase_from_index(dn: ArrayLike, length_m: ArrayLike, wavelength_m: float) -> FloatArray:
     """Optical phase 2 pi dn L / lambda in radians."""
     return np.asarray(2.0 * np.pi * np.asarray(dn) * np.asarray(length_m) / wavelength_m)
+
+
+def arm_loss_db(actuated_phase_rad: ArrayLike, loss_db_per_rad: float) -> FloatArray:
+    """Extra insertion loss in dB of a phase arm driven to ``actuated_phase_rad`` (never negative)."""
+    return np.asarray(loss_db_per_rad * np.maximum(np.asarray(actuated_phase_rad, dtype=float), 0.0))
 
 
 def db_to_amplitude(loss_db: ArrayLike) -> FloatArray:
@@ -99,14 +115,21 @@ class Lattice:
         kappa: FloatArray,
         phase: FloatArray,
         gate_loss_amplitude: FloatArray,
+        arm_amplitude: FloatArray | None = None,
     ) -> tuple[ComplexArray, FloatArray]:
-        """Return the output field and the optical power (W if the input is in sqrt(W)) at each tap."""
+        """Return the output field and the optical power (W if the input is in sqrt(W)) at each tap.
+
+        ``gate_loss_amplitude`` applies to both outputs of a gate; ``arm_amplitude`` (optional)
+        only to its phase arm, on top of that.
+        """
         field = np.array(field_in, dtype=complex)
         tap_power = np.zeros(len(self.layout.taps))
         self._tap(-1, field, tap_power)
         t_all = np.sqrt(1.0 - kappa)
         c_all = 1j * np.sqrt(kappa)
         rot_all = np.exp(1j * phase) * gate_loss_amplitude
+        if arm_amplitude is not None:
+            rot_all = rot_all * arm_amplitude
         for index, (gates, top) in enumerate(self._cols):
             a = field[top]
             b = field[top + 1]
@@ -117,6 +140,18 @@ class Lattice:
             field[top + 1] = (c * a + t * b) * loss
             self._tap(index, field, tap_power)
         return field, tap_power
+
+    def transfer_matrix(
+        self,
+        kappa: FloatArray,
+        phase: FloatArray,
+        gate_loss_amplitude: FloatArray,
+        arm_amplitude: FloatArray | None = None,
+    ) -> ComplexArray:
+        """The modes x modes field transfer matrix (column k: the output for light in mode k)."""
+        eye = np.eye(self.layout.modes, dtype=complex)
+        columns = [self.propagate(eye[k], kappa, phase, gate_loss_amplitude, arm_amplitude)[0] for k in range(len(eye))]
+        return np.column_stack(columns)
 
     def _tap(self, after: int, field: ComplexArray, tap_power: FloatArray) -> None:
         taps = self._taps_by_column.get(after)
