@@ -157,7 +157,7 @@ class SimChip:
     def _equilibrium(self, index: I | slice, effective: F) -> F:
         """Static displacement of the actuators ``index`` at ``effective`` volts (NaN above plate pull-in)."""
         v2 = effective * effective
-        u_e, _ = plate_roots(self.plate_a_per_v2[index] * v2)
+        u_e = plate_roots(self.plate_a_per_v2[index] * v2)[0]
         return np.asarray(self.plate_gap_m[index] * u_e + self.comb_m_per_v2[index] * v2)
 
     def _advance_charging(self, t: float) -> None:
@@ -182,9 +182,12 @@ class SimChip:
         """Displacement and velocity of the actuators ``index`` at ``t`` (charging advanced to ``t``)."""
         x_eq = self._equilibrium(index, self.terminal_volts[index] - self.shift_volts[index])
         y, v = self.ringing.state(t, index)
-        x = np.where(np.isnan(x_eq), 0.0, x_eq) + y
-        x = np.where(self.pulled_in[index], self.contact_m[index], x)
-        return np.where(self.stuck[index], self.stuck_at[index], x), v
+        x = np.fmax(x_eq, 0.0) + y  # fmax: NaN (no equilibrium) -> 0; equilibria are never negative
+        pulled, stuck = self.pulled_in[index], self.stuck[index]
+        if pulled.any() or stuck.any():
+            x = np.where(pulled, self.contact_m[index], x)
+            x = np.where(stuck, self.stuck_at[index], x)
+        return x, v
 
     def apply_volts(self, index: I, volts: F, t: float) -> None:
         """The terminals of actuators ``index`` see ``volts`` from time ``t`` on (a step)."""
@@ -198,12 +201,12 @@ class SimChip:
         x_before, v_before = self._motion(t, index)
         self.terminal_volts[index] = volts
         eff = volts - self.shift_volts[index]
+        if not (self.pulled_in[index] | self.stuck[index]).any():
+            self._step_dynamics(index, x_before, v_before, eff, t)
+            return
         self._release_check(index, eff)
         free = ~self.pulled_in[index] & ~self.stuck[index]
-        if free.all():
-            self._step_dynamics(index, x_before, v_before, eff, t)
-        else:
-            self._step_dynamics(index[free], x_before[free], v_before[free], eff[free], t)
+        self._step_dynamics(index[free], x_before[free], v_before[free], eff[free], t)
 
     def _release_check(self, index: I, eff: F) -> None:
         """Pulled-in actuators whose voltage fell low enough spring back - or stay stuck."""
@@ -245,7 +248,9 @@ class SimChip:
         there is no equilibrium at all."""
         out = self.plate_steps.verdict(self.kind_position[index], x0, v0, eff)
         beyond = np.isnan(out.equilibrium_m)
-        return out.hit | beyond, np.where(beyond, 0.0, out.equilibrium_m), out.w_rad_per_s, out.zeta
+        if beyond.any():
+            return out.hit | beyond, np.where(beyond, 0.0, out.equilibrium_m), out.w_rad_per_s, out.zeta
+        return out.hit, out.equilibrium_m, out.w_rad_per_s, out.zeta
 
     def _comb_step(self, index: I, x0: F, v0: F, eff: F) -> tuple[NDArray[np.bool_], F, F, F]:
         """Combs: linear (the force does not depend on x), so the snap test is on the swing's bound."""

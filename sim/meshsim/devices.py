@@ -89,19 +89,20 @@ class CombArrays:
         return optics.phase_from_index(dn - dn0, d.length_m, wavelength_m)
 
 
-def plate_roots(a: F) -> tuple[F, F]:
-    """The stable and the unstable equilibrium u = x / gap of parallel plates where
-    u (1 - u)^2 = a, a = (4/27) (V / V_PI)^2: the smallest and the middle root of the cubic, by the
-    trigonometric method (see :func:`meshsim.physics.electrostatics.equilibrium_fraction`, whose
-    stable root this is). NaN both where there is none (a > 4/27, above pull-in).
+# Angles of the smallest and the middle root in the trigonometric solution of the cubic.
+_ROOT_SHIFTS = np.array([[4.0 * np.pi / 3.0], [2.0 * np.pi / 3.0]])
 
-    Written without clipping contexts or masks: it runs on every write and every monitor read.
+
+def plate_roots(a: F) -> F:
+    """The stable and the unstable equilibrium u = x / gap of parallel plates, as two rows: the
+    smallest and the middle root of u (1 - u)^2 = a, a = (4/27) (V / V_PI)^2, by the trigonometric
+    method (see :func:`meshsim.physics.electrostatics.equilibrium_fraction`, whose stable root
+    this is); NaN where there is none (a > 4/27, above pull-in).
+
+    Written with as few array operations as possible: it runs on every write and monitor read.
     """
     third = np.arccos(np.minimum(13.5 * a - 1.0, 1.0)) / 3.0  # (27 a - 2) / 2 = 13.5 a - 1 >= -1
-    beyond = np.where(a > 4.0 / 27.0, np.nan, 2.0 / 3.0)
-    return beyond + (2.0 / 3.0) * np.cos(third - 4.0 * np.pi / 3.0), beyond + (2.0 / 3.0) * np.cos(
-        third - 2.0 * np.pi / 3.0
-    )
+    return np.asarray(np.where(a > 4.0 / 27.0, np.nan, 2.0 / 3.0) + (2.0 / 3.0) * np.cos(third - _ROOT_SHIFTS))
 
 
 def _mass_damping(spring: F, resonance_hz: float, q: float) -> tuple[F, F]:

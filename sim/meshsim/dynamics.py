@@ -39,6 +39,9 @@ B = NDArray[np.bool_]
 C = NDArray[np.complex128]
 ForceFn = Callable[[F, F], F]
 
+# A transient counts as over after this many time constants of its slower decay (e^-50 = 2e-22).
+QUIET_E_FOLDINGS = 50.0
+
 
 def first_peak(
     x0: F,
@@ -108,43 +111,44 @@ class Ringing:
 
     def __init__(self, n: int) -> None:
         self.t0 = np.zeros(n)
-        self.y0 = np.zeros(n)
-        self.v0 = np.zeros(n)
-        self.w = np.ones(n)
-        self.zeta = np.ones(n)
-        self._s1, self._s2, self._c1, self._c2, self._slowest = _modes(self.y0, self.v0, self.w, self.zeta)
+        self.quiet_from = np.zeros(n)
+        zero, one = np.zeros(n), np.ones(n)
+        self._roots, self._coefficients = _modes(zero, zero, one, one)
 
     def restart(self, index: NDArray[np.int64], t: float, y0: F, v0: F, w: F, zeta: F) -> None:
         """Begin a new transient for ``index`` at time ``t`` with deviation ``y0`` and velocity ``v0``."""
         self.t0[index] = t
-        self.y0[index] = y0
-        self.v0[index] = v0
-        self.w[index] = w
-        self.zeta[index] = zeta
-        modes = _modes(np.asarray(y0, dtype=float), np.asarray(v0, dtype=float), w, zeta)
-        self._s1[index], self._s2[index], self._c1[index], self._c2[index], self._slowest[index] = modes
+        roots, self._coefficients[:, index] = _modes(y0, v0, w, zeta)
+        self._roots[:, index] = roots
+        # s1 is the slower root (the same real part as s2 when underdamped); see state.
+        self.quiet_from[index] = t - QUIET_E_FOLDINGS / roots[0].real
 
     def state(self, t: float, index: NDArray[np.int64] | slice = slice(None)) -> tuple[F, F]:
-        """Deviation from equilibrium and velocity at time ``t``."""
+        """Deviation from equilibrium and velocity at time ``t``; exactly zero once the slower of
+        the two decays has run ``QUIET_E_FOLDINGS`` time constants, which spares the arithmetic for
+        the usual case of a write long after the last one settled."""
+        quiet = t >= self.quiet_from[index]
+        if quiet.all():
+            zero = np.zeros(quiet.shape)
+            return zero, zero
         tau = np.maximum(t - self.t0[index], 0.0)
-        settled = self._slowest[index] * tau < -50.0
-        tau = np.where(settled, 0.0, tau)
-        s1, s2 = self._s1[index], self._s2[index]
-        a1 = self._c1[index] * np.exp(s1 * tau)
-        a2 = self._c2[index] * np.exp(s2 * tau)
-        y = np.where(settled, 0.0, (a1 + a2).real)
-        dy = np.where(settled, 0.0, (a1 * s1 + a2 * s2).real)
-        return np.asarray(y, dtype=float), np.asarray(dy, dtype=float)
+        s = self._roots[:, index]
+        a = self._coefficients[:, index] * np.exp(s * tau)
+        a1, a2 = a
+        s1, s2 = s
+        return np.where(quiet, 0.0, (a1 + a2).real), np.where(quiet, 0.0, (a1 * s1 + a2 * s2).real)
 
 
-def _modes(y0: F, v0: F, w: F, zeta: F) -> tuple[C, C, C, C, F]:
-    """Roots s1, s2, coefficients c1, c2 of y = c1 e^{s1 t} + c2 e^{s2 t}, and the slower decay rate."""
+_PLUS_MINUS = np.array([[1.0], [-1.0]])
+
+
+def _modes(y0: F, v0: F, w: F, zeta: F) -> tuple[C, C]:
+    """Roots (s1, s2) and coefficients (c1, c2) of y = c1 e^{s1 t} + c2 e^{s2 t}, as two rows each:
+    s = -zeta w +- r, r = w sqrt(zeta^2 - 1); c1 = (v0 - s2 y0) / (2 r), c2 = -(v0 - s1 y0) / (2 r)."""
     z = np.where(np.abs(zeta - 1.0) < 1e-7, 1.0 + 1e-7, zeta)  # critically damped: nudge off the double root
     root = w * np.sqrt((z * z - 1.0).astype(complex))
-    s1, s2 = -z * w + root, -z * w - root
-    c1 = (v0 - s2 * y0) / (s1 - s2)
-    c2 = (s1 * y0 - v0) / (s1 - s2)
-    return s1, s2, c1, c2, np.maximum(s1.real, s2.real)
+    roots = _PLUS_MINUS * root - z * w
+    return roots, _PLUS_MINUS * (v0 - roots[::-1] * y0) / (2.0 * root)
 
 
 # Energy margin of the fast path: a step is decided without integration only while its energy lies
@@ -176,7 +180,8 @@ class _Well(NamedTuple):
     w: F
     zeta: F
     headroom: F
-    swing_u: F
+    u0: F
+    nu: F
 
 
 class PlateSteps:
@@ -209,7 +214,7 @@ class PlateSteps:
         # One row per constant, so that one fancy index gathers them all for a set of actuators.
         self._si = np.array([spring, mass, damping, force_scale, gap, contact])
         zeta0 = damping / (2.0 * np.sqrt(spring * mass))
-        self._unit = np.array([gap, 1.0 / gap, 1.0 / pull_in**2, w0, 1.0 / (w0 * gap), zeta0, contact / gap])
+        self._unit = np.array([gap, 1.0 / gap, (4.0 / 27.0) / pull_in**2, w0, 1.0 / (w0 * gap), zeta0, contact / gap])
 
     def verdict(self, index: NDArray[np.int64], x0: F, v0: F, volts: F) -> PlateStepOutcome:
         """The step to ``volts`` of actuators ``index`` that start at displacement ``x0``, speed ``v0``."""
@@ -225,8 +230,10 @@ class PlateSteps:
         """What :func:`first_peak` returns - the largest displacement until the first maximum, and
         whether contact was reached - from the linear response where that holds."""
         well = self._well(index, x0, v0, volts)
+        dy = well.u0 - (1.0 - well.one_e)
+        swing_u = np.sqrt(dy * dy + well.nu * well.nu / well.kappa)  # linear amplitude A / g
         # F'' A / k_eff = 6 k a / (g (1 - u_e)^4) A / (k kappa) = 6 ratio (A / g) / ((1 - u_e) kappa)
-        nonlinearity = 6.0 * well.ratio * well.swing_u / (well.one_e * well.kappa)
+        nonlinearity = 6.0 * well.ratio * swing_u / (well.one_e * well.kappa)
         linear = (well.headroom > 1.0 - BARRIER_FRACTION) & (nonlinearity <= LINEAR_LIMIT) & (well.zeta < 1.0)
         peak = np.array(x0, dtype=float)
         hit = np.zeros(len(index), dtype=bool)
@@ -245,32 +252,23 @@ class PlateSteps:
         return self._well(index, x0, v0, volts).headroom
 
     def _well(self, index: NDArray[np.int64], x0: F, v0: F, volts: F) -> _Well:
-        g, inv_g, inv_pull_in2, w0, inv_w0g, zeta0, contact_u = self._unit[:, index]
-        a = (4.0 / 27.0) * volts * volts * inv_pull_in2
+        g, inv_g, a_per_v2, w0, inv_w0g, zeta0, contact_u = self._unit[:, index]
+        a = volts * volts * a_per_v2
         u_e, u_u = plate_roots(a)
         one_e = 1.0 - u_e
-        ratio = a / (one_e * one_e * one_e)  # dF/dx / (2 k) at the equilibrium
+        ratio = a / one_e**3  # dF/dx / (2 k) at the equilibrium
         kappa = np.maximum(1.0 - 2.0 * ratio, 1e-6)  # k_eff / k, floored as the ringing needs w > 0
         root_kappa = np.sqrt(kappa)
         u0 = x0 * inv_g
         nu = v0 * inv_w0g  # speed in units of w0 g: kinetic energy m v^2 / 2 = k g^2 nu^2 / 2
         top = np.minimum(u_u, contact_u)
-        bottom = 0.5 * u_e * u_e - a / one_e
+        # U / (k g^2) = u^2 / 2 - a / (1 - u); at the equilibrium a / (1 - u_e) = u_e (1 - u_e).
+        bottom = u_e * (0.5 * u_e - one_e)
         height = 0.5 * top * top - a / (1.0 - top)
         start = np.minimum(u0, top)
         energy = 0.5 * (start * start + nu * nu) - a / (1.0 - start)
         headroom = np.where(u0 < top, (height - energy) / (height - bottom), -np.inf)
-        dy = u0 - u_e
-        return _Well(
-            x_e=g * u_e,
-            one_e=one_e,
-            ratio=ratio,
-            kappa=kappa,
-            w=w0 * root_kappa,
-            zeta=zeta0 / root_kappa,
-            headroom=headroom,
-            swing_u=np.sqrt(dy * dy + nu * nu / kappa),  # linear amplitude A / g
-        )
+        return _Well(g * u_e, one_e, ratio, kappa, w0 * root_kappa, zeta0 / root_kappa, headroom, u0, nu)
 
     def _integrate(self, index: NDArray[np.int64], x0: F, v0: F, volts: F) -> tuple[F, B]:
         k, m, b, c, g, contact = self._si[:, index]
