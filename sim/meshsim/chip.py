@@ -220,7 +220,7 @@ class SimChip:
                 self.stuck[i] = True
                 self.stuck_at[i] = self.contact_m[i]
             else:
-                self.ringing.restart(np.array([i]), self.shift_time, np.zeros(1), np.zeros(1), np.ones(1), np.ones(1))
+                self.ringing.stop(np.array([i]), self.shift_time)
 
     def _step_dynamics(self, index: I, x0: F, v0: F, eff: F, t: float) -> None:
         """Decide which actuators a step snaps; start the others' ringing about their new equilibrium."""

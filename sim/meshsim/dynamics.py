@@ -123,6 +123,12 @@ class Ringing:
         # s1 is the slower root (the same real part as s2 when underdamped); see state.
         self.quiet_from[index] = t - QUIET_E_FOLDINGS / roots[0].real
 
+    def stop(self, index: NDArray[np.int64], t: float) -> None:
+        """No transient for ``index`` from time ``t`` on (an actuator coming to rest at its equilibrium)."""
+        self.t0[index] = t
+        self._coefficients[:, index] = 0.0
+        self.quiet_from[index] = t
+
     def state(self, t: float, index: NDArray[np.int64] | slice = slice(None)) -> tuple[F, F]:
         """Deviation from equilibrium and velocity at time ``t``; exactly zero once the slower of
         the two decays has run ``QUIET_E_FOLDINGS`` time constants, which spares the arithmetic for
