@@ -13,10 +13,15 @@ import statistics
 import time
 from collections.abc import Callable
 from pathlib import Path
+from typing import TYPE_CHECKING
 
 import numpy as np
 
 from meshwarden.testing import free_port
+
+if TYPE_CHECKING:
+    from meshsim.clock import ManualClock
+    from meshsim.rack import SimRack
 
 REPO = Path(__file__).resolve().parents[1]
 
@@ -34,7 +39,8 @@ def bench_simulator(repeats: int) -> dict[str, float]:
     from meshsim.clock import ManualClock
     from meshsim.rack import SimRack
 
-    rack = SimRack.from_config(REPO / "config" / "demo.yaml", clock=ManualClock())
+    clock = ManualClock()
+    rack = SimRack.from_config(REPO / "config" / "demo.yaml", clock=clock)
     chip = rack.chip
     rng = np.random.default_rng(0)
     u = np.linalg.qr(rng.standard_normal((16, 16)) + 1j * rng.standard_normal((16, 16)))[0]
@@ -55,13 +61,45 @@ def bench_simulator(repeats: int) -> dict[str, float]:
     base = median_cpu_seconds(baseline, repeats)
     read = median_cpu_seconds(monitor_read, repeats)
     taps = median_cpu_seconds(chip_taps, repeats)
+    write = _median_write_cpu_seconds(rack, clock, max(repeats, 1000))
     return {
         "baseline_numpy_8_matvec_us": base * 1e6,
         "sim_monitor_read_32_inputs_us": read * 1e6,
         "sim_monitor_read_ratio": read / base,
         "sim_chip_tap_powers_us": taps * 1e6,
         "sim_chip_tap_powers_ratio": taps / base,
+        "sim_write_cpu_us": write * 1e6,
+        "sim_write_ratio": write / base,
     }
+
+
+def _median_write_cpu_seconds(rack: SimRack, clock: ManualClock, repeats: int) -> float:
+    """Median CPU time of one write command that steps one output, as the daemon's ramps do: board
+    b0 is brought to 20 V on every output in 2 V steps, then each write moves one output (in turn
+    over all 64, couplers and phase shifters alike) 2 V up or back down, a dwell of 2 ms apart.
+    The frames are built beforehand; the time is the board's: decode, execute, move the chip, reply."""
+    from meshwarden.protocol import Frame, encode_frame
+    from meshwarden.protocol import messages as m
+
+    board = rack.boards["b0"]
+    outputs = board.spec.outputs
+    volts_per_code = board.spec.full_scale_volts / (1 << board.spec.dac_bits)
+    frames = []
+    for seq, volts in enumerate(range(2, 22, 2)):
+        frames.append((m.WriteOutputs(0, (round(volts / volts_per_code),) * outputs), seq))
+    for i in range(repeats):
+        volts = 22.0 if (i // outputs) % 2 == 0 else 20.0
+        frames.append((m.WriteOutputs(i % outputs, (round(volts / volts_per_code),)), i))
+    encoded = [encode_frame(Frame(board.spec.address, seq % 256, msg.CODE, msg.pack())) for msg, seq in frames]
+    samples = []
+    for k, frame in enumerate(encoded):
+        now = clock.advance(2e-3)
+        start = time.process_time_ns()
+        replies = board.receive(frame, now)
+        samples.append((time.process_time_ns() - start) * 1e-9)
+        if len(replies) != 1:
+            raise RuntimeError(f"write {k} got {len(replies)} replies")
+    return statistics.median(samples[10:])
 
 
 def _read_monitors_frame() -> bytes:

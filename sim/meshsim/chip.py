@@ -38,16 +38,14 @@ from dataclasses import dataclass
 
 import numpy as np
 from numpy.typing import NDArray
-from scipy.constants import epsilon_0
 
 from meshsim.crosstalk import equivalent_squared_volts, neighbour_matrix
-from meshsim.devices import CombArrays, PlateArrays, comb_arrays, plate_arrays
-from meshsim.dynamics import Ringing, first_peak
+from meshsim.devices import CombArrays, PlateArrays, comb_arrays, plate_arrays, plate_roots
+from meshsim.dynamics import PlateSteps, Ringing
 from meshsim.fabrication import draw_fabrication
 from meshsim.params import SimParams
 from meshsim.physics import optics
 from meshsim.physics.drift import PhaseDrift
-from meshsim.physics.electrostatics import parallel_plate_force
 from meshsim.scenario import Scenario
 
 F = NDArray[np.float64]
@@ -134,7 +132,7 @@ class SimChip:
         self.stuck_at = np.zeros(n)
         self.ringing = Ringing(n)
         self._rng = rng
-        self._set_linear(np.arange(n), np.zeros(n))
+        self._build_mechanics(n)
 
         self.gate_ids = tuple(g[0] for g in scenario.gates)
         self.gate_coupler = np.array([self.index[g[1]] for g in scenario.gates], dtype=int)
@@ -189,30 +187,42 @@ class SimChip:
 
     # ---------------------------------------------------------------- mechanics
 
-    def _equilibrium(self, effective: F) -> F:
-        """Static displacement for every actuator at ``effective`` volts (NaN above plate pull-in)."""
-        x = np.zeros(len(self.ids))
-        x[self.couplers] = self.plate.equilibrium(effective[self.couplers])
-        x[self.phases] = self.comb.equilibrium(effective[self.phases])
-        return x
+    def _build_mechanics(self, n: int) -> None:
+        """Per-actuator constants of the mechanics, computed once: each actuator's kind and place
+        among its kind, its statics, where it rests when snapped, when it releases, and the plates'
+        step solver."""
+        c, p = self.couplers, self.phases
+        plate, comb = self.plate, self.comb
+        self.is_coupler = np.zeros(n, dtype=bool)
+        self.is_coupler[c] = True
+        self.kind_position = np.zeros(n, dtype=np.int64)
+        self.kind_position[c] = np.arange(len(c))
+        self.kind_position[p] = np.arange(len(p))
+        # Statics of both kinds in one formula (see _equilibrium): x = g u_e(a) + V^2 F(1 V) / k, with
+        # the plate terms zero for combs (g = 0, a = 0) and the comb term zero for plates.
+        self.plate_gap_m = np.zeros(n)
+        self.plate_gap_m[c] = plate.electrical_gap
+        self.plate_a_per_v2 = np.zeros(n)
+        self.plate_a_per_v2[c] = (4.0 / 27.0) / plate.pull_in_volts**2
+        self.comb_m_per_v2 = np.zeros(n)
+        self.comb_m_per_v2[p] = comb.force(np.ones(len(p))) / comb.spring
+        self.contact_m = np.zeros(n)
+        self.contact_m[c] = plate.air_gap
+        self.contact_m[p] = comb.snap_displacement
+        self.release_volts = np.zeros(n)
+        self.release_volts[c] = plate.pull_out_volts
+        self.release_volts[p] = 0.5 * comb.lateral_snap_volts
+        self.plate_steps = PlateSteps(
+            plate.mass, plate.damping, plate.spring, plate.area, plate.electrical_gap, plate.air_gap
+        )
+        self.comb_w = np.sqrt(comb.spring / comb.mass)
+        self.comb_zeta = comb.damping / (2.0 * np.sqrt(comb.spring * comb.mass))
 
-    def _set_linear(self, index: I, effective: F) -> tuple[F, F]:
-        """Linearised frequency and damping ratio about the equilibrium at ``effective`` volts."""
-        w = np.zeros(len(index))
-        zeta = np.zeros(len(index))
-        is_c = np.isin(index, self.couplers)
-        ci = np.searchsorted(self.couplers, index[is_c])
-        pi = np.searchsorted(self.phases, index[~is_c])
-        if ci.size:
-            xe = np.nan_to_num(self.plate.equilibrium(effective[is_c], ci), nan=0.0)
-            k_eff = self.plate.spring[ci] - _plate_gradient(self.plate, ci, effective[is_c], xe)
-            k_eff = np.maximum(k_eff, 1e-6 * self.plate.spring[ci])
-            w[is_c] = np.sqrt(k_eff / self.plate.mass[ci])
-            zeta[is_c] = self.plate.damping[ci] / (2.0 * np.sqrt(k_eff * self.plate.mass[ci]))
-        if pi.size:
-            w[~is_c] = np.sqrt(self.comb.spring[pi] / self.comb.mass[pi])
-            zeta[~is_c] = self.comb.damping[pi] / (2.0 * np.sqrt(self.comb.spring[pi] * self.comb.mass[pi]))
-        return w, zeta
+    def _equilibrium(self, index: I | slice, effective: F) -> F:
+        """Static displacement of the actuators ``index`` at ``effective`` volts (NaN above plate pull-in)."""
+        v2 = effective * effective
+        u_e = plate_roots(self.plate_a_per_v2[index] * v2)[0]
+        return np.asarray(self.plate_gap_m[index] * u_e + self.comb_m_per_v2[index] * v2)
 
     def _advance_charging(self, t: float) -> None:
         dt = t - self.shift_time
@@ -229,97 +239,90 @@ class SimChip:
 
     def displacement(self, t: float) -> F:
         """True displacement of every actuator at time ``t``."""
-        eff = self.effective_volts(t)
-        x = np.nan_to_num(self._equilibrium(eff), nan=0.0)
-        y, _ = self.ringing.state(t)
-        x = x + y
-        x[self.couplers] = np.where(self.pulled_in[self.couplers], self.plate.air_gap, x[self.couplers])
-        x[self.phases] = np.where(self.pulled_in[self.phases], self.comb.snap_displacement, x[self.phases])
-        return np.where(self.stuck, self.stuck_at, x)
+        self._advance_charging(t)
+        return self._motion(t, slice(None))[0]
+
+    def _motion(self, t: float, index: I | slice) -> tuple[F, F]:
+        """Displacement and velocity of the actuators ``index`` at ``t`` (charging advanced to ``t``)."""
+        x_eq = self._equilibrium(index, self.terminal_volts[index] - self.shift_volts[index])
+        y, v = self.ringing.state(t, index)
+        x = np.fmax(x_eq, 0.0) + y  # fmax: NaN (no equilibrium) -> 0; equilibria are never negative
+        pulled, stuck = self.pulled_in[index], self.stuck[index]
+        if pulled.any() or stuck.any():
+            x = np.where(pulled, self.contact_m[index], x)
+            x = np.where(stuck, self.stuck_at[index], x)
+        return x, v
 
     def apply_volts(self, index: I, volts: F, t: float) -> None:
         """The terminals of actuators ``index`` see ``volts`` from time ``t`` on (a step)."""
         index = np.asarray(index, dtype=int)
         volts = np.asarray(volts, dtype=float)
         changed = self.terminal_volts[index] != volts
-        index, volts = index[changed], volts[changed]
-        if index.size == 0:
+        if not changed.any():
             return
+        index, volts = index[changed], volts[changed]
         self._advance_charging(t)
-        x_before = self.displacement(t)[index]
-        _, v_before = self.ringing.state(t, index)
+        x_before, v_before = self._motion(t, index)
         self.terminal_volts[index] = volts
-        eff = self.terminal_volts[index] - self.shift_volts[index]
+        eff = volts - self.shift_volts[index]
+        if not (self.pulled_in[index] | self.stuck[index]).any():
+            self._step_dynamics(index, x_before, v_before, eff, t)
+            return
         self._release_check(index, eff)
         free = ~self.pulled_in[index] & ~self.stuck[index]
         self._step_dynamics(index[free], x_before[free], v_before[free], eff[free], t)
 
     def _release_check(self, index: I, eff: F) -> None:
         """Pulled-in actuators whose voltage fell low enough spring back - or stay stuck."""
-        is_c = np.isin(index, self.couplers)
-        release_v = np.zeros(len(index))
-        ci = np.searchsorted(self.couplers, index[is_c])
-        pi = np.searchsorted(self.phases, index[~is_c])
-        release_v[is_c] = self.plate.pull_out_volts[ci]
-        release_v[~is_c] = 0.5 * self.comb.lateral_snap_volts[pi]
-        releasing = self.pulled_in[index] & (np.abs(eff) < release_v)
+        pulled = self.pulled_in[index]
+        if not pulled.any():
+            return
+        releasing = pulled & (np.abs(eff) < self.release_volts[index])
         for i in index[releasing]:
             self.pulled_in[i] = False
             if self._rng.random() < self.stiction[i]:
                 self.stuck[i] = True
-                self.stuck_at[i] = self._contact_displacement(i)
+                self.stuck_at[i] = self.contact_m[i]
             else:
-                self.ringing.restart(np.array([i]), self.shift_time, np.zeros(1), np.zeros(1), np.ones(1), np.ones(1))
-
-    def _contact_displacement(self, i: int) -> float:
-        if i in self.couplers:
-            return float(self.plate.air_gap[np.searchsorted(self.couplers, i)])
-        return float(self.comb.snap_displacement[np.searchsorted(self.phases, i)])
+                self.ringing.stop(np.array([i]), self.shift_time)
 
     def _step_dynamics(self, index: I, x0: F, v0: F, eff: F, t: float) -> None:
+        """Decide which actuators a step snaps; start the others' ringing about their new equilibrium."""
         if index.size == 0:
             return
-        is_c = np.isin(index, self.couplers)
-        snapped = np.zeros(len(index), dtype=bool)
-        if is_c.any():
-            ci = np.searchsorted(self.couplers, index[is_c])
-            plate = self.plate
+        c = self.is_coupler[index]
+        if c.all():
+            snapped, x_eq, w, zeta = self._plate_step(index, x0, v0, eff)
+        elif not c.any():
+            snapped, x_eq, w, zeta = self._comb_step(index, x0, v0, eff)
+        else:
+            n = len(index)
+            snapped, x_eq, w, zeta = np.zeros(n, dtype=bool), np.zeros(n), np.zeros(n), np.zeros(n)
+            for part, step in ((c, self._plate_step), (~c, self._comb_step)):
+                snapped[part], x_eq[part], w[part], zeta[part] = step(index[part], x0[part], v0[part], eff[part])
+        if snapped.any():
+            self.pulled_in[index[snapped]] = True
+            keep = ~snapped
+            index, x0, v0, x_eq, w, zeta = index[keep], x0[keep], v0[keep], x_eq[keep], w[keep], zeta[keep]
+        if index.size:
+            self.ringing.restart(index, t, x0 - x_eq, v0, w, zeta)
 
-            def force(v: F, x: F) -> F:
-                return _plate_force(plate, ci, v, x)
+    def _plate_step(self, index: I, x0: F, v0: F, eff: F) -> tuple[NDArray[np.bool_], F, F, F]:
+        """Plates: the first overshoot may reach contact below V_PI (dynamic pull-in); above V_PI
+        there is no equilibrium at all."""
+        out = self.plate_steps.verdict(self.kind_position[index], x0, v0, eff)
+        beyond = np.isnan(out.equilibrium_m)
+        if beyond.any():
+            return out.hit | beyond, np.where(beyond, 0.0, out.equilibrium_m), out.w_rad_per_s, out.zeta
+        return out.hit, out.equilibrium_m, out.w_rad_per_s, out.zeta
 
-            static_beyond = np.abs(eff[is_c]) >= plate.pull_in_volts[ci]
-            _, hit = first_peak(
-                x0[is_c],
-                v0[is_c],
-                eff[is_c],
-                plate.mass[ci],
-                plate.damping[ci],
-                plate.spring[ci],
-                force,
-                plate.air_gap[ci],
-            )
-            snapped[is_c] = hit | static_beyond
-        if (~is_c).any():
-            pi = np.searchsorted(self.phases, index[~is_c])
-            comb = self.comb
-            x_eq = comb.force(eff[~is_c]) / comb.spring[pi]
-            w = np.sqrt(comb.spring[pi] / comb.mass[pi])
-            zeta = comb.damping[pi] / (2.0 * np.sqrt(comb.spring[pi] * comb.mass[pi]))
-            amplitude = _linear_peak(x0[~is_c] - x_eq, v0[~is_c], w, zeta)
-            snapped[~is_c] = x_eq + amplitude >= comb.snap_displacement[pi]
-        self.pulled_in[index[snapped]] = True
-        keep = ~snapped
-        if keep.any():
-            idx = index[keep]
-            x_eq = np.nan_to_num(self._equilibrium_for(idx, eff[keep]), nan=0.0)
-            w, zeta = self._set_linear(idx, eff[keep])
-            self.ringing.restart(idx, t, x0[keep] - x_eq, v0[keep], w, zeta)
-
-    def _equilibrium_for(self, index: I, eff: F) -> F:
-        full = np.zeros(len(self.ids))
-        full[index] = eff
-        return self._equilibrium(full)[index]
+    def _comb_step(self, index: I, x0: F, v0: F, eff: F) -> tuple[NDArray[np.bool_], F, F, F]:
+        """Combs: linear (the force does not depend on x), so the snap test is on the swing's bound."""
+        pos = self.kind_position[index]
+        x_eq = self.comb_m_per_v2[index] * eff * eff
+        w, zeta = self.comb_w[pos], self.comb_zeta[pos]
+        amplitude = _linear_peak(x0 - x_eq, v0, w, zeta)
+        return x_eq + amplitude >= self.contact_m[index], x_eq, w, zeta
 
     # ---------------------------------------------------------------- faults and optics
 
@@ -436,15 +439,6 @@ def _child_seeds(rng: np.random.Generator, count: int) -> list[np.random.SeedSeq
     if not isinstance(seed, np.random.SeedSequence):
         raise TypeError("the chip's generator must be seeded from a SeedSequence")
     return seed.spawn(count)
-
-
-def _plate_force(plate: PlateArrays, ci: I, volts: F, x: F) -> F:
-    return parallel_plate_force(volts, plate.area[ci], plate.electrical_gap[ci], x)
-
-
-def _plate_gradient(plate: PlateArrays, ci: I, volts: F, x: F) -> F:
-    """dF/dx of the plate force, which softens the spring near pull-in."""
-    return np.asarray(epsilon_0 * plate.area[ci] * volts**2 / (plate.electrical_gap[ci] - x) ** 3)
 
 
 def _linear_peak(y0: F, v0: F, w: F, zeta: F) -> F:

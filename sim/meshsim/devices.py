@@ -8,6 +8,7 @@ that fabrication spread is just a different number in the same slot.
 from __future__ import annotations
 
 from dataclasses import dataclass
+from functools import cached_property
 
 import numpy as np
 from numpy.typing import NDArray
@@ -32,15 +33,16 @@ class PlateArrays:
     optical_gap_rest: F
     device: CouplerDevice
 
-    @property
+    # Derived constants are computed once: the arrays above are fixed when a chip is made.
+    @cached_property
     def electrical_gap(self) -> F:
         return self.air_gap + self.dielectric_gap
 
-    @property
+    @cached_property
     def pull_in_volts(self) -> F:
         return es.pull_in_volts(self.spring, self.electrical_gap, self.area)
 
-    @property
+    @cached_property
     def pull_out_volts(self) -> F:
         return es.pull_out_volts(self.spring, self.air_gap, self.dielectric_gap, self.area)
 
@@ -73,7 +75,7 @@ class CombArrays:
     def equilibrium(self, volts: F) -> F:
         return self.force(volts) / self.spring
 
-    @property
+    @cached_property
     def snap_displacement(self) -> F:
         """Displacement at which the comb snaps sideways (its static snap voltage's equilibrium)."""
         return self.equilibrium(self.lateral_snap_volts)
@@ -85,6 +87,22 @@ class CombArrays:
         dn = optics.index_shift(gap, d.index_shift_contact, d.index_decay_m)
         dn0 = optics.index_shift(self.optical_gap_rest, d.index_shift_contact, d.index_decay_m)
         return optics.phase_from_index(dn - dn0, d.length_m, wavelength_m)
+
+
+# Angles of the smallest and the middle root in the trigonometric solution of the cubic.
+_ROOT_SHIFTS = np.array([[4.0 * np.pi / 3.0], [2.0 * np.pi / 3.0]])
+
+
+def plate_roots(a: F) -> F:
+    """The stable and the unstable equilibrium u = x / gap of parallel plates, as two rows: the
+    smallest and the middle root of u (1 - u)^2 = a, a = (4/27) (V / V_PI)^2, by the trigonometric
+    method (see :func:`meshsim.physics.electrostatics.equilibrium_fraction`, whose stable root
+    this is); NaN where there is none (a > 4/27, above pull-in).
+
+    Written with as few array operations as possible: it runs on every write and monitor read.
+    """
+    third = np.arccos(np.minimum(13.5 * a - 1.0, 1.0)) / 3.0  # (27 a - 2) / 2 = 13.5 a - 1 >= -1
+    return np.asarray(np.where(a > 4.0 / 27.0, np.nan, 2.0 / 3.0) + (2.0 / 3.0) * np.cos(third - _ROOT_SHIFTS))
 
 
 def _mass_damping(spring: F, resonance_hz: float, q: float) -> tuple[F, F]:

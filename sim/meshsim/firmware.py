@@ -252,9 +252,9 @@ class SimBoard:
             return m.Nak(0, NakReason.POWERED_ON)
         self.codes[req.first : req.first + count] = new
         self.writes_executed += 1
-        self.write_log.append((now, "write", req.first, tuple(int(c) for c in new)))
+        self.write_log.append((now, "write", req.first, tuple(new.tolist())))
         self._drive(now)
-        return m.OutputsReply(req.first, tuple(int(c) for c in self.codes[req.first : req.first + count]))
+        return m.OutputsReply(req.first, tuple(self.codes[req.first : req.first + count].tolist()))
 
     def _on_ReadOutputs(self, req: m.ReadOutputs, now: float) -> m.Message:
         if not self._range_ok(req.first, req.count, self.spec.outputs):

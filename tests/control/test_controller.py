@@ -55,6 +55,8 @@ def test_set_reaches_the_board_and_the_actuator(make_bench: Bench) -> None:
         async with open_controller(config) as ctl:
             await ctl.arm()
             result = await ctl.set({"g0.kappa": 0.5, "g0.phase": 1.0, "c1": 0.1})
+            # let the last step ring down: tau = Q / (pi f0) = 200 / (pi 500 kHz) = 0.13 ms (standard)
+            await asyncio.sleep(0.005)
             truth = inprocess.get(name).truth()
             assert truth.terminal_volts[0] == pytest.approx(result["c0"]["volts"], abs=1e-9)
             assert truth.terminal_volts[2] == pytest.approx(result["c1"]["volts"], abs=1e-9)

@@ -147,3 +147,20 @@ def test_dynamic_pull_in_rises_toward_static_as_damping_grows() -> None:
     assert thresholds[0] == pytest.approx(math.sqrt(27 / 32), abs=2e-3)
     assert all(a < b for a, b in itertools.pairwise(thresholds))
     assert thresholds[-1] <= 1.0 + 1e-3
+
+
+def test_ringing_is_exactly_zero_once_over_and_after_a_stop() -> None:
+    """After 50 time constants 2Q/w0 of its decay the ringing reads exactly zero (e^-50 = 2e-22 of
+    its start, below any displacement that matters; time constant as in the ringdown check above),
+    just before it is still the decaying closed form; a stopped actuator reads zero at once."""
+    w0, zeta = 2 * math.pi * 500e3, 0.01
+    tau = 1.0 / (zeta * w0)
+    ring = Ringing(2)
+    ring.restart(np.array([0, 1]), 0.0, np.array([1.0, 1.0]), np.array([0.0, 0.0]), np.full(2, w0), np.full(2, zeta))
+    y, _ = ring.state(49.9 * tau)
+    assert 0.0 < abs(y[0]) <= math.exp(-49.9) * 1.001
+    y, v = ring.state(50.001 * tau)
+    assert y[0] == 0.0 and v[0] == 0.0
+    ring.stop(np.array([1]), 2.0 * tau)
+    y, v = ring.state(2.0 * tau, np.array([0, 1]))
+    assert y[1] == 0.0 and v[1] == 0.0 and y[0] != 0.0
