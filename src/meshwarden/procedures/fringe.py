@@ -71,6 +71,16 @@ class FringeFit:
     points: int
     max_volts: float
     cycles: float
+    covariance: tuple[tuple[float, ...], ...]
+
+    def phase_se(self, volts: Any) -> FloatArray:
+        """Standard error of the fringe argument phi0 + c w(V^2), from the full covariance."""
+        u = np.asarray(volts, dtype=float) ** 2
+        grad = [np.zeros_like(u), np.zeros_like(u), warp(u, self.growth_per_v2), np.ones_like(u)]
+        if len(self.covariance) == 5:
+            grad.append(self.rate_rad_per_v2 * _warp_dgrowth(u, self.growth_per_v2))
+        g = np.stack(grad, axis=-1)
+        return np.asarray(np.sqrt(np.einsum("...i,ij,...j->...", g, np.array(self.covariance), g)))
 
     def actuated_phase(self, volts: Any) -> FloatArray:
         """Phase added by ``volts`` relative to 0 V, in rad: c w(V^2)."""
@@ -150,9 +160,11 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
     jac = jacobian(x)
     try:
         cov = np.linalg.inv(jac.T @ jac) * ssr / max(n - k, 1)
-        se = np.sqrt(np.abs(np.diag(cov)))
     except np.linalg.LinAlgError:
-        se = np.full(k, np.inf)
+        cov = np.full((k, k), np.inf)
+    to_volts = np.array([1.0, 1.0, 1.0 / u_max, 1.0, 1.0 / u_max])[:k]
+    cov = cov * np.outer(to_volts, to_volts)
+    se = np.sqrt(np.abs(np.diag(cov)))
     growth = float(x[4]) if with_growth else 0.0
     return FringeFit(
         offset=float(x[0]),
@@ -162,13 +174,14 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
         growth_per_v2=growth / u_max,
         offset_se=float(se[0]),
         amplitude_se=float(se[1]),
-        rate_se=float(se[2]) / u_max,
+        rate_se=float(se[2]),
         phase0_se=float(se[3]),
-        growth_se=float(se[4]) / u_max if with_growth else 0.0,
+        growth_se=float(se[4]) if with_growth else 0.0,
         residual_rms=math.sqrt(ssr / n),
         points=n,
         max_volts=float(v.max()),
         cycles=float(x[2] * warp(np.array([1.0]), growth)[0]) / TWO_PI,
+        covariance=tuple(tuple(float(c) for c in row) for row in cov),
     )
 
 
