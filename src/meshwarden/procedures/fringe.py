@@ -33,7 +33,7 @@ import numpy as np
 from scipy.optimize import least_squares
 
 from meshwarden.procedures.inputs import FloatArray, ProcedureInputError, float_vector, same_length
-from meshwarden.procedures.quality import GateResult, gate
+from meshwarden.procedures.quality import GateResult, gate, plain_dict
 
 TWO_PI = 2.0 * math.pi
 _GROWTH_GRID = (0.0, 0.5, 1.0, 1.5, 2.0, 3.0, 4.0, 5.0, 6.0, 7.0)  # b u_max: exp(7) ~ 1100x slope
@@ -93,7 +93,7 @@ class FringeFit:
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""
-        return asdict(self)
+        return plain_dict(asdict(self))
 
 
 def _linear_seed(s: FloatArray, power: FloatArray, growth: float) -> tuple[float, FloatArray]:
@@ -234,7 +234,7 @@ class FourStep:
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""
-        return asdict(self)
+        return plain_dict(asdict(self))
 
 
 def four_step_phase(samples: Sequence[float]) -> FourStep:

@@ -13,11 +13,13 @@ adds nothing. What is left is ``unobservable``, each with the reason found on th
   gates), and each output's light must reach taps on its own, never mixed with other light (its
   power is the sum over the listed taps). kappa = cross / (bar + cross).
 * Phase shifter of gate g (mode k after g's coupler): the next gate on mode k (the combiner h)
-  must be calibrated and is set to 1/2, g is set to a split, both inputs of h must be lit, and a
-  tap must see h's output light alone. The fringe's argument is then the target's phase plus the
-  phases in ``arm_phases`` minus those in ``reference_phases`` (shifters on the two paths between
-  their common split and h) plus a constant of the combiner: phases are observable only as such
-  differences. A phase on a mode that no later gate takes changes no power: unobservable.
+  must be calibrated and is set to 1/2, g is set to a split, both inputs of h must be lit, and
+  taps must see one output of h alone (``fringe_port``: "top" = h's top mode, else "bottom"; the
+  fringe is the sum over ``fringe_taps``; the two ports' fringes are opposite in sign). The
+  fringe's argument is then the target's phase plus the phases in ``arm_phases`` minus those in
+  ``reference_phases`` (shifters on the two paths between their common split and h) plus a
+  constant of the split and the combiner: phases are observable only as such differences. A
+  phase on a mode that no later gate takes changes no power: unobservable.
 
 ``settings`` lists the calibrated gates whose setting matters for a step (every gate the light
 touches); every other actuator is held where it is (uncalibrated ones at 0 V).
@@ -31,6 +33,7 @@ from typing import Any
 
 from meshwarden.procedures.inputs import ProcedureInputError
 from meshwarden.procedures.lattice import Flow, Labels, LatticeTopology, propagate
+from meshwarden.procedures.quality import plain_dict
 
 REST_COUPLINGS = ("bar", "unknown")
 
@@ -47,12 +50,13 @@ class CalibrationStep:
     cross_taps: tuple[str, ...] = ()
     combiner: str = ""
     fringe_taps: tuple[str, ...] = ()
+    fringe_port: str = ""
     arm_phases: tuple[str, ...] = ()
     reference_phases: tuple[str, ...] = ()
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""
-        return asdict(self)
+        return plain_dict(asdict(self))
 
 
 @dataclass(frozen=True)
@@ -65,7 +69,7 @@ class Unobservable:
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""
-        return asdict(self)
+        return plain_dict(asdict(self))
 
 
 @dataclass(frozen=True)
@@ -178,15 +182,19 @@ class _Planner:
         before = lighting.labels
         if arm is None or ref is None or mode not in before or partner not in before:
             return f"light cannot reach both inputs of the combiner {combiner} (modes {mode}, {partner})"
-        start = {m: frozenset({"other"}) for m in before if m not in (mode, partner)}
-        start[mode] = start[partner] = frozenset({"fringe"})
-        flow = propagate(self.t, start, h_col - 1, self.t.columns - 1, self.setting_of(chosen), frozenset({"fringe"}))
-        if "fringe" not in flow.captured:
-            return f"no tap sees the output of the combiner {combiner} unmixed with other light"
+        after_h = self.light(chosen, h_col).labels
+        start = {m: frozenset({"other"}) for m in after_h if m not in (h_top, h_top + 1)}
+        start[h_top], start[h_top + 1] = frozenset({"top"}), frozenset({"bottom"})
+        flow = propagate(
+            self.t, start, h_col, self.t.columns - 1, self.setting_of(chosen), frozenset({"top", "bottom"})
+        )
+        port = next((p for p in ("top", "bottom") if p in flow.captured), None)
+        if port is None:
+            return f"no tap sees an output of the combiner {combiner} unmixed with other light"
         arm_phases, ref_phases = _branch_phases(self.t, arm, ref)
         return CalibrationStep(
-            gate, "phase", self.used(chosen, flow.touched | lighting.touched, gate), combiner=combiner,
-            fringe_taps=tuple(flow.captured["fringe"]),
+            gate, "phase", self.used(chosen, flow.touched | lighting.touched, ""), combiner=combiner,
+            fringe_taps=tuple(flow.captured[port]), fringe_port=port,
             arm_phases=tuple(g for g in arm_phases if g != gate), reference_phases=ref_phases,
         )  # fmt: skip
 

@@ -22,3 +22,19 @@ class GateResult:
 def gate(checks: dict[str, float], failures: list[str]) -> GateResult:
     """A :class:`GateResult` from the numbers looked at and the failure messages collected."""
     return GateResult(ok=not failures, reason="; ".join(failures), checks=dict(checks))
+
+
+def plain(value: Any) -> Any:
+    """``value`` with tuples as lists and numpy numbers as Python numbers, recursively (for JSON)."""
+    if isinstance(value, dict):
+        return {str(k): plain(v) for k, v in value.items()}
+    if isinstance(value, list | tuple):
+        return [plain(v) for v in value]
+    if hasattr(value, "item") and callable(value.item):
+        return value.item()
+    return value
+
+
+def plain_dict(value: dict[str, Any]) -> dict[str, Any]:
+    """:func:`plain` of a dict, typed as one."""
+    return {str(k): plain(v) for k, v in value.items()}
