@@ -10,8 +10,8 @@ import pytest
 from meshwarden.calibration import table_from_dict
 from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures import ProcedureInputError
-from meshwarden.procedures.fringe import fit_fringe
-from meshwarden.procedures.phase_table import build_phase_table
+from meshwarden.procedures.fringe import fit_fringe, four_step_phase
+from meshwarden.procedures.phase_table import build_phase_table, phase_step_volts
 
 STATIC_RAD = 4.1  # the arm's unknown fabrication phase, as the mesh sees it at 0 V
 REF_RAD = 0.6  # phase of the light the arm meets at the combiner
@@ -96,3 +96,17 @@ def test_bad_arguments_are_refused(kwargs: dict[str, float], message: str) -> No
     fit = fit_fringe(volts, _combiner_power(volts, 0.0, 6), with_growth=True)
     with pytest.raises(ProcedureInputError, match=message):
         build_phase_table(fit, **kwargs)  # type: ignore[arg-type]
+
+
+def test_phase_step_volts_give_a_true_four_step_reading() -> None:
+    """Volts a quarter fringe apart from 20 V, read at the combiner and put through atan2(I3 - I1, I0 - I2), give the
+    true fringe argument arm(20 V) - REF - pi/2 within 0.01 rad (Creath 1988 for the four-step formula)."""
+    volts = np.linspace(0.0, 44.0, 40)
+    fit = fit_fringe(volts, _combiner_power(volts, 0.001, 7), with_growth=True)
+    steps = phase_step_volts(fit, 20.0)
+    assert steps[0] == pytest.approx(20.0)
+    reading = four_step_phase(list(_combiner_power(steps, 0.0, 0)))
+    truth = float(_arm_phase(np.array([20.0]))[0]) - REF_RAD - math.pi / 2
+    assert abs((reading.phase_rad - truth + math.pi) % (2 * math.pi) - math.pi) < 0.01
+    with pytest.raises(ProcedureInputError, match="start_volts"):
+        phase_step_volts(fit, -1.0)

@@ -73,18 +73,28 @@ class PhaseTable:
         }
 
 
-def _volts_for_phase(fit: FringeFit, actuated: np.ndarray) -> np.ndarray:
-    """Inverse of c w(V^2): volts at which the actuated phase is ``actuated``."""
+def volts_for_actuated_phase(fit: FringeFit, actuated_rad: Any) -> np.ndarray:
+    """Inverse of the fitted c w(V^2): the volts at which the actuator adds ``actuated_rad`` (>= 0)."""
+    actuated = np.asarray(actuated_rad, dtype=float)
+    if fit.rate_rad_per_v2 <= 0 or not np.all(np.isfinite(actuated)) or np.any(actuated < 0):
+        raise ProcedureInputError("actuated phases must be finite and >= 0, and the fit's rate > 0")
     w = actuated / fit.rate_rad_per_v2
     b = fit.growth_per_v2
     u = w if b < 1e-12 else np.log1p(b * w) / b
     return np.asarray(np.sqrt(np.maximum(u, 0.0)))
 
 
+def phase_step_volts(fit: FringeFit, start_volts: float, steps: int = 4) -> np.ndarray:
+    """Volts giving ``steps`` phases a quarter fringe apart from ``start_volts``, for four-step phase stepping
+    (:func:`.fringe.four_step_phase`): a check of a table, or a re-measurement of the offset, in four frames."""
+    start = float(fit.actuated_phase(non_negative("start_volts", start_volts)))
+    return volts_for_actuated_phase(fit, start + np.arange(steps) * math.pi / 2)
+
+
 def _table_volts(fit: FringeFit, top: float, span: float, start_points: int, tol: float) -> np.ndarray:
     """Volts of the table: even in phase and in volts, then refined where PCHIP strays from the fit."""
     volts = np.unique(
-        np.r_[_volts_for_phase(fit, np.linspace(0.0, span, start_points)), np.linspace(0, top, start_points)]
+        np.r_[volts_for_actuated_phase(fit, np.linspace(0.0, span, start_points)), np.linspace(0, top, start_points)]
     )
     volts = volts[volts <= top]
     dense = np.linspace(0.0, top, 4001)
