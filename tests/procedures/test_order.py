@@ -173,3 +173,13 @@ def test_bad_order_arguments_are_refused() -> None:
         calibration_order(_mesh(4, 2, (1,)), rest_coupling="guess")
     with pytest.raises(ProcedureInputError, match="unknown gate 'zz'"):
         calibration_order(_mesh(4, 2, (1,)), already_calibrated=["zz"])
+
+
+def test_a_phase_needs_its_own_coupler_calibrated() -> None:
+    """With light at both inputs of a gate its coupler cannot be measured, and then neither can its phase,
+    even with the combiner given as calibrated."""
+    topology = LatticeTopology(2, {"a": (0, 0), "b": (1, 0)}, {"m0": (1, 0), "m1": (1, 1)}, (0, 1))
+    order = calibration_order(topology, already_calibrated=["b"])
+    reasons = {(u.gate, u.part): u.reason for u in order.unobservable}
+    assert "light reaches both inputs of a" in reasons["a", "coupler"]
+    assert "its own coupler is not calibrated" in reasons["a", "phase"]

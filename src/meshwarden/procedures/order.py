@@ -171,6 +171,8 @@ class _Planner:
             return f"no gate after column {column} takes mode {mode}: the phase of {gate} changes no power at any tap"
         combiner = self.t.gate_at(later[0], mode)
         assert combiner is not None
+        if gate not in self.calibrated:
+            return f"its own coupler is not calibrated, so {gate} cannot be set to split the light"
         if combiner not in self.calibrated:
             return f"its combiner {combiner} is not calibrated"
         h_col, h_top = self.t.gates[combiner]
