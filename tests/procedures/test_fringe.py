@@ -131,3 +131,16 @@ def test_bad_sweeps_are_refused(volts: object, power: object, message: str) -> N
     """Malformed sweeps raise ProcedureInputError naming the problem."""
     with pytest.raises(ProcedureInputError, match=message):
         fit_fringe(volts, power)
+
+
+def test_fit_does_not_depend_on_the_power_unit() -> None:
+    """The same half-fringe sweep in W (1e-3 scale) and in mW gives the same c and phi0, and A, B, their errors and
+    the residual scale with the unit."""
+    volts, power = _sweep(12, 2e-3, 0.3, 0.01, points=20)
+    in_mw, in_w = fit_fringe(volts, power), fit_fringe(volts, power * 1e-3)
+    assert in_w.rate_rad_per_v2 == pytest.approx(in_mw.rate_rad_per_v2, rel=1e-6)
+    assert in_w.phase0_rad == pytest.approx(in_mw.phase0_rad, abs=1e-6)
+    assert in_w.amplitude == pytest.approx(in_mw.amplitude * 1e-3, rel=1e-6)
+    assert in_w.amplitude_se == pytest.approx(in_mw.amplitude_se * 1e-3, rel=1e-4)
+    assert in_w.residual_rms == pytest.approx(in_mw.residual_rms * 1e-3, rel=1e-6)
+    assert abs(in_mw.rate_rad_per_v2 - 2e-3) < 3 * in_mw.rate_se

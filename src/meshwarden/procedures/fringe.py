@@ -128,6 +128,9 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
     if u_max <= 0 or np.unique(v).size < 4:
         raise ProcedureInputError("volts must hold at least four distinct values above 0 V")
     s = v * v / u_max
+    # Work in units of the data's size: the solver's tolerances are absolute, and powers in W are ~1e-3.
+    unit = float(np.max(np.abs(p))) or 1.0
+    p = p / unit
     grid = _GROWTH_GRID if with_growth else (0.0,)
     seeds = [(*_linear_seed(s, p, g), g) for g in grid]
     _, start, growth0 = min(seeds, key=lambda item: item[0])
@@ -162,13 +165,13 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
         cov = np.linalg.inv(jac.T @ jac) * ssr / max(n - k, 1)
     except np.linalg.LinAlgError:
         cov = np.full((k, k), np.inf)
-    to_volts = np.array([1.0, 1.0, 1.0 / u_max, 1.0, 1.0 / u_max])[:k]
-    cov = cov * np.outer(to_volts, to_volts)
+    to_data_units = np.array([unit, unit, 1.0 / u_max, 1.0, 1.0 / u_max])[:k]
+    cov = cov * np.outer(to_data_units, to_data_units)
     se = np.sqrt(np.abs(np.diag(cov)))
     growth = float(x[4]) if with_growth else 0.0
     return FringeFit(
-        offset=float(x[0]),
-        amplitude=float(x[1]),
+        offset=float(x[0]) * unit,
+        amplitude=float(x[1]) * unit,
         rate_rad_per_v2=float(x[2]) / u_max,
         phase0_rad=float(x[3]) % TWO_PI,
         growth_per_v2=growth / u_max,
@@ -177,7 +180,7 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
         rate_se=float(se[2]),
         phase0_se=float(se[3]),
         growth_se=float(se[4]) if with_growth else 0.0,
-        residual_rms=math.sqrt(ssr / n),
+        residual_rms=math.sqrt(ssr / n) * unit,
         points=n,
         max_volts=float(v.max()),
         cycles=float(x[2] * warp(np.array([1.0]), growth)[0]) / TWO_PI,
