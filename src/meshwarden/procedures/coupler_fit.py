@@ -1,0 +1,172 @@
+"""A tunable coupler's calibration from bar and cross powers at swept volts.
+
+kappa = P_cross / (P_bar + P_cross): the cross port's share of the light leaving the coupler, with
+the "bar" port the same waveguide as the lit input (the convention of the simulator's 2x2 coupler
+matrix). The ratio cancels the unknown input power and any loss common to both ports.
+
+The measured ratios are noisy, and a calibration table must rise strictly with volts. The pool
+adjacent violators algorithm (Ayer et al., Ann. Math. Stat. 26:641, 1955; Barlow et al.,
+*Statistical Inference under Order Restrictions*, Wiley 1972) gives the least-squares
+non-decreasing fit; each pooled block becomes one table point at the block's mean volts (the first
+block at the sweep's first volts, so a sweep from 0 V gives a table from 0 V, and the flat start
+of a coupler's curve sits at its lowest voltage as the mapping prefers). Only the rising part of a
+sweep can be a table: past full transfer kappa falls again, so the sweep is cut at its largest
+measured value.
+"""
+
+from __future__ import annotations
+
+import math
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from meshwarden.calibration import CalibrationTable
+from meshwarden.procedures.inputs import (
+    FloatArray,
+    ProcedureInputError,
+    float_vector,
+    same_length,
+    strictly_increasing,
+)
+from meshwarden.procedures.quality import GateResult, gate
+
+
+def coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
+    """kappa = P_cross / (P_bar + P_cross) point by point; both powers must be >= 0 with a positive sum."""
+    bar = float_vector("bar_power", bar_power)
+    cross = float_vector("cross_power", cross_power)
+    same_length("bar_power", bar, "cross_power", cross)
+    if np.any(bar < 0) or np.any(cross < 0):
+        raise ProcedureInputError("bar and cross powers must be >= 0 (subtract the dark level first, clipped at 0)")
+    total = bar + cross
+    if np.any(total <= 0):
+        raise ProcedureInputError(f"no light at point {int(np.flatnonzero(total <= 0)[0])}: bar + cross is 0")
+    return np.asarray(cross / total)
+
+
+def isotonic_increasing(values: Any, weights: Any = None) -> FloatArray:
+    """Least-squares non-decreasing fit of ``values`` (pool adjacent violators), optionally weighted."""
+    y = float_vector("values", values)
+    w = np.ones_like(y) if weights is None else float_vector("weights", weights)
+    same_length("values", y, "weights", w)
+    if np.any(w <= 0):
+        raise ProcedureInputError("weights must be > 0")
+    means: list[float] = []
+    sizes: list[float] = []
+    counts: list[int] = []
+    for value, weight in zip(y, w, strict=True):
+        means.append(float(value))
+        sizes.append(float(weight))
+        counts.append(1)
+        while len(means) > 1 and means[-2] > means[-1]:
+            total = sizes[-2] + sizes[-1]
+            means[-2] = (means[-2] * sizes[-2] + means[-1] * sizes[-1]) / total
+            sizes[-2] = total
+            counts[-2] += counts[-1]
+            del means[-1], sizes[-1], counts[-1]
+    return np.repeat(np.array(means), counts)
+
+
+@dataclass(frozen=True)
+class CouplerTableFit:
+    """A monotone kappa(V) table and the numbers that say how far to trust it."""
+
+    volts: tuple[float, ...]
+    kappa: tuple[float, ...]
+    points: int
+    points_used: int
+    residual_rms: float
+    kappa_low: float
+    kappa_high: float
+    largest_drop: float
+    pooled_points: int
+
+    def to_calibration(self, actuator: str, version: str, note: str = "") -> CalibrationTable:
+        """The table as a measured coupler calibration."""
+        return CalibrationTable(actuator, "coupler", version, "measured", self.volts, self.kappa, note)
+
+    def as_dict(self) -> dict[str, Any]:
+        """JSON-able form."""
+        return {
+            "volts": list(self.volts),
+            "kappa": list(self.kappa),
+            "points": self.points,
+            "points_used": self.points_used,
+            "residual_rms": self.residual_rms,
+            "kappa_low": self.kappa_low,
+            "kappa_high": self.kappa_high,
+            "largest_drop": self.largest_drop,
+            "pooled_points": self.pooled_points,
+        }
+
+
+def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any) -> CouplerTableFit:
+    """Monotone kappa(V) from a sweep (volts ascending) of bar and cross powers.
+
+    ``residual_rms`` is the rms of measured minus fitted kappa over the points used;
+    ``largest_drop`` the largest fall of raw kappa from one point to the next (noise, or a
+    non-monotone device); ``pooled_points`` how many points the monotone fit had to merge.
+    """
+    v = float_vector("volts", volts, min_length=2)
+    kappa = coupling_ratio(bar_power, cross_power)
+    same_length("volts", v, "bar_power", kappa)
+    strictly_increasing("volts", v)
+    if v[0] < 0:
+        raise ProcedureInputError("volts must be >= 0")
+    # Past the top (full transfer) the curve falls: keep the sweep up to its highest measured kappa.
+    used = int(np.argmax(kappa)) + 1
+    fitted = isotonic_increasing(kappa[:used])
+    v_used, k_used = v[:used], kappa[:used]
+    starts = np.flatnonzero(np.r_[True, np.diff(fitted) > 0])
+    ends = np.r_[starts[1:], used]
+    table_volts = [float(v_used[0])] + [float(v_used[a:b].mean()) for a, b in zip(starts[1:], ends[1:], strict=True)]
+    table_kappa = [float(fitted[a]) for a in starts]
+    if len(table_volts) < 2:
+        raise ProcedureInputError("kappa does not rise over the sweep: no table can be made (is the coupler moving?)")
+    drops = -np.diff(kappa)
+    return CouplerTableFit(
+        volts=tuple(table_volts),
+        kappa=tuple(table_kappa),
+        points=int(v.size),
+        points_used=used,
+        residual_rms=math.sqrt(float(np.mean((k_used - fitted) ** 2))),
+        kappa_low=float(fitted[0]),
+        kappa_high=float(fitted[-1]),
+        largest_drop=float(max(drops.max(initial=0.0), 0.0)),
+        pooled_points=int(used - starts.size),
+    )
+
+
+def coupler_gate(
+    fit: CouplerTableFit,
+    *,
+    needed_low: float = 0.05,
+    needed_high: float = 0.95,
+    min_points: int = 8,
+    max_residual: float = 0.01,
+    max_drop: float = 0.05,
+) -> GateResult:
+    """Whether a coupler table may be activated: enough points, small residual, the needed kappa range
+    covered (a mesh needs kappa from near 0 to near 1), and no large fall in the raw data."""
+    checks = {
+        "points": float(fit.points),
+        "points_used": float(fit.points_used),
+        "residual_rms": fit.residual_rms,
+        "kappa_low": fit.kappa_low,
+        "kappa_high": fit.kappa_high,
+        "largest_drop": fit.largest_drop,
+    }
+    failures = []
+    if fit.points_used < min_points:
+        failures.append(f"only {fit.points_used} points on the rising curve (need {min_points})")
+    if fit.residual_rms > max_residual:
+        failures.append(f"residual {fit.residual_rms:.3g} in kappa (limit {max_residual:g})")
+    if fit.kappa_low > needed_low or fit.kappa_high < needed_high:
+        failures.append(
+            f"covers kappa {fit.kappa_low:.3g} to {fit.kappa_high:.3g} (need {needed_low:g} to {needed_high:g})"
+        )
+    if fit.largest_drop > max_drop:
+        failures.append(f"kappa falls by {fit.largest_drop:.3g} between neighbouring points (limit {max_drop:g})")
+    return gate(checks, failures)

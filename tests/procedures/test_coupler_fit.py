@@ -1,0 +1,102 @@
+"""Coupling ratio, monotone regression and the coupler table fit."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.optimize import isotonic_regression
+
+from meshwarden.calibration import table_from_dict
+from meshwarden.mapping import ActuatorMap
+from meshwarden.procedures import ProcedureInputError
+from meshwarden.procedures.coupler_fit import coupler_gate, coupling_ratio, fit_coupler_table, isotonic_increasing
+
+
+def _coupler_out(kappa: float) -> tuple[float, float]:
+    """Bar and cross powers of a lossless coupler lit at its first port.
+    Source: the standard 2x2 coupler matrix [[sqrt(1-k), i sqrt(k)], [i sqrt(k), sqrt(1-k)]]."""
+    matrix = np.array([[np.sqrt(1 - kappa), 1j * np.sqrt(kappa)], [1j * np.sqrt(kappa), np.sqrt(1 - kappa)]])
+    out = np.abs(matrix @ np.array([1.0, 0.0])) ** 2
+    return float(out[0]), float(out[1])
+
+
+def test_coupling_ratio_of_the_standard_coupler_matrix() -> None:
+    """The cross share of a coupler's output is its power coupling kappa, whatever the input power."""
+    for kappa in (0.0, 0.13, 0.5, 0.97):
+        bar, cross = _coupler_out(kappa)
+        assert coupling_ratio([3.0 * bar], [3.0 * cross])[0] == pytest.approx(kappa, abs=1e-12)
+
+
+def test_isotonic_fit_worked_example() -> None:
+    """Pooling the violators of [1, 3, 2, 4] gives [1, 2.5, 2.5, 4] (the PAVA definition; Barlow et al. 1972)."""
+    assert isotonic_increasing([1.0, 3.0, 2.0, 4.0]).tolist() == [1.0, 2.5, 2.5, 4.0]
+
+
+@pytest.mark.parametrize("seed", range(20))
+def test_isotonic_fit_matches_scipy_reference(seed: int) -> None:
+    """Weighted PAVA equals scipy.optimize.isotonic_regression (an independent implementation) on random data."""
+    rng = np.random.default_rng(seed)
+    y = np.cumsum(rng.normal(0.1, 1.0, 50))
+    w = rng.uniform(0.2, 3.0, 50)
+    ref = isotonic_regression(y, weights=w, increasing=True).x
+    assert np.allclose(isotonic_increasing(y, w), ref, atol=1e-12)
+
+
+def _sweep(seed: int, noise: float, top_volts: float = 30.0, points: int = 31):  # type: ignore[no-untyped-def]
+    """A coupler whose coupling coefficient grows exponentially as its gap closes with V^2 (stand-in shape)."""
+    rng = np.random.default_rng(seed)
+    volts = np.linspace(0.0, top_volts, points)
+    kappa = np.sin(0.06 * np.exp(3.3 * (volts / 30.0) ** 2)) ** 2
+    bar = (1 - kappa) * 1e-3 * (1 + noise * rng.standard_normal(points))
+    cross = kappa * 1e-3 + 1e-3 * noise * rng.standard_normal(points)
+    return volts, np.clip(bar, 0, None), np.clip(cross, 0, None), kappa
+
+
+def test_table_follows_a_noisy_coupler_and_is_a_valid_calibration() -> None:
+    """The table rises strictly, starts at 0 V, stays within 0.01 of the true kappa and loads as a calibration."""
+    volts, bar, cross, kappa = _sweep(1, 0.003)
+    fit = fit_coupler_table(volts, bar, cross)
+    assert fit.volts[0] == 0.0
+    assert all(b > a for a, b in zip(fit.kappa, fit.kappa[1:], strict=False))
+    truth = np.sin(0.06 * np.exp(3.3 * (np.array(fit.volts) / 30.0) ** 2)) ** 2
+    assert float(np.max(np.abs(np.array(fit.kappa) - truth))) < 0.01
+    table = table_from_dict(fit.to_calibration("c00", "v1").as_dict())
+    curve = ActuatorMap("c00", "coupler", table, 60.0)
+    assert curve.value_at(volts[20]) == pytest.approx(kappa[20], abs=0.01)
+    assert fit.residual_rms < 0.01
+    assert coupler_gate(fit, needed_low=0.01, needed_high=0.95).ok
+
+
+def test_sweep_past_full_transfer_is_cut_at_the_top() -> None:
+    """Past kappa = 1 the coupling falls again; the table keeps only the rising part."""
+    volts, bar, cross, _ = _sweep(2, 0.0, top_volts=36.0, points=37)
+    fit = fit_coupler_table(volts, bar, cross)
+    assert fit.points == 37
+    assert fit.points_used < 37
+    assert fit.kappa_high == pytest.approx(float(np.max(cross / (bar + cross))), abs=1e-12)
+
+
+def test_gate_reports_each_failed_check() -> None:
+    """A short, noisy sweep that does not reach high kappa fails on points, range and residual."""
+    volts, bar, cross, _ = _sweep(3, 0.05, top_volts=20.0, points=6)
+    result = coupler_gate(fit_coupler_table(volts, bar, cross))
+    assert not result.ok
+    assert "points" in result.reason
+    assert "covers kappa" in result.reason
+    assert result.checks["points"] == 6.0
+
+
+@pytest.mark.parametrize(
+    ("volts", "bar", "cross", "message"),
+    [
+        ([0, 1], [1, 0], [0, 0], "no light at point 1"),
+        ([0, 1], [1, -1], [0, 1], ">= 0"),
+        ([0, 2, 1], [1, 1, 1], [0, 1, 2], "increase strictly"),
+        ([0, 1, 2], [1, 1, 1], [1, 1, 1], "does not rise"),
+        ([0, 1, 2], [1, 1], [1, 1], "3 points but bar_power has 2"),
+    ],
+)
+def test_bad_sweeps_are_refused(volts: list[float], bar: list[float], cross: list[float], message: str) -> None:
+    """Malformed or lightless sweeps raise ProcedureInputError naming the problem."""
+    with pytest.raises(ProcedureInputError, match=message):
+        fit_coupler_table(volts, bar, cross)

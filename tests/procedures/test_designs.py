@@ -1,0 +1,84 @@
+"""Hadamard, S-matrix and one-at-a-time scan designs and the response estimator."""
+
+from __future__ import annotations
+
+import numpy as np
+import pytest
+from scipy.linalg import hadamard
+
+from meshwarden.procedures import ProcedureInputError
+from meshwarden.procedures.designs import (
+    estimate_responses,
+    hadamard_design,
+    one_at_a_time_design,
+    s_matrix,
+    s_matrix_design,
+)
+
+
+def test_hadamard_design_published_properties() -> None:
+    """H H^T = n I and inv(H^T H)[0,0] = 1/8 for n = 8: seven actuators in eight frames, each response with
+    variance sigma^2 / 8. Source: Harwit & Sloane, Hadamard Transform Optics (1979); scipy.linalg.hadamard."""
+    h = hadamard(8)
+    assert np.array_equal(h @ h.T, 8 * np.eye(8))
+    assert np.linalg.inv(h.T @ h)[0, 0] == pytest.approx(1 / 8)
+    design = hadamard_design(7)
+    assert design.frames == 8
+    assert np.allclose(design.variance_factors(), 1 / 8)
+
+
+def test_s_matrix_published_gain() -> None:
+    """For N = 7 the S-matrix lowers each unknown's mean-square error by (N+1)^2 / (4N) = 2.2857 against one at
+    a time. Source: Harwit & Sloane, Hadamard Transform Optics (1979)."""
+    s = s_matrix(7)
+    assert set(np.unique(s)) == {0.0, 1.0}
+    gain = 1.0 / np.mean(np.diag(np.linalg.inv(s.T @ s)))
+    assert gain == pytest.approx(2.2857, abs=1e-4)
+    # Its inverse in closed form, S^-1 = 2/(N+1) (2 S^T - J) (Harwit & Sloane 1979; from memory).
+    assert np.allclose(s @ (2 / 8 * (2 * s.T - np.ones((7, 7)))), np.eye(7))
+
+
+@pytest.mark.parametrize("make", [hadamard_design, s_matrix_design, one_at_a_time_design])
+def test_estimator_recovers_responses_of_a_linear_chip(make) -> None:  # type: ignore[no-untyped-def]
+    """Noise-free frames y = y0 + (step x pattern) R give back R and y0 exactly, for several monitors at once."""
+    rng = np.random.default_rng(4)
+    design = make(11)
+    responses = rng.normal(size=(11, 3))
+    rest = rng.normal(size=3)
+    frames = rest + 0.05 * design.matrix() @ responses
+    got, got_rest = estimate_responses(design, frames, 0.05)
+    assert np.allclose(got, responses, atol=1e-10)
+    assert np.allclose(got_rest, rest, atol=1e-12)
+
+
+@pytest.mark.parametrize("make", [hadamard_design, s_matrix_design, one_at_a_time_design])
+def test_variance_factors_match_monte_carlo(make) -> None:  # type: ignore[no-untyped-def]
+    """The stated variance of each response matches 4000 simulated noisy scans within 10 % (reference: Monte Carlo)."""
+    rng = np.random.default_rng(9)
+    design = make(7)
+    noise = rng.normal(size=(4000, design.frames))
+    estimates = np.array([estimate_responses(design, row, 1.0)[0][:, 0] for row in noise])
+    assert np.allclose(estimates.var(axis=0), design.variance_factors(), rtol=0.1)
+
+
+def test_multiplexing_takes_about_one_frame_per_actuator() -> None:
+    """60 actuators cost 64 frames with either multiplexed design (N + 1 rounded to a power of two)."""
+    assert hadamard_design(60).frames == 64
+    assert s_matrix_design(60).frames == 64
+    assert one_at_a_time_design(60).frames == 61
+
+
+@pytest.mark.parametrize(
+    ("call", "message"),
+    [
+        (lambda: s_matrix(6), "2\\^k - 1"),
+        (lambda: hadamard_design(0), "actuators"),
+        (lambda: estimate_responses(hadamard_design(3), np.zeros(5), 0.1), "takes 4 frames, got 5"),
+        (lambda: estimate_responses(hadamard_design(3), np.zeros(4), 0.0), "step"),
+        (lambda: estimate_responses(hadamard_design(3), [1, 2, np.nan, 4], 0.1), "finite"),
+    ],
+)
+def test_bad_design_inputs_are_refused(call: object, message: str) -> None:
+    """Each bad input raises ProcedureInputError with a specific message."""
+    with pytest.raises(ProcedureInputError, match=message):
+        call()  # type: ignore[operator]
