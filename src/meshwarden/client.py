@@ -15,6 +15,9 @@ daemon answers a repeat from its cache, so a command is never applied twice. A d
 not answer is reported as :class:`~meshwarden.errors.UnreachableError` after
 ``timeout_s x (retries + 1)``; the next call tries again, so the client works once the daemon
 is back. Refusals raise the matching :class:`~meshwarden.errors.MeshwardenError` subclass.
+
+A request larger than ``max_message_bytes`` (the daemon's ``service.max_message_bytes``, 1 MiB
+unless configured otherwise) is refused here, before it is sent, with code ``too_large``.
 """
 
 from __future__ import annotations
@@ -31,9 +34,10 @@ import zmq
 import zmq.auth
 
 from meshwarden import errors
-from meshwarden.errors import MeshwardenError, UnreachableError
+from meshwarden.errors import BusError, MeshwardenError, UnreachableError
 
 LONG_OPS = {"set", "disarm", "restore"}
+DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
 
 
 def _error_classes() -> dict[str, type[MeshwardenError]]:
@@ -74,12 +78,14 @@ class Client:
         client_id: str | None = None,
         key_file: str | Path | None = None,
         server_key_file: str | Path | None = None,
+        max_message_bytes: int = DEFAULT_MAX_MESSAGE_BYTES,
     ) -> None:
         self.endpoint = endpoint
         self.telemetry_endpoint = telemetry or _next_port(endpoint)
         self.timeout_s = timeout_s
         self.retries = retries
         self.ramp_timeout_s = ramp_timeout_s
+        self.max_message_bytes = max_message_bytes
         self.client_id = client_id or f"c-{uuid.uuid4().hex[:12]}"
         self._ids = itertools.count(1)
         self._context: zmq.Context[zmq.Socket[bytes]] = zmq.Context.instance()
@@ -116,9 +122,20 @@ class Client:
     def request(self, op: str, **args: Any) -> Any:
         """Send one operation and return its result; raises on refusal or when unreachable."""
         request_id = f"{next(self._ids)}-{uuid.uuid4().hex[:8]}"
-        message = json.dumps(
-            {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
-        ).encode()
+        try:
+            message = json.dumps(
+                {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
+            ).encode()
+        except ValueError:
+            raise MeshwardenError(f"{op}: NaN and infinity cannot be sent (the daemon refuses them)") from None
+        if len(message) > self.max_message_bytes:
+            raise BusError(
+                "too_large",
+                f"{op}: request of {len(message)} bytes exceeds the daemon's {self.max_message_bytes}-byte cap "
+                "(service.max_message_bytes); not sent",
+                size=len(message),
+                limit=self.max_message_bytes,
+            )
         long_op = op in LONG_OPS and args.get("wait", True)
         timeout = max(self.timeout_s, self.ramp_timeout_s) if long_op else self.timeout_s
         for _attempt in range(self.retries + 1):

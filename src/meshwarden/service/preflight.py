@@ -1,0 +1,74 @@
+"""Checks made before the daemon opens anything: before a board link, before a socket.
+
+* Listening beyond loopback needs CURVE (``config.checks.is_loopback`` decides what is local,
+  and fails closed), whatever ``--bind``/``--pub`` say.
+* A secret key file that the group or others may read is refused, as ssh refuses a private key
+  that others can read: a copied key is a stolen identity, and with it a role on the rack.
+"""
+
+from __future__ import annotations
+
+import stat
+from pathlib import Path
+
+import zmq.auth
+
+from meshwarden.config.checks import is_loopback
+from meshwarden.config.model import Config
+from meshwarden.errors import ConfigError, ConfigIssue, MeshwardenError
+
+
+def check_exposure(config: Config, bind: str, pub: str) -> None:
+    """Refuse endpoints beyond loopback unless the configuration sets up CURVE."""
+    exposed = [e for e in (bind, pub) if not is_loopback(e)]
+    if exposed and config.service.server_secret_key_file is None:
+        raise ConfigError(
+            [
+                ConfigIssue(
+                    str(config.source or "<config>"),
+                    0,
+                    "service",
+                    f"{exposed[0]} is beyond loopback (only tcp on 127.0.0.0/8, ::1 or localhost, and ipc:// "
+                    "paths are local): configure server_secret_key_file and service.clients (CURVE) first",
+                )
+            ]
+        )
+
+
+def check_secret_key_file(path: Path) -> None:
+    """Refuse a secret key file that is missing, not a regular file, or readable by group/other."""
+    try:
+        info = path.stat()
+    except OSError as exc:
+        raise MeshwardenError(f"cannot read the secret key file {path}: {exc.strerror}", path=str(path)) from None
+    if not stat.S_ISREG(info.st_mode):
+        raise MeshwardenError(f"the secret key file {path} is not a regular file", path=str(path))
+    if info.st_mode & (stat.S_IRWXG | stat.S_IRWXO):
+        raise MeshwardenError(
+            f"the secret key file {path} is open to other users (mode {stat.S_IMODE(info.st_mode):04o}); "
+            f"make it private with: chmod 600 {path}",
+            path=str(path),
+            mode=f"{stat.S_IMODE(info.st_mode):04o}",
+        )
+
+
+def load_server_key(path: Path) -> tuple[bytes, bytes]:
+    """The daemon's (public, secret) CURVE key pair, from a private file."""
+    check_secret_key_file(path)
+    try:
+        public, secret = zmq.auth.load_certificate(str(path))
+    except (OSError, ValueError) as exc:
+        raise ConfigError(
+            [ConfigIssue(str(path), 0, "service.server_secret_key_file", f"cannot read the key: {exc}")]
+        ) from None
+    if secret is None:
+        issue = ConfigIssue(str(path), 0, "service.server_secret_key_file", "this file holds no secret key")
+        raise ConfigError([issue])
+    return public, secret
+
+
+def preflight(config: Config, bind: str, pub: str) -> None:
+    """Every check that must pass before a board link or a socket is opened."""
+    check_exposure(config, bind, pub)
+    if config.service.server_secret_key_file is not None:
+        load_server_key(config.service.server_secret_key_file)
