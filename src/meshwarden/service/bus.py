@@ -213,7 +213,7 @@ class Bus:
             reply = await self._cached(request, sender)
         except MeshwardenError as exc:
             if sender.role != "none":
-                self._journal_refusal(sender, request, exc)
+                self._journal_refusal(sender, request, request_id, exc)
             reply = reply_error(request_id, exc)
         except Exception as exc:  # last line: the daemon stays up and says so
             self.log.exception("internal error while serving a request")
@@ -227,7 +227,9 @@ class Bus:
                 error=str(exc),
             )
 
-    def _journal_refusal(self, sender: Sender, request: Request | None, exc: MeshwardenError) -> None:
+    def _journal_refusal(
+        self, sender: Sender, request: Request | None, request_id: str | None, exc: MeshwardenError
+    ) -> None:
         """A request refused before dispatch (the dispatcher journals its own refusals)."""
         self.controller.journal.event(
             "command",
@@ -236,7 +238,8 @@ class Bus:
             ok=False,
             code=exc.code,
             reason=exc.message[:200],
-            **({"label": request.client, "request": request.id} if request else {}),
+            request=request_id,
+            **({"label": request.client} if request else {}),
         )
 
     async def _cached(self, request: Request, sender: Sender) -> bytes:
