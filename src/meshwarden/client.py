@@ -35,6 +35,7 @@ import zmq.auth
 
 from meshwarden import errors
 from meshwarden.errors import BusError, MeshwardenError, UnreachableError
+from meshwarden.service.keyfiles import check_secret_key_file
 
 LONG_OPS = {"set", "disarm", "restore"}
 DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
@@ -91,6 +92,7 @@ class Client:
         self._context: zmq.Context[zmq.Socket[bytes]] = zmq.Context.instance()
         self._curve: tuple[bytes, bytes, bytes] | None = None
         if key_file is not None and server_key_file is not None:
+            check_secret_key_file(Path(key_file))  # refused if others can read it, as ssh does
             public, secret = zmq.auth.load_certificate(str(key_file))
             server_public, _ = zmq.auth.load_certificate(str(server_key_file))
             if secret is None:

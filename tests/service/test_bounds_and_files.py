@@ -13,6 +13,7 @@ from pathlib import Path
 
 import pytest
 
+from meshwarden.client import Client
 from meshwarden.config import load_config
 from meshwarden.config.checks import is_loopback
 from meshwarden.errors import BusError, ConfigError, MeshwardenError
@@ -234,3 +235,12 @@ def test_finished_jobs_leave_no_tasks_behind() -> None:
 
     alive = asyncio.run(run())
     assert alive <= KEEP_FINISHED + 50, alive
+
+
+def test_the_client_refuses_a_secret_key_others_can_read(tmp_path: Path) -> None:
+    """The client library, like the daemon, will not use a secret key file others can read."""
+    write_keypair(tmp_path, "server")
+    write_keypair(tmp_path, "me")
+    os.chmod(tmp_path / "me.key_secret", 0o640)
+    with pytest.raises(MeshwardenError, match=r"is open to other users \(mode 0640\)"):
+        Client(key_file=tmp_path / "me.key_secret", server_key_file=tmp_path / "server.key")

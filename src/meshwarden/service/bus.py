@@ -18,9 +18,7 @@ from __future__ import annotations
 
 import asyncio
 import contextlib
-import os
 import time
-from pathlib import Path
 from typing import Any
 
 import zmq
@@ -34,6 +32,7 @@ from meshwarden.errors import BusError, ConfigError, ConfigIssue, MeshwardenErro
 from meshwarden.logsetup import get_logger
 from meshwarden.service.handlers import Dispatcher
 from meshwarden.service.identity import LOCAL, Sender
+from meshwarden.service.keyfiles import write_keypair
 from meshwarden.service.preflight import load_server_key, preflight
 from meshwarden.service.replies import ReplyCache, request_digest
 from meshwarden.service.schema import (
@@ -45,6 +44,8 @@ from meshwarden.service.schema import (
     reply_ok,
 )
 from meshwarden.service.telemetry import Telemetry
+
+__all__ = ["Bus", "load_allow_list", "write_keypair"]
 
 MAX_FRAMES = 3
 DROP_FACTOR = 16
@@ -283,22 +284,3 @@ class Bus:
                 except MeshwardenError as exc:
                     await self.telemetry.publish("event", {"kind": "monitor_read_failed", "error": exc.message})
             await asyncio.sleep(min(0.05, period or 0.05))
-
-
-def write_keypair(directory: Path, name: str) -> tuple[Path, Path]:
-    """Create NAME.key (public) and NAME.key_secret (secret, mode 0600 whatever the umask) in
-    ``directory``. The secret file is made private before a key is written into it, so no
-    reader can catch it open; an existing pair is never overwritten (a daemon may trust it)."""
-    directory.mkdir(parents=True, exist_ok=True)
-    secret_path = directory / f"{name}.key_secret"
-    public_path = directory / f"{name}.key"
-    for path in (public_path, secret_path):
-        if path.exists():
-            raise MeshwardenError(f"{path} already exists; remove it first or choose another name", path=str(path))
-    fd = os.open(secret_path, os.O_WRONLY | os.O_CREAT | os.O_EXCL, 0o600)
-    try:
-        os.fchmod(fd, 0o600)  # the mode given to open() is narrowed by the umask, never widened
-    finally:
-        os.close(fd)
-    public, secret = zmq.auth.create_certificates(str(directory), name)  # rewrites the file, keeps its mode
-    return Path(public), Path(secret)

@@ -8,14 +8,14 @@
 
 from __future__ import annotations
 
-import stat
 from pathlib import Path
 
 import zmq.auth
 
 from meshwarden.config.checks import is_loopback
 from meshwarden.config.model import Config
-from meshwarden.errors import ConfigError, ConfigIssue, MeshwardenError
+from meshwarden.errors import ConfigError, ConfigIssue
+from meshwarden.service.keyfiles import check_secret_key_file
 
 
 def check_exposure(config: Config, bind: str, pub: str) -> None:
@@ -32,23 +32,6 @@ def check_exposure(config: Config, bind: str, pub: str) -> None:
                     "paths are local): configure server_secret_key_file and service.clients (CURVE) first",
                 )
             ]
-        )
-
-
-def check_secret_key_file(path: Path) -> None:
-    """Refuse a secret key file that is missing, not a regular file, or readable by group/other."""
-    try:
-        info = path.stat()
-    except OSError as exc:
-        raise MeshwardenError(f"cannot read the secret key file {path}: {exc.strerror}", path=str(path)) from None
-    if not stat.S_ISREG(info.st_mode):
-        raise MeshwardenError(f"the secret key file {path} is not a regular file", path=str(path))
-    if info.st_mode & (stat.S_IRWXG | stat.S_IRWXO):
-        raise MeshwardenError(
-            f"the secret key file {path} is open to other users (mode {stat.S_IMODE(info.st_mode):04o}); "
-            f"make it private with: chmod 600 {path}",
-            path=str(path),
-            mode=f"{stat.S_IMODE(info.st_mode):04o}",
         )
 
 
