@@ -166,3 +166,32 @@ def test_the_client_refuses_an_over_size_request_before_sending() -> None:
     with mw, pytest.raises(MeshwardenError, match=f"exceeds the daemon's {CAP}-byte cap") as err:
         mw.set({f"name{i:05d}": 1.0 for i in range(1000)})
     assert err.value.code == "too_large"
+
+
+def test_an_estop_is_never_refused_for_a_reused_id_or_a_long_reason(capped: Daemon, raw: zmq.Socket[bytes]) -> None:
+    """An estop whose id was used before for another request still stops the rack; a long reason
+    is journaled cut to its first 200 characters, not refused."""
+    assert ask(raw, text("stop-1", "status", "{}"))["ok"] is True
+    reply = ask(raw, text("stop-1", "estop", '{"reason": "' + "r" * 5000 + '"}'))
+    assert reply["ok"] is True and reply["result"] == {"b0": "zero"}
+    with capped.client() as mw:
+        assert mw.status()["estopped"] is True
+        stops = [e for e in mw.events(limit=1000) if e["kind"] == "estop"]
+        mw.arm()
+        mw.disarm()
+    assert stops[-1]["detail"]["reason"] == "r" * 200
+
+
+@pytest.mark.parametrize(
+    ("op", "args"),
+    [
+        ("set", '{"values": {"' + "c" * 5000 + '": 1}}'),
+        ("lease", '{"targets": ["' + "g" * 101 + '"]}'),
+        ("cancel", '{"job": "' + "j" * 500 + '"}'),
+    ],
+)
+def test_long_names_are_refused_before_they_are_echoed_or_journaled(raw: zmq.Socket[bytes], op: str, args: str) -> None:
+    """Names longer than 100 characters are refused (out_of_range), and the reply stays short."""
+    reply = ask(raw, text("long-1", op, args))
+    assert reply["ok"] is False and reply["error"]["code"] == "out_of_range"  # type: ignore[index]
+    assert len(json.dumps(reply)) < 1000

@@ -36,6 +36,7 @@ from meshwarden.service.keyfiles import write_keypair
 from meshwarden.service.preflight import load_server_key, preflight
 from meshwarden.service.replies import ReplyCache, request_digest
 from meshwarden.service.schema import (
+    MAX_REASON_CHARS,
     Request,
     best_effort_id,
     id_from_prefix,
@@ -238,7 +239,7 @@ class Bus:
             op=request.op if request else "?",
             ok=False,
             code=exc.code,
-            reason=exc.message[:200],
+            reason=exc.message[:MAX_REASON_CHARS],
             request=request_id,
             **({"label": request.client} if request else {}),
         )
@@ -246,23 +247,32 @@ class Bus:
     async def _cached(self, request: Request, sender: Sender) -> bytes:
         key = (sender.identity, request.client, request.id)
         digest = request_digest(request.op, request.args)
-        earlier = self.replies.get(key, digest)  # a reused id with another request is refused here
+        try:
+            earlier = self.replies.get(key, digest)  # a reused id with another request is refused here
+        except BusError:
+            if request.op != "estop":
+                raise
+            return await self._run(request, sender)  # an estop is never refused: run it, uncached
         if earlier is not None:
             return await asyncio.shield(earlier)  # a resend: same answer, no second run
         self.replies.add(key, digest)
         try:
-            result = await self.dispatcher.handle(request, sender)
-            reply = reply_ok(request.id, result)
-        except MeshwardenError as exc:
-            reply = reply_error(request.id, exc)
+            reply = await self._run(request, sender)
         except asyncio.CancelledError:
             self.replies.forget(key)
             raise
-        except Exception as exc:
-            self.log.exception("internal error in a handler", op=request.op)
-            reply = reply_error(request.id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
         self.replies.settle(key, reply)
         return reply
+
+    async def _run(self, request: Request, sender: Sender) -> bytes:
+        try:
+            result = await self.dispatcher.handle(request, sender)
+            return reply_ok(request.id, result)
+        except MeshwardenError as exc:
+            return reply_error(request.id, exc)
+        except Exception as exc:
+            self.log.exception("internal error in a handler", op=request.op)
+            return reply_error(request.id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
 
     async def _tick(self) -> None:
         """Heartbeat once a second; monitor samples at the configured rate."""

@@ -23,7 +23,7 @@ from meshwarden.errors import ForbiddenRefused, MeshwardenError, RefusedError, U
 from meshwarden.service.identity import Sender
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
-from meshwarden.service.schema import OPS, READ_ONLY, ROLES, Request
+from meshwarden.service.schema import MAX_REASON_CHARS, OPS, READ_ONLY, ROLES, Request
 from meshwarden.service.telemetry import Telemetry
 
 
@@ -78,7 +78,7 @@ class Dispatcher:
                 op=request.op,
                 ok=False,
                 code=exc.code,
-                reason=exc.message,
+                reason=exc.message[:MAX_REASON_CHARS],
                 label=request.client,
                 request=request.id,
             )
@@ -135,7 +135,8 @@ class Dispatcher:
 
     async def _op_estop(self, request: Request, who: str) -> Any:
         self.jobs.cancel_all()
-        return await self.controller.estop(client=who, reason=str(request.args.get("reason", "")))
+        reason = str(request.args.get("reason", ""))[:MAX_REASON_CHARS]  # a label: never a cause to refuse
+        return await self.controller.estop(client=who, reason=reason)
 
     def _actuators_of(self, targets: list[str]) -> list[str]:
         out = []

@@ -61,6 +61,9 @@ MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
 # refusing it here keeps every later conversion to float and to DAC codes finite.
 MAX_SET_MAGNITUDE = 1e6
+MAX_NAME_CHARS = 100  # an actuator, gate attribute or job id; longer names are refused
+MAX_NAMES = 10_000  # names in one set, lease or release
+MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
 READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs"}
 
@@ -172,14 +175,32 @@ def parse_request(data: bytes) -> Request:
             )
     if op == "set":
         _check_set_values(args["values"])
-    if op in ("lease", "release") and not all(isinstance(t, str) for t in args["targets"]):
-        raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
+    if op in ("lease", "release"):
+        if not all(isinstance(t, str) for t in args["targets"]):
+            raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
+        _check_names(op, "targets", args["targets"])
+    if op == "cancel":
+        _check_names(op, "job", [args["job"]])
     return Request(raw["id"], raw["client"], op, args)
+
+
+def _check_names(op: str, argument: str, names: Any) -> None:
+    """Ids and names are short: a long one is refused before it is echoed or journaled."""
+    if len(names) > MAX_NAMES:
+        raise BusError("out_of_range", f"{op}: at most {MAX_NAMES} names in '{argument}', got {len(names)}")
+    for name in names:
+        if len(name) > MAX_NAME_CHARS:
+            raise BusError(
+                "out_of_range",
+                f"{op}: a name in '{argument}' is {len(name)} characters long; at most {MAX_NAME_CHARS}",
+                argument=argument,
+            )
 
 
 def _check_set_values(values: dict[str, Any]) -> None:
     if not values:
         raise BusError("bad_request", "set: 'values' is empty")
+    _check_names("set", "values", list(values))
     for key, value in values.items():
         if (
             isinstance(value, bool)
