@@ -147,6 +147,10 @@ class Client:
                 if not self._socket.poll(int(left * 1000) + 1):
                     break
                 reply = json.loads(self._socket.recv())
+                if reply.get("id") is None and reply.get("ok") is False:
+                    # the daemon could not read an id (one request is in flight at a time):
+                    # this refusal is the answer, not something to wait out
+                    raise error_from_reply(reply.get("error") or {})
                 if reply.get("id") != request_id:
                     continue  # a late reply to an earlier, abandoned request
                 if reply.get("ok"):

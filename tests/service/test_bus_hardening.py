@@ -195,3 +195,13 @@ def test_long_names_are_refused_before_they_are_echoed_or_journaled(raw: zmq.Soc
     reply = ask(raw, text("long-1", op, args))
     assert reply["ok"] is False and reply["error"]["code"] == "out_of_range"  # type: ignore[index]
     assert len(json.dumps(reply)) < 1000
+
+
+def test_a_client_allowed_more_than_the_daemon_gets_too_large_at_once(capped: Daemon) -> None:
+    """A client configured for a larger cap than the daemon's gets `too_large` (its id read from
+    the message's start) on the first try, instead of waiting out its retries."""
+    with capped.client(timeout_s=5.0, retries=2, max_message_bytes=10 * CAP) as mw:
+        with pytest.raises(MeshwardenError, match=f"exceeds the {CAP}-byte cap") as err:
+            mw.set({f"name{i:05d}": 1.0 for i in range(1000)})
+        assert err.value.code == "too_large"
+        assert mw.status()["armed"] is False  # the client carries on

@@ -33,7 +33,7 @@ from meshwarden.logsetup import get_logger
 from meshwarden.service.handlers import Dispatcher
 from meshwarden.service.identity import LOCAL, Sender
 from meshwarden.service.keyfiles import write_keypair
-from meshwarden.service.preflight import load_server_key, preflight
+from meshwarden.service.preflight import check_exposure, load_server_key
 from meshwarden.service.replies import ReplyCache, request_digest
 from meshwarden.service.schema import (
     MAX_REASON_CHARS,
@@ -111,7 +111,7 @@ class Bus:
     # ------------------------------------------------------------------ setup
 
     def start(self) -> None:
-        preflight(self.config, self.bind_endpoint, self.pub_endpoint)
+        check_exposure(self.config, self.bind_endpoint, self.pub_endpoint)  # serve() checked before the boards too
         if self.curve:
             assert self.config.service.server_secret_key_file is not None
             public, secret = load_server_key(self.config.service.server_secret_key_file)
