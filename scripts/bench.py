@@ -357,9 +357,13 @@ def bench_reply_flood(clients: int = 48, per_client: int = 64) -> dict[str, obje
         sock.setsockopt(zmq.LINGER, 0)
         sock.connect(endpoint)
         try:
-            filler = b'{"v":1,"id":"f","client":"fill","op":"events","args":{"limit":5000}}'
-            for i in range(2000):  # 2000 refusals, each journaled with a long reason: big events
-                sock.send(filler.replace(b'"f"', f'"f{i}"'.encode()))
+            name = "x" * 100
+            for i in range(2000):  # 2000 refusals, each journaled with its reason: big events
+                sock.send(
+                    json.dumps(
+                        {"v": 1, "id": f"f{i}", "client": "fill", "op": "set", "args": {"values": {name: 1}}}
+                    ).encode()
+                )
                 sock.recv()
             probe = b'{"v":1,"id":"p","client":"probe","op":"events","args":{"limit":1000}}'
             sock.send(probe)
