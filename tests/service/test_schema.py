@@ -47,6 +47,7 @@ def req(**fields: object) -> bytes:
         (req(op="events", args={"since": -1}), "out_of_range"),
         (req(op="lease", args={"targets": ["g0"], "ttl_s": 0.09}), "out_of_range"),
         (req(op="release", args={"targets": ["g0"] * 10_001}), "out_of_range"),
+        (req(op="recover", args={"board": "b" * 101}), "out_of_range"),
         (b'{"v": 1, "id": "a", "client": "t", "op": "monitors", "args": {"integration_s": 2e400}}', "bad_json"),
     ],
 )

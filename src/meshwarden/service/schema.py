@@ -61,7 +61,7 @@ MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
 # refusing it here keeps every later conversion to float and to DAC codes finite.
 MAX_SET_MAGNITUDE = 1e6
-MAX_NAME_CHARS = 100  # an actuator, gate attribute or job id; longer names are refused
+MAX_NAME_CHARS = 100  # an actuator, gate attribute, board or job id; longer names are refused
 MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
@@ -179,8 +179,8 @@ def parse_request(data: bytes) -> Request:
         if not all(isinstance(t, str) for t in args["targets"]):
             raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
         _check_names(op, "targets", args["targets"])
-    if op == "cancel":
-        _check_names(op, "job", [args["job"]])
+    if op in ("cancel", "recover"):
+        _check_names(op, "job" if op == "cancel" else "board", [args["job" if op == "cancel" else "board"]])
     return Request(raw["id"], raw["client"], op, args)
 
 
