@@ -13,7 +13,7 @@ import statistics
 import time
 from collections.abc import Callable
 from pathlib import Path
-from typing import TYPE_CHECKING
+from typing import TYPE_CHECKING, Any
 
 import numpy as np
 
@@ -106,12 +106,12 @@ def _read_monitors_frame() -> bytes:
     from meshwarden.protocol import Frame, encode_frame
     from meshwarden.protocol import messages as m
 
-    _read_monitors_frame.seq = (getattr(_read_monitors_frame, "seq", 0) + 1) % 256  # type: ignore[attr-defined]
+    _read_monitors_frame.seq = (getattr(_read_monitors_frame, "seq", 0) + 1) % 256
     return encode_frame(
         Frame(
             1,
             _read_monitors_frame.seq,
-            m.Command.READ_MONITORS,  # type: ignore[attr-defined]
+            m.Command.READ_MONITORS,
             m.ReadMonitors(0, 32, 1000).pack(),
         )
     )
@@ -307,10 +307,178 @@ def bench_telemetry(count: int = 20000) -> dict[str, float]:
     }
 
 
+def _repo_on_path() -> None:
+    """The hardening figures reuse the test bench and the message generator under tests/."""
+    import sys
+
+    if str(REPO) not in sys.path:
+        sys.path.insert(0, str(REPO))
+
+
+def _bench_daemon(folder: Path, service: str) -> tuple[Any, str]:
+    """The one-board test bench as a daemon process with extra ``service`` settings."""
+    _repo_on_path()
+    from tests.control.bench import write_bench
+    from tests.service.daemon import start_daemon
+
+    config, _ = write_bench(folder)
+    config.write_text(config.read_text().replace("journal:", f"service:\n{service}journal:"))
+    daemon = start_daemon(config, folder)
+    return daemon, daemon.endpoint
+
+
+def bench_hostile_messages(count: int = 100_000) -> dict[str, object]:
+    """``count`` seeded hostile messages (tests/service/fuzzgen.py) against the bench daemon:
+    every reply checked; the daemon's RSS before and after; the wall time as a ratio to the same
+    number of plain ``status`` round trips."""
+    import tempfile
+
+    _repo_on_path()
+    from tests.service import fuzzgen
+
+    with tempfile.TemporaryDirectory() as tmp:
+        daemon, endpoint = _bench_daemon(Path(tmp), "  max_message_bytes: 8192\n")
+        pid = daemon.proc.pid
+        try:
+            fuzzgen.run(endpoint, 2000, seed=1, cap_bytes=8192)  # warm up: imports, journal pages
+            rss_before = _rss_kib(pid)
+            started = time.monotonic()
+            codes = fuzzgen.run(endpoint, count, seed=2, cap_bytes=8192)
+            hostile_s = time.monotonic() - started
+            rss_after = _rss_kib(pid)
+            plain = fuzzgen.Message([b'{"v":1,"id":"s","client":"b","op":"status"}'], "s")
+            started = time.monotonic()
+            _round_trips(endpoint, plain, 5000)
+            status_s = (time.monotonic() - started) * count / 5000
+            with daemon.client() as mw:
+                state = mw.get()
+        finally:
+            daemon.stop()
+    assert not state["armed"] and all(a["code"] == 0 for a in state["actuators"].values())
+    return {
+        "hostile_messages": count,
+        "hostile_reply_codes": codes,
+        "hostile_internal_errors": codes.get("error", 0),
+        "hostile_seconds": hostile_s,
+        "hostile_ratio_to_status_round_trips": hostile_s / status_s,
+        "hostile_daemon_rss_before_mib": rss_before / 1024,
+        "hostile_daemon_rss_after_mib": rss_after / 1024,
+        "hostile_daemon_rss_growth_mib": (rss_after - rss_before) / 1024,
+    }
+
+
+def _round_trips(endpoint: str, message: Any, count: int) -> None:
+    import zmq
+
+    sock = zmq.Context.instance().socket(zmq.DEALER)
+    sock.connect(endpoint)
+    for _ in range(count):
+        sock.send_multipart(message.frames)
+        sock.recv()
+    sock.close(0)
+
+
+def bench_reply_flood(clients: int = 48, per_client: int = 64) -> dict[str, object]:
+    """Many client ids each asking for the largest reply there is (``events`` with limit 1000 on
+    a journal of thousands of events), never resending: the reply cache must stay within
+    ``service.reply_cache_bytes`` (default 32 MiB), so the daemon's RSS growth stays near it."""
+    import json
+    import tempfile
+
+    import zmq
+
+    with tempfile.TemporaryDirectory() as tmp:
+        daemon, endpoint = _bench_daemon(Path(tmp), "  max_message_bytes: 1048576\n")
+        pid = daemon.proc.pid
+        sock = zmq.Context.instance().socket(zmq.DEALER)
+        sock.setsockopt(zmq.LINGER, 0)
+        sock.connect(endpoint)
+        try:
+            name = "x" * 100
+            for i in range(2000):  # 2000 refusals, each journaled with its reason: big events
+                sock.send(
+                    json.dumps(
+                        {"v": 1, "id": f"f{i}", "client": "fill", "op": "set", "args": {"values": {name: 1}}}
+                    ).encode()
+                )
+                sock.recv()
+            probe = b'{"v":1,"id":"p","client":"probe","op":"events","args":{"limit":1000}}'
+            sock.send(probe)
+            reply_bytes = len(sock.recv())
+            rss_before = _rss_kib(pid)
+            peak = rss_before
+            for n in range(per_client):
+                for c in range(clients):
+                    sock.send(
+                        json.dumps(
+                            {"v": 1, "id": f"q{n}", "client": f"flood-{c}", "op": "events", "args": {"limit": 1000}}
+                        ).encode()
+                    )
+                for _ in range(clients):
+                    sock.recv()
+                peak = max(peak, _rss_kib(pid))
+            rss_after = _rss_kib(pid)
+        finally:
+            sock.close(0)
+            daemon.stop()
+    return {
+        "flood_requests": clients * per_client,
+        "flood_client_ids": clients,
+        "flood_reply_kib": reply_bytes / 1024,
+        "flood_replies_total_mib": clients * per_client * reply_bytes / 2**20,
+        "flood_reply_cache_bound_mib": 32.0,
+        "flood_daemon_rss_before_mib": rss_before / 1024,
+        "flood_daemon_rss_peak_mib": peak / 1024,
+        "flood_daemon_rss_after_mib": rss_after / 1024,
+        "flood_daemon_rss_growth_mib": (rss_after - rss_before) / 1024,
+    }
+
+
+def bench_jobs(counts: tuple[int, int] = (1_000, 10_000)) -> dict[str, float]:
+    """Memory held by the job table after many short jobs (traced Python allocations): after
+    10,000 it must be what it was after 1,000 - finished jobs leave nothing behind."""
+    import asyncio
+    import gc
+    import tracemalloc
+
+    from meshwarden.service.jobs import Jobs
+
+    async def run(count: int) -> int:
+        async def publish(topic: str, body: dict[str, object]) -> int:
+            return 0
+
+        async def work() -> int:
+            return 1
+
+        tracemalloc.start()
+        jobs = Jobs(publish)
+        for _ in range(count):
+            jobs.start("bench", "bench", work())
+            await asyncio.sleep(0)
+        for _ in range(5):
+            await asyncio.sleep(0)
+        gc.collect()
+        held, _ = tracemalloc.get_traced_memory()
+        tracemalloc.stop()
+        del jobs
+        return held
+
+    small, large = (asyncio.run(run(c)) for c in counts)
+    return {
+        f"jobs_traced_kib_after_{counts[0]}": small / 1024,
+        f"jobs_traced_kib_after_{counts[1]}": large / 1024,
+        "jobs_memory_ratio_10x_jobs": large / small,
+    }
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, required=True)
     parser.add_argument("--repeats", type=int, default=500)
+    parser.add_argument(
+        "--only", choices=("all", "hardening"), default="all", help="hardening: the hostile-bus figures only"
+    )
+    parser.add_argument("--hostile", type=int, default=100_000, help="hostile messages to send (default 100,000)")
     args = parser.parse_args()
     results: dict[str, object] = {
         "machine": {
@@ -320,8 +488,10 @@ def main() -> None:
         },
         "repeats": args.repeats,
     }
-    results["simulator"] = bench_simulator(args.repeats)
-    results["bus"] = bench_bus(min(args.repeats, 300))
+    if args.only == "all":
+        results["simulator"] = bench_simulator(args.repeats)
+        results["bus"] = bench_bus(min(args.repeats, 300))
+    results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
     text = json.dumps(results, indent=2)
     args.out.write_text(text + "\n", encoding="utf-8")
     print(text)

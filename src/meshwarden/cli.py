@@ -91,10 +91,10 @@ def _cmd_serve(args: argparse.Namespace) -> int:
 
 
 def _cmd_keygen(args: argparse.Namespace) -> int:
-    from meshwarden.service.bus import write_keypair
+    from meshwarden.service.keyfiles import write_keypair
 
     public, secret = write_keypair(Path(args.dir), args.name)
-    print(f"public key: {public}\nsecret key: {secret} (keep it private)")
+    print(f"public key: {public}\nsecret key: {secret} (mode 0600: readable by you only; keep it so)")
     return EXIT_OK
 
 

@@ -15,6 +15,9 @@ daemon answers a repeat from its cache, so a command is never applied twice. A d
 not answer is reported as :class:`~meshwarden.errors.UnreachableError` after
 ``timeout_s x (retries + 1)``; the next call tries again, so the client works once the daemon
 is back. Refusals raise the matching :class:`~meshwarden.errors.MeshwardenError` subclass.
+
+A request larger than ``max_message_bytes`` (the daemon's ``service.max_message_bytes``, 1 MiB
+unless configured otherwise) is refused here, before it is sent, with code ``too_large``.
 """
 
 from __future__ import annotations
@@ -31,9 +34,11 @@ import zmq
 import zmq.auth
 
 from meshwarden import errors
-from meshwarden.errors import MeshwardenError, UnreachableError
+from meshwarden.errors import BusError, MeshwardenError, UnreachableError
+from meshwarden.service.keyfiles import check_secret_key_file
 
 LONG_OPS = {"set", "disarm", "restore"}
+DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
 
 
 def _error_classes() -> dict[str, type[MeshwardenError]]:
@@ -74,17 +79,20 @@ class Client:
         client_id: str | None = None,
         key_file: str | Path | None = None,
         server_key_file: str | Path | None = None,
+        max_message_bytes: int = DEFAULT_MAX_MESSAGE_BYTES,
     ) -> None:
         self.endpoint = endpoint
         self.telemetry_endpoint = telemetry or _next_port(endpoint)
         self.timeout_s = timeout_s
         self.retries = retries
         self.ramp_timeout_s = ramp_timeout_s
+        self.max_message_bytes = max_message_bytes
         self.client_id = client_id or f"c-{uuid.uuid4().hex[:12]}"
         self._ids = itertools.count(1)
         self._context: zmq.Context[zmq.Socket[bytes]] = zmq.Context.instance()
         self._curve: tuple[bytes, bytes, bytes] | None = None
         if key_file is not None and server_key_file is not None:
+            check_secret_key_file(Path(key_file))  # refused if others can read it, as ssh does
             public, secret = zmq.auth.load_certificate(str(key_file))
             server_public, _ = zmq.auth.load_certificate(str(server_key_file))
             if secret is None:
@@ -116,9 +124,20 @@ class Client:
     def request(self, op: str, **args: Any) -> Any:
         """Send one operation and return its result; raises on refusal or when unreachable."""
         request_id = f"{next(self._ids)}-{uuid.uuid4().hex[:8]}"
-        message = json.dumps(
-            {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
-        ).encode()
+        try:
+            message = json.dumps(
+                {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
+            ).encode()
+        except ValueError:
+            raise MeshwardenError(f"{op}: NaN and infinity cannot be sent (the daemon refuses them)") from None
+        if len(message) > self.max_message_bytes:
+            raise BusError(
+                "too_large",
+                f"{op}: request of {len(message)} bytes exceeds the daemon's {self.max_message_bytes}-byte cap "
+                "(service.max_message_bytes); not sent",
+                size=len(message),
+                limit=self.max_message_bytes,
+            )
         long_op = op in LONG_OPS and args.get("wait", True)
         timeout = max(self.timeout_s, self.ramp_timeout_s) if long_op else self.timeout_s
         for _attempt in range(self.retries + 1):
@@ -128,6 +147,10 @@ class Client:
                 if not self._socket.poll(int(left * 1000) + 1):
                     break
                 reply = json.loads(self._socket.recv())
+                if reply.get("id") is None and reply.get("ok") is False:
+                    # the daemon could not read an id (one request is in flight at a time):
+                    # this refusal is the answer, not something to wait out
+                    raise error_from_reply(reply.get("error") or {})
                 if reply.get("id") != request_id:
                     continue  # a late reply to an earlier, abandoned request
                 if reply.get("ok"):

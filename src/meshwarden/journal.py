@@ -24,6 +24,7 @@ Tables:
 from __future__ import annotations
 
 import json
+import os
 import queue
 import sqlite3
 import threading
@@ -78,12 +79,28 @@ _STOP = object()
 GROUP_MAX = 512  # statements committed in one transaction at most
 
 
+def _make_private(path: Path) -> None:
+    """Create the journal file mode 0600 (whatever the umask), and narrow an existing one and its
+    -wal/-shm files to 0600: the journal names clients and keys. SQLite creates the -wal and
+    -shm files with the database file's mode, so they are private from the start too."""
+    fd = os.open(path, os.O_RDWR | os.O_CREAT, 0o600)
+    try:
+        os.fchmod(fd, 0o600)
+    finally:
+        os.close(fd)
+    for suffix in ("-wal", "-shm"):
+        companion = path.with_name(path.name + suffix)
+        if companion.exists():
+            os.chmod(companion, 0o600)
+
+
 class Journal:
     """The journal file: a writer thread (group commit) and a reading connection."""
 
     def __init__(self, path: Path) -> None:
         self.path = Path(path)
         self.path.parent.mkdir(parents=True, exist_ok=True)
+        _make_private(self.path)
         self._lock = threading.Lock()
         writer = sqlite3.connect(str(self.path), check_same_thread=False, isolation_level=None)
         writer.execute("PRAGMA journal_mode=WAL")

@@ -1,7 +1,9 @@
 """Reading the chip through the rack: photodetector monitors and the boards' output sense.
 
 Monitors on one board are read as one contiguous span per board, all boards at once, ``average``
-times; the mean counts are converted by :func:`meshwarden.monitors.reading`.
+times; the mean counts are converted by :func:`meshwarden.monitors.reading`. Counts become
+volts, amps and watts only through the ADC full scale a board reported when it identified
+itself; until every board involved has, the read is refused (no guessed full scale).
 """
 
 from __future__ import annotations
@@ -12,9 +14,8 @@ from collections.abc import Callable, Iterable
 from meshwarden.config.model import ActuatorConfig, Config, MonitorConfig
 from meshwarden.drivers.base import BoardDriver
 from meshwarden.drivers.rack import Rack
+from meshwarden.errors import FaultedRefused
 from meshwarden.monitors import reading
-
-DEFAULT_ADC_FULL_SCALE_V = 2.5  # used only before a board has identified itself
 
 
 def _monitor_reader(first: int, count: int, integration_s: float) -> Callable[[BoardDriver], tuple[int, ...]]:
@@ -28,6 +29,13 @@ async def acquire_monitors(
     by_board: dict[str, list[MonitorConfig]] = {}
     for mon in config.chip.monitors:
         by_board.setdefault(mon.input.board, []).append(mon)
+    unknown = sorted(b for b in by_board if b not in adc_full_scale)
+    if unknown:
+        raise FaultedRefused(
+            f"monitors on board(s) {', '.join(unknown)}: the board has not identified itself yet, so its ADC "
+            "full scale is unknown and no watts can be given",
+            boards=unknown,
+        )
     spans = {
         board_id: (min(m.input.index for m in mons), max(m.input.index for m in mons))
         for board_id, mons in by_board.items()
@@ -45,7 +53,7 @@ async def acquire_monitors(
             sums[mon.id] / max(1, average),
             mon,
             config.rack.board(mon.input.board).adc_bits,
-            adc_full_scale.get(mon.input.board, DEFAULT_ADC_FULL_SCALE_V),
+            adc_full_scale[mon.input.board],
         )
         for mon in config.chip.monitors
     }

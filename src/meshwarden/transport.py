@@ -5,7 +5,8 @@ or any scheme a package registers under the ``meshwarden.serial_url_handlers`` e
 simulator registers ``meshsim://`` this way; the daemon itself never imports it). Real ports are
 opened exclusively (``exclusive=True``) so two processes can never drive one rack, with read
 and write timeouts, and with DTR/RTS left asserted as the operating system raised them on open
-(pyserial's default), never pulsed: some boards reset on a DTR edge.
+(pyserial's default), never pulsed: some boards reset on a DTR edge. The line speed is the
+board's ``baud_rate`` (socket and simulator links ignore it).
 """
 
 from __future__ import annotations
@@ -33,7 +34,7 @@ def open_port(url: str, timeout_s: float, write_timeout_s: float = 1.0, baud_rat
     """Open the link to a board; raises ``serial.SerialException`` (or OSError) when it cannot."""
     register_url_handlers()
     port = serial.serial_for_url(
-        url, do_not_open=True, timeout=timeout_s, write_timeout=write_timeout_s, baudrate=115200
+        url, do_not_open=True, timeout=timeout_s, write_timeout=write_timeout_s, baudrate=baud_rate
     )
     if not url.startswith(("socket://", "meshsim://", "loop://")):
         port.exclusive = True

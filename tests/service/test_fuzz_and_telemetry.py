@@ -12,6 +12,7 @@ from hypothesis import HealthCheck, given, settings
 from hypothesis import strategies as st
 
 from tests.control.bench import write_bench
+from tests.service import fuzzgen
 from tests.service.daemon import Daemon, start_daemon
 
 OPS = [
@@ -90,6 +91,15 @@ messages = st.one_of(
     requestish.map(lambda d: json.dumps(d).encode()[: max(1, len(json.dumps(d)) // 2)]),
     st.just(b'{"v":1,"id":"n","client":"f","op":"set","args":{"values":{"c0":NaN}}}'),
     st.just(b"x" * (1 << 16)),
+    st.builds(
+        lambda op, arg, number: f'{{"v":1,"id":"h","client":"f","op":"{op}","args":{{"{arg}":{number}}}}}'.encode(),
+        st.sampled_from(["set", "events", "lease", "monitors"]),
+        st.sampled_from(["since", "limit", "ttl_s", "average", "integration_s", "values"]),
+        st.sampled_from(
+            ["1e308", "-1e308", "1e400", "9" * 400, "-" + "9" * 400, '{"c0": 1e308}', '{"c0": 1, "c0": 2}']
+        ),
+    ),
+    st.just(b'{"v":1,"id":"d","client":"f","op":"status","op":"arm"}'),
 )
 
 
@@ -133,7 +143,17 @@ def test_every_message_gets_a_reply_and_changes_nothing(
     assert reply["v"] == 1 and isinstance(reply["ok"], bool)
     if not reply["ok"]:
         assert set(reply["error"]) == {"code", "message", "details"}
+        assert reply["error"]["code"] != "error", reply  # an internal error is a bug, never an answer
     assert fuzz_daemon.proc.poll() is None
+
+
+def test_seeded_hostile_messages_get_specific_replies(fuzz_daemon: Daemon) -> None:
+    """10,000 seeded hostile messages (bad numbers, duplicate keys, reused ids, over-size, cut
+    short, extra frames; 100,000 in scripts/bench): each reply echoes the readable request id
+    and none is an internal error."""
+    codes = fuzzgen.run(fuzz_daemon.endpoint, 10_000, seed=9, cap_bytes=8192)
+    assert sum(codes.values()) == 10_000 and "error" not in codes
+    assert {"out_of_range", "bad_json", "bad_request", "too_large", "too_many_frames"} <= set(codes)
 
 
 def test_after_the_fuzz_no_output_moved(fuzz_daemon: Daemon, dealer: zmq.Socket[bytes]) -> None:

@@ -41,6 +41,14 @@ def req(**fields: object) -> bytes:
         (req(op="lease", args={"targets": [1]}), "bad_request"),
         (req(op="status", args={"x": 1}), "bad_request"),
         (req(op="status", args=[]), "bad_request"),
+        (b'{"v": 1, "id": "a", "id": "b", "client": "t", "op": "status"}', "bad_request"),
+        (req(op="set", args={"values": {"c0": 10**400}}), "out_of_range"),
+        (req(op="set", args={"values": {"c0": 1.5e6}}), "out_of_range"),
+        (req(op="events", args={"since": -1}), "out_of_range"),
+        (req(op="lease", args={"targets": ["g0"], "ttl_s": 0.09}), "out_of_range"),
+        (req(op="release", args={"targets": ["g0"] * 10_001}), "out_of_range"),
+        (req(op="recover", args={"board": "b" * 101}), "out_of_range"),
+        (b'{"v": 1, "id": "a", "client": "t", "op": "monitors", "args": {"integration_s": 2e400}}', "bad_json"),
     ],
 )
 def test_malformed_requests_are_refused_with_a_code(data: bytes, code: str) -> None:

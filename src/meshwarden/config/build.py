@@ -166,7 +166,15 @@ def _service(p: f.Problems, raw: Any) -> ServiceConfig:
         p,
         raw,
         ("service",),
-        ("bind", "pub", "max_message_bytes", "telemetry_rate_hz", "server_secret_key_file", "clients"),
+        (
+            "bind",
+            "pub",
+            "max_message_bytes",
+            "reply_cache_bytes",
+            "telemetry_rate_hz",
+            "server_secret_key_file",
+            "clients",
+        ),
     )
     d = ServiceConfig()
     clients = []
@@ -184,6 +192,7 @@ def _service(p: f.Problems, raw: Any) -> ServiceConfig:
         bind=s.get("bind", f.endpoint, d.bind),
         pub=s.get("pub", f.endpoint, d.pub),
         max_message_bytes=s.get("max_message_bytes", f.integer(1024, 64 << 20), d.max_message_bytes),
+        reply_cache_bytes=s.get("reply_cache_bytes", f.integer(1 << 20, 1 << 32), d.reply_cache_bytes),
         telemetry_rate_hz=s.get("telemetry_rate_hz", f.quantity(HERTZ, maximum=1000.0), d.telemetry_rate_hz),
         server_secret_key_file=secret,
         clients=tuple(clients),

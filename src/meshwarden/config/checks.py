@@ -7,6 +7,7 @@ board can output or too close to pull-in, a gate whose coupler is really a phase
 
 from __future__ import annotations
 
+import ipaddress
 from collections.abc import Callable
 from typing import Any
 
@@ -169,8 +170,25 @@ def _check_service(config: Config, p: f.Problems) -> None:
 
 
 def is_loopback(endpoint: str) -> bool:
-    """True for tcp endpoints on 127.0.0.0/8 or ::1, and for ipc/inproc endpoints."""
-    if not endpoint.startswith("tcp://"):
+    """True only for ``tcp://HOST:PORT`` with HOST an address in 127.0.0.0/8, ``::1`` (or
+    ``[::1]``) or the name ``localhost``, and for ``ipc://`` paths (a file on this machine).
+    Anything else - other schemes, host names such as ``127.example.org``, wildcards, interface
+    names - is treated as reachable from outside and needs CURVE. It fails closed."""
+    scheme, sep, rest = endpoint.partition("://")
+    if not sep:
+        return False
+    if scheme == "ipc":
+        return bool(rest)
+    if scheme != "tcp":
+        return False
+    host, colon, port = rest.rpartition(":")
+    if not colon or not (port.isdigit() or port == "*"):
+        return False
+    if host == "localhost":
         return True
-    host = endpoint[len("tcp://") :].rsplit(":", 1)[0]
-    return host in ("localhost", "[::1]", "::1") or host.startswith("127.")
+    if host.startswith("[") and host.endswith("]"):
+        host = host[1:-1]
+    try:
+        return ipaddress.ip_address(host).is_loopback
+    except ValueError:
+        return False

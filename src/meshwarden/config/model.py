@@ -163,6 +163,7 @@ class ServiceConfig:
     bind: str = "tcp://127.0.0.1:7640"
     pub: str = "tcp://127.0.0.1:7641"
     max_message_bytes: int = 1 << 20
+    reply_cache_bytes: int = 32 << 20
     telemetry_rate_hz: float = 2.0
     server_secret_key_file: Path | None = None
     clients: tuple[ClientKey, ...] = ()

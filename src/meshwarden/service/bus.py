@@ -2,10 +2,16 @@
 
 Per message: frame count and size caps, then the schema, then the role of the sender's key,
 then dispatch in its own task (so a slow ramp never blocks status or estop). Replies are cached
-per client and request id: a client that resends after losing a reply gets the cached reply (or
-waits for the one still being computed) and the command is never applied twice. The ROUTER is
+per (authenticated identity, client, request id) in a :class:`~meshwarden.service.replies.ReplyCache`
+bounded in bytes: a client that resends after losing a reply gets the cached reply (or waits for
+the one still being computed) and the command is never applied twice. The ROUTER is
 ``ROUTER_MANDATORY``: a reply to a client that has gone raises instead of vanishing, and is
 journaled as undeliverable.
+
+Size: a message over ``service.max_message_bytes`` is answered ``too_large``, with its request id
+read from the first few KiB, so the client learns why at once. ZeroMQ itself is told to drop a
+peer only at :data:`DROP_FACTOR` times the cap (at least :data:`DROP_FLOOR_BYTES`): below that the
+daemon holds the message just long enough to answer it.
 """
 
 from __future__ import annotations
@@ -13,8 +19,6 @@ from __future__ import annotations
 import asyncio
 import contextlib
 import time
-from collections import OrderedDict
-from pathlib import Path
 from typing import Any
 
 import zmq
@@ -27,12 +31,26 @@ from meshwarden.controller import Controller
 from meshwarden.errors import BusError, ConfigError, ConfigIssue, MeshwardenError
 from meshwarden.logsetup import get_logger
 from meshwarden.service.handlers import Dispatcher
-from meshwarden.service.schema import Request, best_effort_id, parse_request, reply_error, reply_ok
+from meshwarden.service.identity import LOCAL, Sender
+from meshwarden.service.keyfiles import write_keypair
+from meshwarden.service.preflight import check_exposure, load_server_key
+from meshwarden.service.replies import ReplyCache, request_digest
+from meshwarden.service.schema import (
+    MAX_REASON_CHARS,
+    Request,
+    best_effort_id,
+    id_from_prefix,
+    parse_request,
+    reply_error,
+    reply_ok,
+)
 from meshwarden.service.telemetry import Telemetry
 
+__all__ = ["Bus", "load_allow_list", "write_keypair"]
+
 MAX_FRAMES = 3
-CACHE_PER_CLIENT = 256
-CACHE_CLIENTS = 1024
+DROP_FACTOR = 16
+DROP_FLOOR_BYTES = 16 << 20
 
 
 def load_allow_list(config: Config) -> dict[bytes, tuple[str, str]]:
@@ -75,6 +93,7 @@ class Bus:
         self.bind_endpoint = bind or config.service.bind
         self.pub_endpoint = pub or config.service.pub
         self.max_bytes = config.service.max_message_bytes
+        self.drop_bytes = max(self.max_bytes * DROP_FACTOR, DROP_FLOOR_BYTES)
         self.log = get_logger(component="bus")
         self.context = zmq.asyncio.Context()
         self.auth: AsyncioAuthenticator | None = None
@@ -84,7 +103,7 @@ class Bus:
         self.publisher = self.context.socket(zmq.PUB)
         self.telemetry = Telemetry(self.publisher)
         self.dispatcher = Dispatcher(controller, self.telemetry)
-        self._cache: OrderedDict[str, OrderedDict[str, asyncio.Future[bytes]]] = OrderedDict()
+        self.replies = ReplyCache(config.service.reply_cache_bytes)
         self._tasks: set[asyncio.Task[Any]] = set()
         self._serve_task: asyncio.Task[None] | None = None
         self._ticker: asyncio.Task[None] | None = None
@@ -92,35 +111,10 @@ class Bus:
     # ------------------------------------------------------------------ setup
 
     def start(self) -> None:
-        from meshwarden.config.checks import is_loopback
-
-        exposed = [e for e in (self.bind_endpoint, self.pub_endpoint) if not is_loopback(e)]
-        if exposed and not self.curve:
-            raise ConfigError(
-                [
-                    ConfigIssue(
-                        str(self.config.source or "<config>"),
-                        0,
-                        "service",
-                        f"{exposed[0]} is beyond loopback: configure server_secret_key_file "
-                        "and service.clients (CURVE) first",
-                    )
-                ]
-            )
+        check_exposure(self.config, self.bind_endpoint, self.pub_endpoint)  # serve() checked before the boards too
         if self.curve:
             assert self.config.service.server_secret_key_file is not None
-            public, secret = zmq.auth.load_certificate(str(self.config.service.server_secret_key_file))
-            if secret is None:
-                raise ConfigError(
-                    [
-                        ConfigIssue(
-                            str(self.config.service.server_secret_key_file),
-                            0,
-                            "service.server_secret_key_file",
-                            "this file holds no secret key",
-                        )
-                    ]
-                )
+            public, secret = load_server_key(self.config.service.server_secret_key_file)
             self.roles.allowed = load_allow_list(self.config)
             self.auth = AsyncioAuthenticator(self.context)
             self.auth.start()
@@ -130,7 +124,7 @@ class Bus:
                 sock.curve_publickey = public
                 sock.curve_server = True
         self.router.setsockopt(zmq.ROUTER_MANDATORY, 1)
-        self.router.setsockopt(zmq.MAXMSGSIZE, max(self.max_bytes * 4, 65536))
+        self.router.setsockopt(zmq.MAXMSGSIZE, self.drop_bytes)
         self.router.setsockopt(zmq.LINGER, 0)
         self.publisher.setsockopt(zmq.LINGER, 0)
         self.publisher.setsockopt(zmq.SNDHWM, 10000)
@@ -188,32 +182,40 @@ class Bus:
             self._tasks.add(task)
             task.add_done_callback(self._tasks.discard)
 
-    def _role(self, user: str) -> tuple[str, str]:
-        """(name, role) of the sender; on loopback without CURVE every client is admin."""
+    def _sender(self, user: str) -> Sender:
+        """Who sent a message: on loopback without CURVE everyone is an unauthenticated admin."""
         if not self.curve:
-            return "local", "admin"
+            return Sender(LOCAL, "admin", authenticated=False)
         entry = self.roles.allowed.get(user.encode())
         if entry is None:  # revoked after connecting
-            return "revoked", "none"
-        return entry
+            return Sender("revoked", "none", authenticated=True)
+        name, role = entry
+        return Sender(name, role, authenticated=True)
 
     async def _one(self, identity: bytes, body_frames: list[bytes], user: str) -> None:
-        name, role = self._role(user)
+        sender = self._sender(user)
         request_id: str | None = None
+        request: Request | None = None
         try:
             if len(body_frames) != 1:
                 raise BusError("too_many_frames", f"a request is one frame, got {len(body_frames)}")
             data = body_frames[0]
             if len(data) > self.max_bytes:
-                raise BusError("too_large", f"message of {len(data)} bytes exceeds the {self.max_bytes}-byte cap")
+                request_id = id_from_prefix(data)
+                raise BusError(
+                    "too_large",
+                    f"message of {len(data)} bytes exceeds the {self.max_bytes}-byte cap",
+                    size=len(data),
+                    limit=self.max_bytes,
+                )
             request_id = best_effort_id(data)
-            if role == "none":
+            if sender.role == "none":
                 raise BusError("forbidden", "this client's key is no longer on the allow-list")
             request = parse_request(data)
-            reply = await self._cached(request, role, name)
+            reply = await self._cached(request, sender)
         except MeshwardenError as exc:
-            if role != "none":
-                self.controller.journal.event("command", client=name, op="?", ok=False, code=exc.code)
+            if sender.role != "none":
+                self._journal_refusal(sender, request, request_id, exc)
             reply = reply_error(request_id, exc)
         except Exception as exc:  # last line: the daemon stays up and says so
             self.log.exception("internal error while serving a request")
@@ -221,33 +223,56 @@ class Bus:
         try:
             await self.router.send_multipart([identity, reply])
         except zmq.ZMQError as exc:
-            self.controller.journal.event("reply_undeliverable", client=name, error=str(exc))
+            self.controller.journal.event(
+                "reply_undeliverable",
+                client=sender.holder(request.client) if request else sender.identity,
+                error=str(exc),
+            )
 
-    async def _cached(self, request: Request, role: str, name: str) -> bytes:
-        per_client = self._cache.setdefault(request.client, OrderedDict())
-        self._cache.move_to_end(request.client)
-        while len(self._cache) > CACHE_CLIENTS:
-            self._cache.popitem(last=False)
-        if request.id in per_client:
-            return await asyncio.shield(per_client[request.id])  # a resend: same answer, no second run
-        future: asyncio.Future[bytes] = asyncio.get_running_loop().create_future()
-        per_client[request.id] = future
-        while len(per_client) > CACHE_PER_CLIENT:
-            per_client.popitem(last=False)
+    def _journal_refusal(
+        self, sender: Sender, request: Request | None, request_id: str | None, exc: MeshwardenError
+    ) -> None:
+        """A request refused before dispatch (the dispatcher journals its own refusals)."""
+        self.controller.journal.event(
+            "command",
+            client=sender.holder(request.client) if request else sender.identity,
+            op=request.op if request else "?",
+            ok=False,
+            code=exc.code,
+            reason=exc.message[:MAX_REASON_CHARS],
+            request=request_id,
+            **({"label": request.client} if request else {}),
+        )
+
+    async def _cached(self, request: Request, sender: Sender) -> bytes:
+        key = (sender.identity, request.client, request.id)
+        digest = request_digest(request.op, request.args)
         try:
-            result = await self.dispatcher.handle(request, role, name)
-            reply = reply_ok(request.id, result)
-        except MeshwardenError as exc:
-            reply = reply_error(request.id, exc)
+            earlier = self.replies.get(key, digest)  # a reused id with another request is refused here
+        except BusError:
+            if request.op != "estop":
+                raise
+            return await self._run(request, sender)  # an estop is never refused: run it, uncached
+        if earlier is not None:
+            return await asyncio.shield(earlier)  # a resend: same answer, no second run
+        self.replies.add(key, digest)
+        try:
+            reply = await self._run(request, sender)
         except asyncio.CancelledError:
-            per_client.pop(request.id, None)
-            future.cancel()
+            self.replies.forget(key)
             raise
+        self.replies.settle(key, reply)
+        return reply
+
+    async def _run(self, request: Request, sender: Sender) -> bytes:
+        try:
+            result = await self.dispatcher.handle(request, sender)
+            return reply_ok(request.id, result)
+        except MeshwardenError as exc:
+            return reply_error(request.id, exc)
         except Exception as exc:
             self.log.exception("internal error in a handler", op=request.op)
-            reply = reply_error(request.id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
-        future.set_result(reply)
-        return reply
+            return reply_error(request.id, MeshwardenError(f"internal error: {type(exc).__name__}: {exc}"))
 
     async def _tick(self) -> None:
         """Heartbeat once a second; monitor samples at the configured rate."""
@@ -269,10 +294,3 @@ class Bus:
                 except MeshwardenError as exc:
                     await self.telemetry.publish("event", {"kind": "monitor_read_failed", "error": exc.message})
             await asyncio.sleep(min(0.05, period or 0.05))
-
-
-def write_keypair(directory: Path, name: str) -> tuple[Path, Path]:
-    """Create NAME.key (public) and NAME.key_secret (secret) in ``directory``."""
-    directory.mkdir(parents=True, exist_ok=True)
-    public, secret = zmq.auth.create_certificates(str(directory), name)
-    return Path(public), Path(secret)

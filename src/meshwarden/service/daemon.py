@@ -18,6 +18,7 @@ from meshwarden.api import open_controller
 from meshwarden.config.model import Config
 from meshwarden.logsetup import get_logger
 from meshwarden.service.bus import Bus
+from meshwarden.service.preflight import preflight
 
 
 async def serve(
@@ -35,6 +36,9 @@ async def serve(
     stop = stop_event or asyncio.Event()
     loop = asyncio.get_running_loop()
     signals = stop_event is None
+    # before any board link is opened: an exposed endpoint without CURVE, or a secret key file
+    # others can read, stops the start here, with the rack untouched
+    preflight(config, bind or config.service.bind, pub or config.service.pub)
     async with open_controller(config, ports) as controller:
         bus = Bus(controller, config, bind, pub)
         bus.start()

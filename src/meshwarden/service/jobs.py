@@ -69,9 +69,7 @@ class Jobs:
         job = Job(job_id, kind, client, task)
         self._jobs[job_id] = job
         task.add_done_callback(self._on_done)
-        self._background.add(
-            asyncio.ensure_future(self.publish("job", {"job": job_id, "kind": kind, "state": "running"}))
-        )
+        self._keep(asyncio.ensure_future(self.publish("job", {"job": job_id, "kind": kind, "state": "running"})))
         while len(self._jobs) > KEEP_FINISHED:
             oldest = next(iter(self._jobs.values()))
             if oldest.state == "running":
@@ -81,9 +79,13 @@ class Jobs:
 
     def _on_done(self, task: asyncio.Task[Any]) -> None:
         job = next(j for j in self._jobs.values() if j.task is task)
-        pending = asyncio.ensure_future(self._finished(job))
-        self._background.add(pending)
-        pending.add_done_callback(self._background.discard)
+        self._keep(asyncio.ensure_future(self._finished(job)))
+
+    def _keep(self, future: asyncio.Future[Any]) -> None:
+        """Hold a reference to background work until it ends (asyncio keeps only weak ones), and
+        not a moment longer: a finished future leaves nothing behind."""
+        self._background.add(future)
+        future.add_done_callback(self._background.discard)
 
     async def _finished(self, job: Job) -> None:
         if job.task.cancelled():
