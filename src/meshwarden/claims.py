@@ -24,9 +24,10 @@ from collections.abc import Callable, Iterable
 from dataclasses import dataclass, field
 from typing import Any
 
-from meshwarden.errors import BusyRefused, StoppedRefused
+from meshwarden.errors import BusyRefused, LeaseRefused, StoppedRefused
 
 _ids = itertools.count(1)
+LEASE = "lease"
 
 
 @dataclass(eq=False)
@@ -132,6 +133,9 @@ class ClaimRegistry:
         for actuator in actuators:
             claim = self.holder(actuator)
             if claim is not None and claim.owner != owner:
+                if claim.purpose == LEASE:
+                    leased = f"{actuator} is leased by '{claim.owner}'"
+                    raise LeaseRefused(leased, actuator=actuator, holder=claim.owner)
                 what = f" ({claim.purpose})" if claim.purpose else ""
                 message = f"{actuator} is held by '{claim.owner}'{what}"
                 raise BusyRefused(message, actuator=actuator, holder=claim.owner, claim=claim.id)
@@ -156,6 +160,32 @@ class ClaimRegistry:
             if not busy or not wait_for_motion:
                 break
             await self._event().wait()
+        return self._register(owner, wanted, held, ttl_s, purpose, mover)
+
+    def hold_now(self, owner: str, actuators: Iterable[str], *, ttl_s: float, purpose: str = LEASE) -> Claim:
+        """A held claim taken at once, without waiting for motion in progress (a client's lease:
+        the ramp already running finishes; later motion by others is refused)."""
+        wanted = frozenset(actuators)
+        self.check(owner, wanted)
+        return self._register(owner, wanted, True, ttl_s, purpose, None)
+
+    def release_actuators(self, owner: str, actuators: Iterable[str]) -> None:
+        """Let go of ``owner``'s held claims on ``actuators``; refuses (releasing none) if
+        another owner holds any of them."""
+        wanted = list(actuators)
+        self.check(owner, wanted)
+        for actuator in wanted:
+            claim = self.holder(actuator)
+            if claim is not None:
+                claim.actuators = claim.actuators - {actuator}
+                del self._held[actuator]
+                if not claim.actuators:
+                    claim.ended = True
+        self._notify()
+
+    def _register(
+        self, owner: str, wanted: frozenset[str], held: bool, ttl_s: float | None, purpose: str, mover: Any
+    ) -> Claim:
         expires = self.clock() + ttl_s if ttl_s is not None else float("inf")
         claim = Claim(owner, wanted, held, expires, purpose, mover=mover)
         table = self._held if held else self._moving
@@ -191,6 +221,15 @@ class ClaimRegistry:
         """Wait until no transient motion runs."""
         while self._moving:
             await self._event().wait()
+
+    def owners(self, purpose: str | None = None) -> dict[str, str]:
+        """Actuator -> owner of the held claim on it (only claims of ``purpose`` if given)."""
+        out = {}
+        for actuator in list(self._held):
+            claim = self.holder(actuator)
+            if claim is not None and (purpose is None or claim.purpose == purpose):
+                out[actuator] = claim.owner
+        return out
 
     def table(self) -> dict[str, dict[str, Any]]:
         """Held claims by actuator, for status."""

@@ -31,7 +31,7 @@ class Dispatcher:
     def __init__(self, controller: Controller, telemetry: Telemetry) -> None:
         self.controller = controller
         self.telemetry = telemetry
-        self.leases = Leases()
+        self.leases = Leases(controller.claims)
         self.jobs = Jobs(telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
         controller.listeners.append(self._on_event)
@@ -153,7 +153,7 @@ class Dispatcher:
     async def _op_set(self, request: Request, who: str) -> Any:
         values = request.args["values"]
         volts = bool(request.args.get("volts", False))
-        prepared = self.controller.check(values, volts=volts)  # refuse before a job exists
+        prepared = self.controller.check(values, volts=volts, owner=who)  # refuse before a job exists
         self.leases.check(who, list(prepared))
         job_id = self.jobs.next_id()
 

@@ -2,7 +2,8 @@
 
 A lease lasts ``ttl_s`` from its last renewal, so a client that disappears (crashed script,
 closed notebook) loses its leases on its own; there is no state a vanished client leaves behind
-for ever. Emergency stop ignores leases.
+for ever. A lease is a held motion claim with a time limit (:mod:`meshwarden.claims`): disarm and
+an emergency stop end it, as they end every claim.
 
 A lease is held by a *holder*: one string naming who is authenticated (the bus computes it in
 one place, :func:`meshwarden.service.identity.holder_of`): the key's name under CURVE, so a
@@ -12,10 +13,10 @@ second key cannot take over a lease by sending the first one's client id. A dura
 
 from __future__ import annotations
 
-import time
-from collections.abc import Callable, Iterable
+from collections.abc import Iterable
 
-from meshwarden.errors import BusError, LeaseRefused
+from meshwarden.claims import LEASE, ClaimRegistry
+from meshwarden.errors import BusError
 
 DEFAULT_TTL_S = 30.0
 MIN_TTL_S = 0.1
@@ -23,18 +24,11 @@ MAX_TTL_S = 3600.0
 
 
 class Leases:
-    def __init__(self, clock: Callable[[], float] = time.monotonic) -> None:
-        self.clock = clock
-        self._held: dict[str, tuple[str, float]] = {}  # actuator -> (holder, expires)
+    """The bus's view of leases: held motion claims (purpose ``lease``) with a time limit, in the
+    controller's claim registry - one ownership rule for leases, procedures and requests."""
 
-    def _holder(self, actuator: str) -> str | None:
-        held = self._held.get(actuator)
-        if held is None:
-            return None
-        if held[1] <= self.clock():
-            del self._held[actuator]
-            return None
-        return held[0]
+    def __init__(self, claims: ClaimRegistry) -> None:
+        self.claims = claims
 
     def acquire(self, holder: str, actuators: Iterable[str], ttl_s: float = DEFAULT_TTL_S) -> float:
         """Take or renew leases on all of ``actuators`` - all or none. Returns the expiry (monotonic)."""
@@ -45,27 +39,15 @@ class Leases:
                 argument="ttl_s",
                 allowed=[MIN_TTL_S, MAX_TTL_S],
             )
-        wanted = list(actuators)
-        self.check(holder, wanted)
-        expires = self.clock() + ttl_s
-        for actuator in wanted:
-            self._held[actuator] = (holder, expires)
-        return expires
+        return self.claims.hold_now(holder, actuators, ttl_s=ttl_s, purpose=LEASE).expires_at
 
     def release(self, holder: str, actuators: Iterable[str]) -> None:
         """Let go of ``actuators``; refuses (and releases none) if another holder has any of them."""
-        wanted = list(actuators)
-        self.check(holder, wanted)
-        for actuator in wanted:
-            if self._holder(actuator) == holder:
-                del self._held[actuator]
+        self.claims.release_actuators(holder, actuators)
 
     def check(self, holder: str, actuators: Iterable[str]) -> None:
-        """Refuse if any actuator is leased by another holder."""
-        for actuator in actuators:
-            current = self._holder(actuator)
-            if current is not None and current != holder:
-                raise LeaseRefused(f"{actuator} is leased by '{current}'", actuator=actuator, holder=current)
+        """Refuse if any actuator is held (leased, or claimed by a procedure) by another holder."""
+        self.claims.check(holder, actuators)
 
     def table(self) -> dict[str, str]:
-        return {a: c for a in list(self._held) if (c := self._holder(a)) is not None}
+        return self.claims.owners(LEASE)
