@@ -26,10 +26,13 @@ from collections.abc import AsyncIterator, Callable
 from contextlib import asynccontextmanager
 from typing import Any
 
+from meshwarden.calibration import CalibrationTable, load_calibration
+from meshwarden.calibration_store import BASE_VERSION, CalibrationStore
 from meshwarden.claims import Claim, ClaimRegistry
 from meshwarden.config.model import Config
 from meshwarden.drivers.rack import EMERGENCY, Rack
 from meshwarden.errors import (
+    CalibrationError,
     FaultedRefused,
     LimitRefused,
     MeshwardenError,
@@ -39,7 +42,7 @@ from meshwarden.errors import (
 )
 from meshwarden.guard import RampPlan, check_targets
 from meshwarden.journal import Journal
-from meshwarden.mapping import code_to_volts, volts_to_code
+from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
 from meshwarden.motion import Motion, Progress
 from meshwarden.rackstate import ActuatorState, BoardState, Listener, RackState
 from meshwarden.readout import acquire_monitors, read_sense
@@ -61,6 +64,10 @@ class Controller:
         self.claims = ClaimRegistry()
         self._motion = Motion(self._state)
         self._supervisor = Supervisor(self._state, self._motion, self.estop)
+        self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
+        active = self.calibrations.active()
+        if active != BASE_VERSION:  # the version last activated, before any output is adopted
+            self._swap_tables(self._tables_of(active))
 
     # ------------------------------------------------------------------ state, read-only views
 
@@ -408,6 +415,49 @@ class Controller:
             self.claims.release(claim)
         self._emit("restore", client=client, boards=waiting)
         return {aid: self.describe(aid) for aid in targets}
+
+    # ------------------------------------------------------------------ calibration versions
+
+    def _tables_of(self, version: str) -> dict[str, CalibrationTable]:
+        if version == BASE_VERSION:
+            return {aid: load_calibration(a.config.calibration) for aid, a in self.actuators.items()}
+        tables = self.calibrations.tables(version)
+        for aid, table in tables.items():
+            if aid not in self.actuators or table.actuator != aid or table.kind != self.actuators[aid].config.kind:
+                raise CalibrationError(f"calibration version '{version}': table {aid} does not fit this chip")
+        return tables
+
+    def active_tables(self) -> dict[str, CalibrationTable]:
+        """The table in force for every actuator."""
+        return {aid: a.map.table for aid, a in self.actuators.items()}
+
+    def _swap_tables(self, tables: dict[str, CalibrationTable]) -> dict[str, dict[str, float | None]]:
+        """Install tables; returns the actuators whose present volts now mean another value."""
+        changed: dict[str, dict[str, float | None]] = {}
+        for aid, table in tables.items():
+            act = self.actuators[aid]
+            new_map = ActuatorMap(aid, act.config.kind, table, act.limit.hard_limit_volts)
+            volts = self.describe(aid)["volts"]
+            try:
+                meaning: float | None = new_map.value_at(volts)
+            except MeshwardenError:
+                meaning = None
+            before = act.value
+            act.map, act.calibration_version, act.calibration_origin = new_map, table.version, table.origin
+            if before is not None and (meaning is None or abs(meaning - before) > 1e-6):
+                changed[aid] = {"volts": volts, "before": before, "now": meaning}
+            act.value = meaning if before is not None else None
+        return changed
+
+    async def activate_calibration(self, version: str, client: str | None = None) -> dict[str, Any]:
+        """Switch to a stored calibration version (or ``config``) atomically under a claim on the
+        actuators it covers: no output moves; the next request maps through the new tables."""
+        tables = self._tables_of(version)
+        async with self.claim(list(tables), owner=client or "local", purpose="calibration switch"):
+            changed = self._swap_tables(tables)
+            self.calibrations.set_active(version)
+            self._emit("calibration_activated", client=client, version=version, changed=sorted(changed)[:32])
+        return {"version": version, "activated": True, "changed": changed}
 
     # ------------------------------------------------------------------ reading
 

@@ -39,6 +39,7 @@ class ActuatorState:
     map: ActuatorMap
     limit: ChannelLimit
     calibration_version: str
+    calibration_origin: str = "design-nominal"  # or "measured"
     value: float | None = None  # the logical value the output means now (None: set in volts or unknown)
 
 
@@ -107,9 +108,8 @@ class RackState:
             board = config.rack.board(act.output.board)
             table = load_calibration(act.calibration)
             limit = _channel_limit(config, act, board)
-            self.actuators[act.id] = ActuatorState(
-                act, board, ActuatorMap(act.id, act.kind, table, limit.hard_limit_volts), limit, table.version
-            )
+            amap = ActuatorMap(act.id, act.kind, table, limit.hard_limit_volts)
+            self.actuators[act.id] = ActuatorState(act, board, amap, limit, table.version, table.origin)
         self.limits = {aid: a.limit for aid, a in self.actuators.items()}
         self.gates = {g.id: g for g in config.chip.gates}
 

@@ -40,6 +40,13 @@ chip:
   monitors:
     - {{id: m0, input: "b0:0"}}
     - {{id: m1, input: "b0:1"}}
+  lattice:
+    modes: 2
+    input_modes: [0]
+    columns:
+      - {{g0: 0}}
+      - {{g1: 0}}
+    taps: {{m0: [1, 0], m1: [1, 1]}}
 calibration:
   directory: cal
 safety:

@@ -20,6 +20,7 @@ from meshwarden.config.model import (
     Config,
     GateConfig,
     JournalConfig,
+    LatticeConfig,
     MonitorConfig,
     RackConfig,
     SafetyConfig,
@@ -147,6 +148,62 @@ def _gates(s: f.Section) -> list[GateConfig]:
     return out
 
 
+def _lattice(s: f.Section, gates: set[str], monitors: set[str]) -> LatticeConfig | None:
+    """``chip.lattice``: modes, columns of {gate: top mode}, taps {monitor: [after, mode]}, input modes."""
+    if s.value.get("lattice") is None:
+        return None
+    lat = s.sub("lattice", ("modes", "columns", "taps", "input_modes"))
+    modes = lat.get("modes", f.integer(2, 4096))
+    if not lat.ok or modes is f.BAD:
+        return None
+    problems = s.problems
+    columns: list[tuple[tuple[str, int], ...]] = []
+    placed: set[str] = set()
+    for path, raw in lat.items("columns"):
+        if not isinstance(raw, dict):
+            problems.add(path, "expected a mapping of gate id to its top mode")
+            continue
+        used: set[int] = set()
+        column = []
+        for gate, top in raw.items():
+            where = (*path, str(gate))
+            if gate not in gates:
+                problems.add(where, f"no gate '{gate}' in chip.gates")
+            elif gate in placed:
+                problems.add(where, f"gate '{gate}' is placed twice in the lattice")
+            if isinstance(top, bool) or not isinstance(top, int) or not 0 <= top < modes - 1:
+                problems.add(where, f"top mode must be a whole number from 0 to {modes - 2}, got {top!r}")
+                continue
+            if top in used or top - 1 in used or top + 1 in used:
+                problems.add(where, f"gate '{gate}' overlaps another gate of this column (modes {top}, {top + 1})")
+            used.add(top)
+            placed.add(str(gate))
+            column.append((str(gate), top))
+        columns.append(tuple(column))
+    taps: list[tuple[str, int, int]] = []
+    raw_taps = lat.value.get("taps") or {}
+    if not isinstance(raw_taps, dict):
+        problems.add((*lat.path, "taps"), "expected a mapping of monitor id to [after column, mode]")
+        raw_taps = {}
+    for monitor, spot in raw_taps.items():
+        where = (*lat.path, "taps", str(monitor))
+        if monitor not in monitors:
+            problems.add(where, f"no monitor '{monitor}' in chip.monitors")
+        whole = isinstance(spot, list) and all(isinstance(v, int) and not isinstance(v, bool) for v in spot)
+        ok = whole and len(spot) == 2
+        if not ok or not -1 <= spot[0] < len(columns) or not 0 <= spot[1] < modes:
+            problems.add(where, f"expected [after column -1..{len(columns) - 1}, mode 0..{modes - 1}], got {spot!r}")
+            continue
+        taps.append((str(monitor), spot[0], spot[1]))
+    inputs = lat.value.get("input_modes", [0])
+    if not isinstance(inputs, list) or not inputs or any(
+        isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < modes for v in inputs
+    ):
+        problems.add((*lat.path, "input_modes"), f"expected a list of modes 0..{modes - 1}, got {inputs!r}")
+        inputs = [0]
+    return LatticeConfig(modes, tuple(columns), tuple(taps), tuple(int(v) for v in inputs))
+
+
 def _monitors(s: f.Section) -> list[MonitorConfig]:
     converters = {"responsivity_a_per_w": f.quantity(AMPS_PER_WATT, maximum=10.0), "transimpedance_ohms": OHMS_FIELD}
     defaults = _defaults(s, "monitor_defaults", ("all",), converters)["all"]
@@ -214,10 +271,11 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
 
     cal = top.sub("calibration", ("directory",))
     cal_dir = cal.get("directory", f.path_in(p.directory(("calibration", "directory"))), None)
-    chip = top.sub("chip", ("actuator_defaults", "actuators", "gates", "monitor_defaults", "monitors"))
+    chip = top.sub("chip", ("actuator_defaults", "actuators", "gates", "monitor_defaults", "monitors", "lattice"))
     actuators = _actuators(chip, None if cal_dir is f.BAD else cal_dir)
     gates = _gates(chip)
     monitors = _monitors(chip)
+    lattice = _lattice(chip, {g.id for g in gates}, {m.id for m in monitors})
     if "chip" in top.value and chip.ok and not chip.items("actuators"):
         p.add(("chip", "actuators"), "the chip needs at least one actuator")
 
@@ -233,7 +291,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         return None
     return Config(
         rack=RackConfig(tuple(boards)),
-        chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors)),
+        chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors), lattice),
         journal=JournalConfig(journal_path),
         safety=SafetyConfig(margin),
         service=service,

@@ -31,6 +31,14 @@ def dump_config(config: Config) -> dict[str, Any]:
     """The configuration as nested plain values in the file's own layout."""
     data: dict[str, Any] = _plain(config)
     data["chip"] = {key: data["chip"][key] for key in ("actuators", "gates", "monitors")}
+    lattice = config.chip.lattice
+    if lattice is not None:
+        data["chip"]["lattice"] = {
+            "modes": lattice.modes,
+            "columns": [{gate: top for gate, top in column} for column in lattice.columns],
+            "taps": {monitor: [after, mode] for monitor, after, mode in lattice.taps},
+            "input_modes": list(lattice.input_modes),
+        }
     data["service"] = {k: v for k, v in data["service"].items() if v is not None}
     return data
 

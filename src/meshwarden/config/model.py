@@ -118,12 +118,27 @@ class MonitorConfig:
 
 
 @dataclass(frozen=True)
+class LatticeConfig:
+    """Where the gates and monitor taps sit in the chip's lattice, and where the light enters.
+
+    A gate at top mode k in column c is a coupler on waveguide modes k and k+1 followed by its
+    phase shifter on mode k; a tap ``(after, mode)`` sees ``mode`` after column ``after`` (-1: the
+    input). Procedures (calibration) use it to route light and to know what a monitor sees."""
+
+    modes: int
+    columns: tuple[tuple[tuple[str, int], ...], ...]  # per column: (gate id, top mode)
+    taps: tuple[tuple[str, int, int], ...]  # (monitor id, after column, mode)
+    input_modes: tuple[int, ...]
+
+
+@dataclass(frozen=True)
 class ChipConfig:
-    """The chip under control: its actuators, gates and monitors."""
+    """The chip under control: its actuators, gates and monitors (and, optionally, its lattice)."""
 
     actuators: tuple[ActuatorConfig, ...]
     gates: tuple[GateConfig, ...] = ()
     monitors: tuple[MonitorConfig, ...] = ()
+    lattice: LatticeConfig | None = None
 
     def actuator(self, actuator_id: str) -> ActuatorConfig:
         for actuator in self.actuators:

@@ -46,6 +46,29 @@ def coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
     return np.asarray(cross / total)
 
 
+def balanced_coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
+    """kappa with the two paths' unequal transmissions to their taps taken out.
+
+    The bar and the cross light reach their taps through different gates, so each port is seen
+    scaled by its own fixed transmission (often tenths of a dB apart): the plain ratio is then off
+    by up to the imbalance. A coupler conserves power (a lossless 2x2 is unitary; the common loss
+    is a third constant), so at every sweep point ``w_b P_bar + w_c P_cross = 1`` for the same two
+    unknown weights; least squares over the sweep finds them, and ``kappa = w_c P_cross`` (both
+    weights' common factor cancels in the ratio). Needs kappa to vary over the sweep; falls back
+    to the plain ratio when the system is ill-conditioned."""
+    bar = float_vector("bar_power", bar_power)
+    cross = float_vector("cross_power", cross_power)
+    plain = coupling_ratio(bar, cross)
+    design = np.column_stack([bar, cross])
+    if plain.size < 3 or float(np.ptp(plain)) < 0.3 or np.linalg.cond(design) > 1e6:
+        return plain
+    weights, *_ = np.linalg.lstsq(design, np.ones(bar.size), rcond=None)
+    w_bar, w_cross = float(weights[0]), float(weights[1])
+    if w_bar <= 0 or w_cross <= 0:
+        return plain
+    return np.asarray(w_cross * cross / (w_bar * bar + w_cross * cross))
+
+
 def isotonic_increasing(values: Any, weights: Any = None) -> FloatArray:
     """Least-squares non-decreasing fit of ``values`` (pool adjacent violators), optionally weighted."""
     y = float_vector("values", values)
@@ -102,7 +125,7 @@ class CouplerTableFit:
         }
 
 
-def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any) -> CouplerTableFit:
+def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: bool = False) -> CouplerTableFit:
     """Monotone kappa(V) from a sweep (volts ascending) of bar and cross powers.
 
     ``residual_rms`` is the rms of measured minus fitted kappa over the points used;
@@ -110,7 +133,7 @@ def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any) -> CouplerTa
     non-monotone device); ``pooled_points`` how many points the monotone fit had to merge.
     """
     v = float_vector("volts", volts, min_length=2)
-    kappa = coupling_ratio(bar_power, cross_power)
+    kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
     same_length("volts", v, "bar_power", kappa)
     strictly_increasing("volts", v)
     if v[0] < 0:
@@ -125,7 +148,7 @@ def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any) -> CouplerTa
     table_kappa = [float(fitted[a]) for a in starts]
     if len(table_volts) < 2:
         raise ProcedureInputError("kappa does not rise over the sweep: no table can be made (is the coupler moving?)")
-    drops = -np.diff(kappa)
+    drops = -np.diff(kappa[:used])  # past full transfer the fall is the device's, not noise
     return CouplerTableFit(
         volts=tuple(table_volts),
         kappa=tuple(table_kappa),

@@ -1,0 +1,411 @@
+"""The calibration runner: measure every actuator in place through the chip's own monitors.
+
+It holds one motion claim on the whole chip for its length and moves only through it, so every
+sweep point passes the guard and no other client moves an actuator meanwhile. The order comes
+from the lattice topology (:mod:`meshwarden.procedures.order`): gates are calibrated one part at a
+time, each using gates already calibrated (in this run, or by the active tables) to route light
+to it and monitor taps downstream to observe it.
+
+* A coupler: its bar and cross light reach separate taps; a sweep of ``points`` voltages (even in
+  the active table's coupling ratio, 0 V to the hard limit) gives kappa = P_cross / (P_bar +
+  P_cross) per point, and a monotone table (:func:`fit_coupler_table`), gated.
+* A phase shifter: its gate and the combiner downstream set to 1/2 make an interferometer; a sweep
+  (even in the active table's phase) gives the fringe ``A + B cos(phi0 + c w(V^2))``, fitted, turned
+  into a table of the phase the mesh sees, gated. The fringe's reference (what the rest of the
+  interferometer adds) comes from the ideal lattice with every other phase at its logical value;
+  a phase shifter never calibrated counts as 0 at 0 V. Phases are observable only as differences
+  around interferometers: this fixes the one reference per chain that no power measurement can.
+
+Between steps, every actuator not named by the step is held at 0 V; readings wait one dwell after
+the last move (the configured dwell covers the actuators' ringdown). The procedure refuses to
+start with the laser dark, and puts every output back where it found it at the end. Frames (monitor
+reads) are counted per actuator.
+"""
+
+from __future__ import annotations
+
+import asyncio
+import math
+import time
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from meshwarden.calibration import CalibrationTable
+from meshwarden.claims import Claim
+from meshwarden.errors import MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.procedures.coupler_fit import coupler_gate, fit_coupler_table
+from meshwarden.procedures.fringe import fit_fringe
+from meshwarden.procedures.interferometer import fringe_reference
+from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.order import CalibrationStep, calibration_order
+from meshwarden.procedures.phase_table import build_phase_table
+
+Progress = Callable[[int, int, str], None]
+DEFAULT_POINTS = 12
+MIN_POINTS, MAX_POINTS = 12, 64
+LIT_FRACTION_OF_ADC = 0.01  # the laser counts as on when a monitor reads above 1 % of its ADC range
+SPLIT = 0.5
+PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
+
+
+@dataclass
+class Outcome:
+    """What calibration made of one actuator."""
+
+    status: str  # ok | unobservable | failed
+    reason: str = ""
+    residual: float = math.nan
+    points: int = 0
+    frames: int = 0
+    table: CalibrationTable | None = None
+
+    def as_dict(self) -> dict[str, Any]:
+        return {
+            "status": self.status,
+            "residual": None if math.isnan(self.residual) else self.residual,
+            "points": self.points,
+            "frames": self.frames,
+            "reason": self.reason,
+        }
+
+
+@dataclass
+class CalibrationRun:
+    version: str
+    outcomes: dict[str, Outcome] = field(default_factory=dict)
+    frames: int = 0
+    seconds: float = 0.0
+
+    def tables(self) -> dict[str, CalibrationTable]:
+        return {a: o.table for a, o in self.outcomes.items() if o.status == "ok" and o.table is not None}
+
+
+def topology_of(controller: Any) -> LatticeTopology:
+    lattice = controller.config.chip.lattice
+    if lattice is None:
+        raise RefusedError(
+            "calibration needs the chip's layout: add a chip.lattice section to the configuration "
+            "(docs/configuration.md)"
+        )
+    columns = [dict(column) for column in lattice.columns]
+    taps = {m: (after, mode) for m, after, mode in lattice.taps}
+    return LatticeTopology.from_lattice(lattice.modes, columns, taps, lattice.input_modes)
+
+
+def expand_targets(controller: Any, targets: list[str] | None) -> set[str]:
+    """Actuator ids from actuator or gate ids (all actuators when none)."""
+    if not targets:
+        return set(controller.actuators)
+    out: set[str] = set()
+    for target in targets:
+        if target in controller.actuators:
+            out.add(target)
+        elif target in controller.gates:
+            out |= {controller.gates[target].coupler, controller.gates[target].phase}
+        else:
+            raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
+    return out
+
+
+class Calibrator:
+    """One calibration run over a held claim (see the module docstring)."""
+
+    def __init__(self, controller: Any, claim: Claim, version: str, points: int, progress: Progress | None) -> None:
+        self.ctl = controller
+        self.claim = claim
+        self.points = points
+        self.progress = progress
+        self.run = CalibrationRun(version)
+        self.new: dict[str, CalibrationTable] = {}
+        self.topology = topology_of(controller)
+        self.gate_of = {g.coupler: gid for gid, g in controller.gates.items()}
+        self.gate_of.update({g.phase: gid for gid, g in controller.gates.items()})
+        self.held: dict[str, float] = {}
+
+    # ---------------------------------------------------------------- tables in force for this run
+
+    def _volts_for(self, actuator: str, value: float) -> float:
+        """Volts for a logical value, by this run's new table if there is one, else the active one."""
+        act = self.ctl.actuators[actuator]
+        table = self.new.get(actuator)
+        if table is None:
+            return float(act.map.volts_for(value))
+        from meshwarden.mapping import ActuatorMap
+
+        return float(ActuatorMap(actuator, act.config.kind, table, act.limit.hard_limit_volts).volts_for(value))
+
+    def _value_at(self, actuator: str, volts: float) -> float:
+        """The logical value at ``volts``: this run's table, the active one if calibrated, else 0 at 0 V."""
+        act = self.ctl.actuators[actuator]
+        table = self.new.get(actuator)
+        if table is not None:
+            from meshwarden.mapping import ActuatorMap
+
+            return float(ActuatorMap(actuator, act.config.kind, table, act.limit.hard_limit_volts).value_at(volts))
+        if act.calibration_origin == "measured":
+            return float(act.map.value_at(volts))
+        return 0.0 if volts == 0.0 else float(act.map.value_at(volts))
+
+    def _coupler_volts(self, gate: str, how: str) -> float:
+        coupler = self.ctl.gates[gate].coupler
+        act = self.ctl.actuators[coupler]
+        table = self.new.get(coupler)
+        low, high = (table.values[0], table.values[-1]) if table else act.map.reachable()
+        if how == "bar":
+            return 0.0 if low <= 0.05 else self._volts_for(coupler, low)
+        if how == "cross":
+            return self._volts_for(coupler, min(high, 1.0))
+        return self._volts_for(coupler, SPLIT)
+
+    # ---------------------------------------------------------------- moving and reading
+
+    async def _hold(self, volts: dict[str, float]) -> None:
+        """Every actuator at 0 V but those named; move only what changes."""
+        target = {a: 0.0 for a in self.ctl.actuators}
+        target.update(volts)
+        changes = {a: v for a, v in target.items() if abs(self.held.get(a, math.inf) - v) > 1e-9}
+        if changes:
+            await self.claim.move(changes, volts=True, journal=False)
+            self.held.update(changes)
+
+    async def _read(self, actuator: str, settle_s: float) -> dict[str, float]:
+        await asyncio.sleep(settle_s)
+        levels = await self.claim.read_monitors()
+        self.run.frames += 1
+        outcome = self.run.outcomes.setdefault(actuator, Outcome("failed"))
+        outcome.frames += 1
+        return {m: float(r["watts"]) for m, r in levels.items()}
+
+    def _sweep_values(self, actuator: str, points: int | None = None) -> list[float]:
+        """Sweep volts from 0 V, even in the table in force's logical value: a coupler to the
+        hard limit; a phase shifter only to PHASE_SWEEP_TURNS turns (its phase grows ever faster
+        near the top - many fringes in the last volts would be sampled too coarsely to fit)."""
+        act = self.ctl.actuators[actuator]
+        low, high = act.map.reachable()
+        n = points or self.points
+        if act.config.kind == "phase" and high - low > PHASE_SWEEP_TURNS * 2 * math.pi:
+            table = act.map.table  # straight through the table: volts_for would wrap modulo 2 pi
+            values = np.linspace(low, low + PHASE_SWEEP_TURNS * 2 * math.pi, n)
+            volts = [0.0] + [float(np.interp(v, table.values, table.volts)) for v in values[1:]]
+        else:
+            values = np.linspace(low, high, n)
+            volts = [0.0] + [float(act.map.volts_for(float(v))) for v in values[1:-1]] + [act.map.top_volts]
+        return sorted({round(v, 6) for v in volts})
+
+    # ---------------------------------------------------------------- the run
+
+    async def check_laser(self) -> None:
+        await self._hold({})
+        levels = await self.claim.read_monitors()
+        lit = []
+        for monitor in self.ctl.config.chip.monitors:
+            board = self.ctl.config.rack.board(monitor.input.board)
+            if levels[monitor.id]["counts"] > LIT_FRACTION_OF_ADC * (1 << board.adc_bits):
+                lit.append(monitor.id)
+        if not lit:
+            raise RefusedError(
+                "the laser looks dark: no monitor reads above 1 % of its range with every actuator at 0 V; "
+                "switch the light on (and check the fibre) before calibrating"
+            )
+
+    async def calibrate(self, wanted: set[str]) -> CalibrationRun:
+        started = time.monotonic()
+        order = calibration_order(self.topology)
+        steps = [s for s in order.steps if self._actuator(s) in wanted]
+        for gone in order.unobservable:
+            actuator = self._part(gone.gate, gone.part)
+            if actuator in wanted:
+                self.run.outcomes[actuator] = Outcome("unobservable", gone.reason)
+        for actuator in sorted(wanted):
+            if actuator not in self.gate_of or self.gate_of[actuator] not in self.topology.gates:
+                self.run.outcomes[actuator] = Outcome("unobservable", "its gate is not placed in chip.lattice")
+        await self.check_laser()
+        for index, step in enumerate(steps):
+            self.claim.check()
+            actuator = self._actuator(step)
+            if self.progress is not None:
+                self.progress(index, len(steps), actuator)
+            try:
+                if step.part == "coupler":
+                    await self._coupler(step, actuator)
+                else:
+                    await self._phase(step, actuator)
+            except MeshwardenError as exc:
+                if self.claim.stopping:
+                    raise
+                self.run.outcomes.setdefault(actuator, Outcome("failed")).status = "failed"
+                self.run.outcomes[actuator].reason = exc.message
+        if self.progress is not None:
+            self.progress(len(steps), len(steps), "")
+        self.run.seconds = time.monotonic() - started
+        return self.run
+
+    def _part(self, gate: str, part: str) -> str:
+        g = self.ctl.gates[gate]
+        return str(g.coupler if part == "coupler" else g.phase)
+
+    def _actuator(self, step: CalibrationStep) -> str:
+        return self._part(step.gate, step.part)
+
+    def _routing(self, step: CalibrationStep) -> dict[str, float]:
+        return {self.ctl.gates[g].coupler: self._coupler_volts(g, how) for g, how in step.settings}
+
+    def _half_turn_volts(self, phase_actuator: str) -> float:
+        """Volts that turn a phase shifter by about pi from its 0 V phase (its table in force)."""
+        amap = self.ctl.actuators[phase_actuator].map
+        try:
+            return float(amap.volts_for(amap.value_at(0.0) + math.pi))
+        except MeshwardenError:
+            return 0.0
+
+    def _upstream_phase(self, gate: str) -> list[str]:
+        """The phase shifter of the last gate before ``gate`` that feeds one of its inputs (its
+        phase sets the relative phase of the two inputs), if any."""
+        column, top = self.topology.gates[gate]
+        feeding = [(c, g) for g, (c, t) in self.topology.gates.items() if c < column and t in (top, top + 1)]
+        return [self.ctl.gates[max(feeding)[1]].phase] if feeding else []
+
+    async def _coupler(self, step: CalibrationStep, actuator: str) -> None:
+        """Each point is read twice: with the gate's own phase shifter and the one feeding its
+        inputs at 0, then both at a half turn. Light that a gate at rest leaks into the other
+        input (upstream) or back into the other output (downstream) interferes with what the taps
+        should see; each such term changes sign with one of the two half turns, so the mean of
+        the two readings is free of them (to first order in the leak and in the half turn's
+        error). The sweep is even in the table in force's coupling ratio, with three more points
+        below its first step (the flat start of a gap-closing coupler)."""
+        routing = self._routing(step)
+        settle = self.ctl.actuators[actuator].limit.dwell_s
+        phases = [self.ctl.gates[step.gate].phase, *self._upstream_phase(step.gate)]
+        turned = {p: self._half_turn_volts(p) for p in phases}
+        states = [{p: 0.0 for p in phases}, turned]
+        volts, bar, cross = [], [], []
+        sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
+        sweep = sorted(set(sweep) | {round(sweep[1] * f, 6) for f in (0.3, 0.6, 0.85)})
+        for v in sweep:
+            b = c = 0.0
+            for state in states:
+                await self._hold({**routing, actuator: v, **state})
+                powers = await self._read(actuator, settle)
+                b += sum(powers[m] for m in step.bar_taps) / len(states)
+                c += sum(powers[m] for m in step.cross_taps) / len(states)
+            volts.append(v)
+            bar.append(b)
+            cross.append(c)
+        fit = fit_coupler_table(volts, bar, cross, balance=True)
+        verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
+        outcome = self.run.outcomes[actuator]
+        outcome.points, outcome.residual = fit.points_used, fit.residual_rms
+        if not verdict.ok:
+            outcome.status, outcome.reason = "failed", verdict.reason
+            return
+        outcome.table = fit.to_calibration(actuator, self.run.version, note="measured in place: bar/cross sweep")
+        outcome.status, outcome.reason = "ok", ""
+        self.new[actuator] = outcome.table
+
+    async def _phase(self, step: CalibrationStep, actuator: str) -> None:
+        routing = self._routing(step)
+        act = self.ctl.actuators[actuator]
+        kappa = {g: (0.0 if how == "bar" else 1.0 if how == "cross" else SPLIT) for g, how in step.settings}
+        others = {gid: self._value_at(g.phase, 0.0) for gid, g in self.ctl.gates.items() if g.phase != actuator}
+        reference, contrast = fringe_reference(self.topology, step.gate, step.fringe_taps, kappa, others)
+        outcome = self.run.outcomes.setdefault(actuator, Outcome("failed"))
+        if contrast < 0.2:
+            outcome.status, outcome.reason = "unobservable", f"the model's fringe contrast is only {contrast:.2f}"
+            return
+        volts, power = [], []
+        for v in self._sweep_values(actuator):
+            await self._hold({**routing, actuator: v})
+            powers = await self._read(actuator, act.limit.dwell_s)
+            volts.append(v)
+            power.append(sum(powers[m] for m in step.fringe_taps))
+        fit = fit_fringe(volts, power, with_growth=True)
+        table = build_phase_table(fit, hard_limit_volts=act.limit.hard_limit_volts, reference_rad=reference)
+        outcome.points, outcome.residual = fit.points, fit.residual_rms
+        if table.status != "ok":
+            outcome.status, outcome.reason = "failed", table.reason
+            return
+        outcome.table = table.to_calibration(actuator, self.run.version, note="measured in place: fringe sweep")
+        outcome.status, outcome.reason = "ok", ""
+        self.new[actuator] = outcome.table
+
+
+async def calibrate(
+    controller: Any,
+    *,
+    targets: list[str] | None,
+    points: int | None,
+    owner: str,
+    version: str,
+    progress: Progress | None = None,
+    on_claim: Callable[[Claim], None] | None = None,
+) -> CalibrationRun:
+    """Run a calibration under a held claim on the whole chip; outputs end where they began."""
+    n = DEFAULT_POINTS if points is None else points
+    if isinstance(n, bool) or not isinstance(n, int) or not MIN_POINTS <= n <= MAX_POINTS:
+        raise RefusedError(f"calibrate: points must be {MIN_POINTS} to {MAX_POINTS}, got {points!r}")
+    wanted = expand_targets(controller, targets)
+    topology_of(controller)  # refuse before taking the claim
+    async with controller.claim(list(controller.actuators), owner=owner, purpose="calibration") as claim:
+        if on_claim is not None:
+            on_claim(claim)
+        start = {a: controller.describe(a)["volts"] for a in controller.actuators}
+        calibrator = Calibrator(controller, claim, version, n, progress)
+        calibrator.held = dict(start)
+        try:
+            return await calibrator.calibrate(wanted)
+        finally:
+            if not claim.stopping:
+                await claim.move(start, volts=True, journal=True)
+
+
+async def calibration_job(
+    controller: Any,
+    *,
+    targets: list[str] | None = None,
+    points: int | None = None,
+    activate: bool = True,
+    client: str | None = None,
+    name: str = "",
+    progress: Progress | None = None,
+    on_claim: Callable[[Claim], None] | None = None,
+) -> dict[str, Any]:
+    """Calibrate, store a new immutable version (this run's tables where they passed their gate,
+    the active ones elsewhere), activate it if asked and anything passed; the pinned report."""
+    from meshwarden.calibration_store import config_hash
+
+    stamp = time.strftime("%Y%m%d-%H%M%S", time.gmtime())
+    version = f"cal-{stamp}" + (f"-{name}" if name else "")
+    owner = f"calibrate:{name or stamp}"
+    run = await calibrate(
+        controller, targets=targets, points=points, owner=owner, version=version, progress=progress, on_claim=on_claim
+    )
+    tables = controller.active_tables()
+    tables.update(run.tables())
+    manifest = {
+        "format": "meshwarden-calibration-version/1",
+        "version": version,
+        "created": time.strftime("%Y-%m-%dT%H:%M:%SZ", time.gmtime()),
+        "method": "in-place sweeps through the chip's monitors: bar/cross ratio for couplers, "
+        "fringe fit for phase shifters",
+        "points_per_sweep": points or DEFAULT_POINTS,
+        "configuration_hash": config_hash(controller.config.source),
+        "frames": run.frames,
+        "seconds": round(run.seconds, 3),
+        "client": client,
+        "actuators": {a: o.as_dict() for a, o in sorted(run.outcomes.items())},
+    }
+    controller.calibrations.write(version, tables, manifest)
+    activated = False
+    if activate and run.tables():
+        await controller.activate_calibration(version, client=client)
+        activated = True
+    return {
+        "version": version,
+        "activated": activated,
+        "frames": run.frames,
+        "seconds": round(run.seconds, 3),
+        "actuators": {a: o.as_dict() for a, o in sorted(run.outcomes.items())},
+    }
