@@ -268,17 +268,26 @@ class Calibrator:
         feeding = [(c, g) for g, (c, t) in self.topology.gates.items() if c < column and t in (top, top + 1)]
         return [self.ctl.gates[max(feeding)[1]].phase] if feeding else []
 
+    def _own_phase_if_needed(self, step: CalibrationStep) -> list[str]:
+        """The gate's own phase shifter, when a later gate couples the same two modes again before
+        the taps (then the bar and cross light meet there). Turning it only when needed keeps its
+        drive, and so its crosstalk onto the coupler, out of the other readings."""
+        column, top = self.topology.gates[step.gate]
+        last = max(self.topology.taps[m][0] for m in (*step.bar_taps, *step.cross_taps))
+        again = any(c > column and c <= last and t == top for c, t in self.topology.gates.values())
+        return [self.ctl.gates[step.gate].phase] if again else []
+
     async def _coupler(self, step: CalibrationStep, actuator: str) -> None:
-        """Each point is read twice: with the gate's own phase shifter and the one feeding its
-        inputs at 0, then both at a half turn. Light that a gate at rest leaks into the other
-        input (upstream) or back into the other output (downstream) interferes with what the taps
-        should see; each such term changes sign with one of the two half turns, so the mean of
+        """Each point is read twice: with the phase shifter feeding the gate's inputs (and its own,
+        when needed) at 0, then at a half turn. Light that a gate at rest leaks into the other
+        input (upstream) or mixes back with the other output (downstream) interferes with what the
+        taps should see; each such term changes sign with one of the half turns, so the mean of
         the two readings is free of them (to first order in the leak and in the half turn's
         error). The sweep is even in the table in force's coupling ratio, with three more points
         below its first step (the flat start of a gap-closing coupler)."""
         routing = self._routing(step)
         settle = self.ctl.actuators[actuator].limit.dwell_s
-        phases = [self.ctl.gates[step.gate].phase, *self._upstream_phase(step.gate)]
+        phases = [*self._own_phase_if_needed(step), *self._upstream_phase(step.gate)]
         turned = {p: self._half_turn_volts(p) for p in phases}
         states = [{p: 0.0 for p in phases}, turned]
         volts, bar, cross = [], [], []
