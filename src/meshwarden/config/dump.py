@@ -32,6 +32,7 @@ def dump_config(config: Config) -> dict[str, Any]:
     data: dict[str, Any] = _plain(config)
     data["chip"] = {key: data["chip"][key] for key in ("actuators", "gates", "monitors")}
     data["service"] = {k: v for k, v in data["service"].items() if v is not None}
+    data["safety"] = {k: v for k, v in data["safety"].items() if v is not None}
     return data
 
 

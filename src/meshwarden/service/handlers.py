@@ -30,6 +30,7 @@ class Dispatcher:
         self.leases = Leases()
         self.jobs = Jobs(telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
+        self.run_token: str | None = None  # set by `serve --run-token`: lets a launcher know its own daemon
         controller.listeners.append(self._on_event)
 
     def _on_event(self, kind: str, detail: dict[str, Any]) -> None:
@@ -76,6 +77,8 @@ class Dispatcher:
             "jobs": [j.describe() for j in self.jobs.running()],
             "leases": self.leases.table(),
             "telemetry_seq": self.telemetry.seq,
+            "outputs_live": dict(zip(("count", "highest_volts"), self.controller._state.live_outputs(), strict=True)),
+            "run_token": self.run_token,
         }
 
     async def _op_get(self, request: Request, who: str) -> Any:
