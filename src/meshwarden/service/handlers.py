@@ -19,6 +19,7 @@ from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import Leases
 from meshwarden.service.schema import OPS, READ_ONLY, ROLES, Request
 from meshwarden.service.telemetry import Telemetry
+from meshwarden.service.views import get_view
 
 MAX_ACQUISITION_S = 10.0
 
@@ -82,7 +83,7 @@ class Dispatcher:
         }
 
     async def _op_get(self, request: Request, who: str) -> Any:
-        return self.controller.snapshot()
+        return get_view(self.controller)  # snapshot + gates + journaled targets
 
     async def _op_snapshot(self, request: Request, who: str) -> Any:
         return {"seq": self.telemetry.seq, "state": self.controller.snapshot()}
