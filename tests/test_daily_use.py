@@ -14,6 +14,7 @@ from pathlib import Path
 
 import pytest
 
+from meshwarden.errors import MeshwardenError
 from meshwarden.journal import Journal
 from tests.conftest import DEMO_CONFIG, REPO
 from tests.control.bench import write_bench
@@ -275,3 +276,31 @@ def test_check_config_lists_the_cautions() -> None:
     result = cli("check-config", str(DEMO_CONFIG))
     assert result.returncode == 0
     assert "caution: 120 of 120 actuators use design-nominal calibration" in result.stdout
+
+
+def test_refusals_are_published_on_the_event_topic(bench: tuple[Daemon, Path]) -> None:
+    """A refused request appears on the `event` telemetry topic, as every journaled event does."""
+    d, _ = bench
+    with d.client() as mw:
+        stream = mw.subscribe(["event"], timeout_s=5.0)
+        with pytest.raises(MeshwardenError):
+            mw.set({"c0": 0.3})  # disarmed: refused
+        refusal = next(m for _t, m in stream if m.get("kind") == "command")
+    assert refusal["ok"] is False and refusal["op"] == "set" and refusal["code"] == "not_armed"
+
+
+def test_the_one_board_starting_point_is_valid(tmp_path: Path) -> None:
+    """The README's starting configuration loads once its design-nominal tables are written."""
+    import shutil
+
+    from meshsim.nominal import write_nominal_tables
+    from meshsim.params import parse_params
+    from meshsim.scenario import load_scenario
+    from meshwarden.config import load_config
+
+    shutil.copytree(REPO / "config" / "one-board", tmp_path / "lab")
+    path = tmp_path / "lab" / "lab.yaml"
+    scenario = load_scenario(path)
+    write_nominal_tables(scenario, parse_params(scenario.simulator), tmp_path / "lab" / "cal")
+    config = load_config(path)
+    assert [b.id for b in config.rack.boards] == ["b0"] and len(config.chip.gates) == 2

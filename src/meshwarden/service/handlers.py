@@ -64,6 +64,7 @@ class Dispatcher:
             self.controller.journal.event(
                 "command", client=who, op=request.op, ok=False, code=exc.code, reason=exc.message
             )
+            self._on_event("command", {"client": who, "op": request.op, "ok": False, "code": exc.code})  # refusals too
             raise
         if request.op not in READ_ONLY:
             self.controller.journal.event("command", client=who, op=request.op, ok=True, request=request.id)
