@@ -107,6 +107,7 @@ def build_parser() -> argparse.ArgumentParser:
     from meshwarden.cli_motion import cmd_ramp_op, cmd_set
     from meshwarden.cli_serve import cmd_check_config, cmd_serve
     from meshwarden.cli_settings import cmd_load, cmd_save
+    from meshwarden.cli_sweep import cmd_sweep
     from meshwarden.cli_watch import TOPICS, cmd_watch
 
     parser = _Parser(
@@ -195,6 +196,13 @@ def build_parser() -> argparse.ArgumentParser:
     load = client_command("load", "ramp to saved settings NAME through the guard", cmd_load)
     load.add_argument("name")
     load.add_argument("--volts", action="store_true", help="load the saved volts rather than the logical values")
+    sweep = client_command("sweep", "step settings over a grid, read monitors at each point, write CSV", cmd_sweep)
+    sweep.add_argument("axes", nargs="+", metavar="ID=START:STOP:POINTS", help="e.g. p05=0:6.28:25 (first: slowest)")
+    sweep.add_argument("--out", required=True, help="CSV file for the rows")
+    sweep.add_argument("--monitors", help="comma-separated monitor ids (default: all)")
+    sweep.add_argument("--average", type=int, default=1, help="reads to average per point (default 1)")
+    sweep.add_argument("--integration", type=float, default=1e-3, help="seconds per read (default 0.001)")
+    sweep.add_argument("--volts", action="store_true", help="the ranges are volts")
     return parser
 
 

@@ -53,9 +53,7 @@ def cautions(config: Config) -> list[Caution]:
                 loud=True,
             )
         )
-    near = [
-        a.id for a in config.chip.actuators if a.limit_volts >= (1.0 - NEAR_PULL_IN_FRACTION) * a.pull_in_volts
-    ]
+    near = [a.id for a in config.chip.actuators if a.limit_volts >= (1.0 - NEAR_PULL_IN_FRACTION) * a.pull_in_volts]
     if near:
         out.append(
             Caution(
