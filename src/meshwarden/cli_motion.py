@@ -120,6 +120,7 @@ def cmd_ramp_op(args: argparse.Namespace) -> int:
                 "every output to zero" if args.command == "disarm" else "reset boards back to their journaled targets"
             )
             print(f"meshwarden: ramping {what} (up to {args.ramp_timeout:g} s) ...", file=sys.stderr, flush=True)
+        client.retries = 0  # one wait of at most --ramp-timeout, not one per try
         result = client.request(args.command)
     print(json.dumps(result, indent=2, sort_keys=True) if args.json else render(args.command, result))
     return EXIT_OK
