@@ -55,19 +55,23 @@ def run_values(args: argparse.Namespace, values: dict[str, float], volts: bool, 
         view = client.get()
         names = resolve_names(values, view, angled)
         sub = client.telemetry_socket(["job"])
+        job_id: str | None = None
+        progress = Progress(f"ramping {len(values)} output(s)")
+        interrupted = False
         try:
-            started = client.set(values, volts=volts, wait=False)
-            job_id = started["job"]
-            progress = Progress(f"{job_id} ramping {len(values)} output(s)")
-            interrupted = False
             try:
+                job_id = str(client.set(values, volts=volts, wait=False)["job"])
+                progress.label = f"{job_id} {progress.label}"
                 job = _follow(client, job_id, sub, progress)
             except KeyboardInterrupt:
+                if job_id is None:
+                    raise  # nothing started (or its id never came back): nothing to stop
                 progress.close()
                 interrupted = True
                 print(f"meshwarden: stopping {job_id} (the write in flight completes) ...", file=sys.stderr)
                 client.cancel(job_id)
-                job = _follow(client, job_id, sub, Progress("", stream=None))
+                progress = Progress(f"{job_id} stopping")
+                job = _follow(client, job_id, sub, progress)
             progress.close()
         finally:
             sub.close(0)
