@@ -304,3 +304,12 @@ def test_the_one_board_starting_point_is_valid(tmp_path: Path) -> None:
     write_nominal_tables(scenario, parse_params(scenario.simulator), tmp_path / "lab" / "cal")
     config = load_config(path)
     assert [b.id for b in config.rack.boards] == ["b0"] and len(config.chip.gates) == 2
+
+
+def test_subscribe_deadline_ends_a_busy_stream(bench: tuple[Daemon, Path]) -> None:
+    """`subscribe(timeout_s=...)` is an idle timeout that a busy stream never reaches;
+    `deadline_s` ends the iteration anyway, after the messages that came in time."""
+    d, _ = bench
+    with d.client() as mw:
+        messages = list(mw.subscribe(["heartbeat"], timeout_s=5.0, deadline_s=2.5))
+    assert messages and all(topic == "heartbeat" for topic, _ in messages)
