@@ -313,3 +313,43 @@ def test_subscribe_deadline_ends_a_busy_stream(bench: tuple[Daemon, Path]) -> No
     with d.client() as mw:
         messages = list(mw.subscribe(["heartbeat"], timeout_s=5.0, deadline_s=2.5))
     assert messages and all(topic == "heartbeat" for topic, _ in messages)
+
+
+def test_a_ramp_shows_a_progress_bar_on_a_terminal_and_none_in_a_pipe(tmp_path: Path) -> None:
+    """With stderr on a terminal, `set` draws the ramp's progress from the job topic; with
+    stderr on a pipe it writes no bar."""
+    import pty
+
+    config, _ = write_bench(tmp_path, dwell="100 ms")  # 19 steps: progress messages to draw
+    d = start_daemon(config, tmp_path)
+    master, slave = pty.openpty()
+    try:
+        with d.client() as mw:
+            mw.arm()
+        proc = subprocess.run(
+            [sys.executable, "-m", "meshwarden.cli", "set", "c0=38 V", *ep(d)],
+            stdout=subprocess.PIPE,
+            stderr=slave,
+            text=True,
+            timeout=120,
+        )
+        os.close(slave)
+        slave = -1
+        drawn = b""
+        while True:
+            try:
+                chunk = os.read(master, 65536)
+            except OSError:
+                break
+            if not chunk:
+                break
+            drawn += chunk
+        piped = cli("set", "c0=0 V", *ep(d))
+    finally:
+        os.close(master)
+        if slave >= 0:
+            os.close(slave)
+        d.stop()
+    assert proc.returncode == 0
+    assert b"\rjob-1 ramping 1 output(s) [" in drawn and b"100%" in drawn
+    assert piped.returncode == 0 and "[" not in piped.stderr
