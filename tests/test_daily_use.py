@@ -353,3 +353,17 @@ def test_a_ramp_shows_a_progress_bar_on_a_terminal_and_none_in_a_pipe(tmp_path: 
     assert proc.returncode == 0
     assert b"\rjob-1 ramping 1 output(s) [" in drawn and b"100%" in drawn
     assert piped.returncode == 0 and "[" not in piped.stderr
+
+
+def test_a_margin_override_is_journaled_and_announced_at_start(tmp_path: Path) -> None:
+    """A daemon started on a configuration with a thin-margin override journals it (with the
+    measured pull-in it names) and says it loudly at start."""
+    config, _ = write_bench(tmp_path, margin=0.03, coupler_limit=48)
+    d = start_daemon(config, tmp_path)
+    assert d.stop() == 0
+    with Journal(tmp_path / "journal.sqlite") as journal:
+        (event,) = journal.events(kind="margin_override")
+    assert event.detail["margin"] == 0.03 and event.detail["measured_pull_in"] == "the simulated chip's own pull-in"
+    log = d.log.read_text()
+    assert "WARNING: pull-in margin 0.03 is below the usual minimum by override" in log
+    assert "WARNING: limits within 5% of pull-in: c0, c1" in log
