@@ -60,16 +60,55 @@ def show(title: str, powers: list[float], target: int) -> None:
         print(f"  out{k:>2} (m{OUTPUT_MONITOR_BASE + k}) {p * 1e6:9.3f} uW  {bar}{mark}")
 
 
+def check_rack(mw: Client, args: argparse.Namespace, path: list[str]) -> str | None:
+    """Why this daemon is not the demo rack the script expects (None when it is). Checked before
+    anything is armed: an example script must never arm a rack it was not written for."""
+    status = mw.status()
+    if args.expect_token and status.get("run_token") != args.expect_token:
+        return f"the daemon on {args.endpoint} is not the one started with run token {args.expect_token}"
+    boards = sorted(status["boards"])
+    if boards != sorted(args.expect_boards.split(",")):
+        return f"the daemon on {args.endpoint} drives boards {', '.join(boards)}, not {args.expect_boards}"
+    if status["estopped"]:
+        return "that rack's emergency stop is latched; this script will not clear someone's emergency stop"
+    if status["armed"]:
+        return "that rack is already armed by someone else; this script arms and disarms its own session"
+    view = mw.get()
+    missing = [g for g in path if g not in view.get("gates", {})]
+    if missing:
+        return f"the rack has no gate {missing[0]}: it is not the demo chip"
+    return None
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--endpoint", default="tcp://127.0.0.1:7640")
+    parser.add_argument("--telemetry", help="telemetry endpoint (default: the command port + 1)")
     parser.add_argument("--target", type=int, default=5, help="output mode to send the light to (default 5)")
+    parser.add_argument("--expect-token", help="refuse unless the daemon reports this run token (serve --run-token)")
+    parser.add_argument("--expect-boards", default="b0,b1", help="the rack's board ids (default: the demo's b0,b1)")
     args = parser.parse_args()
     path = path_to(args.target)
     try:
-        with Client(args.endpoint, timeout_s=5.0) as mw:
+        with Client(args.endpoint, args.telemetry, timeout_s=5.0) as mw:
             status = mw.status()
             print(f"daemon {status['version']}: armed={status['armed']}, boards {', '.join(status['boards'])}")
+            wrong = check_rack(mw, args, path)
+            if wrong is not None:
+                print(f"route_light: not arming: {wrong}", file=sys.stderr)
+                return 2
+            monitors = mw.monitors()
+            absent = [
+                f"m{OUTPUT_MONITOR_BASE + k:02d}"
+                for k in range(MODES)
+                if f"m{OUTPUT_MONITOR_BASE + k:02d}" not in monitors
+            ]
+            if absent:
+                print(
+                    f"route_light: not arming: the rack has no monitor {absent[0]}: not the demo chip", file=sys.stderr
+                )
+                return 2
+            print("caution: arming - outputs may rise to their limits; keep clear of probes and pads")
             mw.arm()
             print("armed")
             before = outputs(mw)

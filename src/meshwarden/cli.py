@@ -1,24 +1,31 @@
 """The `meshwarden` command line.
 
 Exit codes (stable, scripts rely on them): 0 ok, 1 refused by the daemon, 2 usage or
-configuration error, 3 daemon unreachable. No traceback reaches the user: every expected error
-is a :class:`MeshwardenError` printed as one line; anything else is reported as an internal
-error with a hint to run with ``--debug``.
+configuration error, 3 daemon unreachable, 130 interrupted (Ctrl-C; a ramp was asked to stop).
+No traceback reaches the user: every expected error is a :class:`MeshwardenError` printed as one
+line; anything else is reported as an internal error with a hint to run with ``--debug``.
+
+The commands live in small modules: ``cli_serve`` (serve, check-config), ``cli_motion`` (set,
+disarm, restore, followed to their end), ``cli_settings`` (save, load), ``cli_watch`` (live
+telemetry), ``cli_tables`` (readable output), ``cli_common`` (finding the daemon, timeouts).
 """
 
 from __future__ import annotations
 
 import argparse
+import json
+import os
 import sys
 from collections.abc import Sequence
-from pathlib import Path
+from typing import Any
 
 from meshwarden import __version__
-from meshwarden.errors import ConfigError, MeshwardenError, UnreachableError
+from meshwarden.cli_common import UsageError, add_client_options, loaded_config, open_client
+from meshwarden.errors import MeshwardenError, UnreachableError
 from meshwarden.logsetup import configure_logging
 
-EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_UNREACHABLE = 0, 1, 2, 3
-CLIENT_COMMANDS = ("status", "arm", "disarm", "estop", "restore", "set", "get", "monitors", "recover")
+EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_UNREACHABLE, EXIT_INTERRUPTED = 0, 1, 2, 3, 130
+ARM_CAUTION = "outputs may now rise to their limits (tens of volts): keep clear of probes and pads"
 
 
 class _Parser(argparse.ArgumentParser):
@@ -30,67 +37,9 @@ class _Parser(argparse.ArgumentParser):
         raise SystemExit(EXIT_USAGE)
 
 
-def _cmd_check_config(args: argparse.Namespace) -> int:
-    from meshwarden.config import load_config, summarize
-
-    try:
-        config = load_config(Path(args.path))
-    except ConfigError as exc:
-        for issue in exc.issues:
-            print(issue, file=sys.stderr)
-        return EXIT_USAGE
-    print(summarize(config))
-    return EXIT_OK
-
-
-def _cmd_serve(args: argparse.Namespace) -> int:
-    import asyncio
-    import json as _json
-
-    from meshwarden.config import load_config
-    from meshwarden.service.daemon import demo_config_path, serve
-
-    path = Path(args.config) if args.config else demo_config_path()
-    if not path.exists():
-        print(f"meshwarden: no configuration at {path} (give --config PATH)", file=sys.stderr)
-        return EXIT_USAGE
-    try:
-        config = load_config(path)
-    except ConfigError as exc:
-        for issue in exc.issues:
-            print(issue, file=sys.stderr)
-        return EXIT_USAGE
-    ports = None
-    if args.ports_file:
-        try:
-            ports = _json.loads(Path(args.ports_file).read_text(encoding="utf-8"))
-        except (OSError, ValueError) as exc:
-            print(f"meshwarden: cannot read ports file {args.ports_file}: {exc}", file=sys.stderr)
-            return EXIT_USAGE
-        if not isinstance(ports, dict) or not all(isinstance(k, str) and isinstance(v, str) for k, v in ports.items()):
-            print(f'meshwarden: {args.ports_file} must hold a JSON object {{"board_id": "url"}}', file=sys.stderr)
-            return EXIT_USAGE
-
-    def ready(bus: object) -> None:
-        print(
-            f"meshwarden: serving commands on {bus.bound}, telemetry on {bus.pub_bound}",  # type: ignore[attr-defined]
-            file=sys.stderr,
-            flush=True,
-        )
-
-    try:
-        asyncio.run(serve(config, ports, args.bind, args.pub, ready, shutdown=args.shutdown))
-    except ConfigError as exc:
-        for issue in exc.issues:
-            print(issue, file=sys.stderr)
-        return EXIT_USAGE
-    except MeshwardenError as exc:
-        print(f"meshwarden: {exc.message}", file=sys.stderr)
-        return EXIT_USAGE
-    return EXIT_OK
-
-
 def _cmd_keygen(args: argparse.Namespace) -> int:
+    from pathlib import Path
+
     from meshwarden.service.keyfiles import write_keypair
 
     public, secret = write_keypair(Path(args.dir), args.name)
@@ -98,56 +47,75 @@ def _cmd_keygen(args: argparse.Namespace) -> int:
     return EXIT_OK
 
 
-def _client(args: argparse.Namespace):  # type: ignore[no-untyped-def]
-    from meshwarden.client import Client
-
-    return Client(
-        args.endpoint, timeout_s=args.timeout, retries=args.retries, key_file=args.key, server_key_file=args.server_key
-    )
-
-
-def _print(result: object, as_json: bool, table: str | None = None) -> None:
-    import json as _json
-
-    if as_json or table is None:
-        print(_json.dumps(result, indent=2, sort_keys=True, default=str))
-    else:
-        print(table)
-
-
-def _cmd_client(args: argparse.Namespace) -> int:
-    from meshwarden.cli_tables import render
-    from meshwarden.client import Client  # noqa: F401  (import errors surface here, not mid-call)
-
+def _request_args(args: argparse.Namespace) -> dict[str, Any]:
     op = args.command
-    kwargs: dict[str, object] = {}
-    if op == "set":
-        values: dict[str, float] = {}
-        for pair in args.pairs:
-            key, sep, value = pair.partition("=")
-            try:
-                values[key] = float(value)
-            except ValueError:
-                print(f"meshwarden: set: expected ID=NUMBER, got {pair!r}", file=sys.stderr)
-                return EXIT_USAGE
-            if not sep or not key:
-                print(f"meshwarden: set: expected ID=NUMBER, got {pair!r}", file=sys.stderr)
-                return EXIT_USAGE
-        kwargs = {"values": values, "volts": args.volts}
-    elif op == "monitors":
-        kwargs = {"average": args.average}
-    elif op == "estop":
-        kwargs = {"reason": args.reason}
-    elif op == "recover":
-        kwargs = {"board": args.board}
-    with _client(args) as client:
-        result = client.request(op, **kwargs)
-    _print(result, args.json, None if args.json else render(op, result))
+    if op == "monitors":
+        return {"average": args.average, "integration_s": args.integration}
+    if op == "estop":
+        return {"reason": args.reason}
+    if op == "recover":
+        return {"board": args.board}
+    if op == "events":
+        return {"since": args.since, "limit": args.limit}
+    if op == "cancel":
+        return {"job": args.job}
+    if op == "lease":
+        return {"targets": args.targets, "ttl_s": args.ttl}
+    if op == "release":
+        return {"targets": args.targets}
+    return {}
+
+
+def _cmd_request(args: argparse.Namespace) -> int:
+    """One request, one reply, printed as a table or JSON."""
+    from meshwarden.cli_tables import render
+
+    with open_client(args) as client:
+        result = client.request(args.command, **_request_args(args))
+    try:
+        print(json.dumps(result, indent=2, sort_keys=True, default=str) if args.json else render(args.command, result))
+        if args.command == "arm" and not args.json:
+            print(f"caution: {ARM_CAUTION}")
+    except BrokenPipeError:
+        sys.stderr.close()
     return EXIT_OK
 
 
+def _cmd_estop(args: argparse.Namespace) -> int:
+    try:
+        return _cmd_request(args)
+    except UnreachableError as exc:
+        print(f"meshwarden: unreachable: {exc.message}: the emergency stop was NOT delivered", file=sys.stderr)
+        config = loaded_config(args)
+        if config is not None:
+            from meshwarden.service.daemon import watchdog_plan
+
+            for line in watchdog_plan(config):
+                print(f"meshwarden: {line}", file=sys.stderr)
+        else:
+            print(
+                "meshwarden: without a daemon, each board's watchdog acts on its own once heartbeats stop: "
+                "'ramp_to_zero' boards ramp to zero after their watchdog timeout, 'hold' boards keep their "
+                "voltage (give --config to see this rack's plan)",
+                file=sys.stderr,
+            )
+        print("meshwarden: to be safe now, switch the driver rack off", file=sys.stderr)
+        return EXIT_UNREACHABLE
+
+
 def build_parser() -> argparse.ArgumentParser:
-    parser = _Parser(prog="meshwarden", description="Control daemon for MEMS photonic chips.")
+    from meshwarden.cli_motion import cmd_ramp_op, cmd_set
+    from meshwarden.cli_serve import cmd_check_config, cmd_serve
+    from meshwarden.cli_settings import cmd_load, cmd_save
+    from meshwarden.cli_sweep import cmd_sweep
+    from meshwarden.cli_watch import TOPICS, cmd_watch
+
+    parser = _Parser(
+        prog="meshwarden",
+        description="Control daemon for MEMS photonic chips. Client commands find the daemon from --endpoint, "
+        "MESHWARDEN_ENDPOINT, --config's service section, ~/.config/meshwarden/client.yaml, else "
+        "tcp://127.0.0.1:7640.",
+    )
     parser.add_argument("--version", action="version", version=f"meshwarden {__version__}")
     parser.add_argument(
         "--log-format",
@@ -157,61 +125,84 @@ def build_parser() -> argparse.ArgumentParser:
     )
     parser.add_argument("--debug", action="store_true", help="show tracebacks of internal errors")
     sub = parser.add_subparsers(dest="command", metavar="COMMAND", parser_class=_Parser)
-    check = sub.add_parser("check-config", help="validate a configuration file and summarise it")
+    check = sub.add_parser("check-config", help="validate a configuration file, summarise it and list its cautions")
     check.add_argument("path", help="the top configuration file (YAML)")
-    check.set_defaults(run=_cmd_check_config)
+    check.set_defaults(run=cmd_check_config)
 
-    serve = sub.add_parser("serve", help="run the daemon (no --config: the demo on the simulated rack)")
-    serve.add_argument("--config", help="the top configuration file (default: the shipped demo)")
+    serve = sub.add_parser("serve", help="run the daemon (no --config: the demo on a simulated rack)")
+    serve.add_argument("--config", help="the top configuration file (default: the shipped demo, simulated)")
     serve.add_argument("--ports-file", help='JSON {"board_id": "url"} overriding board URLs (meshsim serve writes one)')
     serve.add_argument("--bind", help="command endpoint (default from the configuration)")
     serve.add_argument("--pub", help="telemetry endpoint (default from the configuration)")
+    serve.add_argument("--run-token", help="a token `status` reports, so a launcher can recognise its own daemon")
     serve.add_argument(
         "--shutdown",
         choices=("hold", "ramp_to_zero"),
         default="hold",
-        help="outputs at shutdown: hold for the next start to adopt (default), or ramp to zero",
+        help="outputs at shutdown: hold for the next start to adopt (default; they stay live), or ramp to zero",
     )
-    serve.set_defaults(run=_cmd_serve)
+    serve.set_defaults(run=cmd_serve)
 
     keygen = sub.add_parser("keygen", help="create a CURVE key pair for the daemon or a client")
     keygen.add_argument("name", help="file name stem, e.g. the client's name")
     keygen.add_argument("--dir", default=".", help="folder for NAME.key and NAME.key_secret")
     keygen.set_defaults(run=_cmd_keygen)
 
-    for name, text in (
-        ("status", "daemon state"),
-        ("arm", "allow outputs to change (clears an estop)"),
-        ("disarm", "ramp every output to zero"),
-        ("estop", "emergency stop: zero every board now"),
-        ("restore", "ramp reset boards back to their journaled targets"),
-        ("set", "set actuators or gates: ID=VALUE ..."),
-        ("get", "every actuator's state"),
-        ("monitors", "read the photodetector monitors"),
-        ("recover", "bring a faulted board back after its link was fixed"),
-    ):
+    def client_command(name: str, text: str, run: Any = _cmd_request) -> argparse.ArgumentParser:
         cmd = sub.add_parser(name, help=text)
-        cmd.add_argument("--endpoint", default="tcp://127.0.0.1:7640", help="the daemon's command endpoint")
-        cmd.add_argument("--json", action="store_true", help="machine-readable output")
-        cmd.add_argument("--timeout", type=float, default=2.0, help="seconds per try (default 2)")
-        cmd.add_argument("--retries", type=int, default=2, help="tries after the first (default 2)")
-        cmd.add_argument("--key", help="this client's CURVE key file (NAME.key_secret)")
-        cmd.add_argument("--server-key", help="the daemon's public key file")
-        if name == "set":
-            cmd.add_argument(
-                "pairs",
-                nargs="+",
-                metavar="ID=VALUE",
-                help="actuator id (phase rad / coupling 0..1), GATE.kappa= or GATE.phase=",
-            )
-            cmd.add_argument("--volts", action="store_true", help="values are volts")
-        if name == "monitors":
-            cmd.add_argument("--average", type=int, default=1, help="reads to average (default 1)")
-        if name == "estop":
-            cmd.add_argument("--reason", default="command line", help="recorded in the journal")
-        if name == "recover":
-            cmd.add_argument("board", help="the board id")
-        cmd.set_defaults(run=_cmd_client)
+        add_client_options(cmd)
+        cmd.set_defaults(run=run)
+        return cmd
+
+    client_command("status", "daemon state, outputs live, boards, jobs")
+    client_command("arm", "allow outputs to change (clears an estop)")
+    client_command("disarm", "ramp every output to zero", cmd_ramp_op)
+    client_command("estop", "emergency stop: zero every board now", _cmd_estop).add_argument(
+        "--reason", default="command line", help="recorded in the journal"
+    )
+    client_command("restore", "ramp reset boards back to their journaled targets", cmd_ramp_op)
+    setter = client_command("set", "set actuators or gates: ID=VALUE ... (units: V, mV, rad, mrad, deg)", cmd_set)
+    setter.add_argument(
+        "pairs",
+        nargs="*",
+        metavar="ID=VALUE",
+        help="actuator id (phase rad / coupling 0..1), GATE.kappa= or GATE.phase=; 'p05=90 deg', 'c03=12 V'",
+    )
+    setter.add_argument("--volts", action="store_true", help="values without a unit are volts")
+    setter.add_argument("--from", dest="source", metavar="FILE", help="values from `get --json` output or a saved file")
+    client_command("get", "every actuator's state, grouped by gate")
+    monitors = client_command("monitors", "read the photodetector monitors")
+    monitors.add_argument("--average", type=int, default=1, help="reads to average (default 1)")
+    monitors.add_argument("--integration", type=float, default=1e-3, help="seconds per read (default 0.001)")
+    client_command("recover", "bring a faulted board back after its link was fixed").add_argument("board")
+    events = client_command("events", "journal events, oldest first")
+    events.add_argument("--since", type=int, default=0, help="only events after this id")
+    events.add_argument("--limit", type=int, default=100, help="at most this many (1..1000, default 100)")
+    client_command("jobs", "recent jobs and their state")
+    client_command("cancel", "stop a running job (between ramp steps)").add_argument(
+        "job", help="the job id, e.g. job-3"
+    )
+    lease = client_command("lease", "hold actuators or gates for this client id (see --client-id)")
+    lease.add_argument("targets", nargs="+", metavar="ID")
+    lease.add_argument("--ttl", type=float, default=30.0, help="seconds until the lease lapses (default 30)")
+    client_command("release", "give leased actuators back").add_argument("targets", nargs="+", metavar="ID")
+    watch = client_command("watch", f"live telemetry ({', '.join(TOPICS)}); Ctrl-C ends", cmd_watch)
+    watch.add_argument("topics", nargs="*", metavar="TOPIC", help="topics to show (default: all)")
+    watch.add_argument("--count", type=int, default=0, help="stop after this many messages")
+    watch.add_argument("--duration", type=float, help="stop after this many seconds")
+    save = client_command("save", "save every actuator's setting under NAME (or a .json path)", cmd_save)
+    save.add_argument("name")
+    save.add_argument("--force", action="store_true", help="replace an existing file")
+    load = client_command("load", "ramp to saved settings NAME through the guard", cmd_load)
+    load.add_argument("name")
+    load.add_argument("--volts", action="store_true", help="load the saved volts rather than the logical values")
+    sweep = client_command("sweep", "step settings over a grid, read monitors at each point, write CSV", cmd_sweep)
+    sweep.add_argument("axes", nargs="+", metavar="ID=START:STOP:POINTS", help="e.g. p05=0:6.28:25 (first: slowest)")
+    sweep.add_argument("--out", required=True, help="CSV file for the rows")
+    sweep.add_argument("--monitors", help="comma-separated monitor ids (default: all)")
+    sweep.add_argument("--average", type=int, default=1, help="reads to average per point (default 1)")
+    sweep.add_argument("--integration", type=float, default=1e-3, help="seconds per read (default 0.001)")
+    sweep.add_argument("--volts", action="store_true", help="the ranges are volts")
     return parser
 
 
@@ -222,17 +213,26 @@ def main(argv: Sequence[str] | None = None) -> int:
         parser.print_help(sys.stderr)
         return EXIT_USAGE
     configure_logging(args.log_format)
+    client_command = hasattr(args, "retries")
     try:
         code: int = args.run(args)
         return code
     except UnreachableError as exc:
         print(f"meshwarden: unreachable: {exc.message}", file=sys.stderr)
         return EXIT_UNREACHABLE
+    except UsageError as exc:
+        print(f"meshwarden: {exc.message}", file=sys.stderr)
+        return EXIT_USAGE
     except MeshwardenError as exc:
         print(f"meshwarden: {exc.code}: {exc.message}", file=sys.stderr)
-        return EXIT_REFUSED if args.command in CLIENT_COMMANDS else EXIT_USAGE
+        return EXIT_REFUSED if client_command and exc.code != "config" else EXIT_USAGE
     except KeyboardInterrupt:
-        return 130
+        print("meshwarden: interrupted", file=sys.stderr)
+        return EXIT_INTERRUPTED
+    except BrokenPipeError:
+        # `meshwarden ... | head`: the reader left; say nothing more on a closed pipe
+        os.dup2(os.open(os.devnull, os.O_WRONLY), sys.stdout.fileno())
+        return EXIT_OK
     except Exception as exc:  # the last line of defence: no traceback for the user
         if args.debug:
             raise

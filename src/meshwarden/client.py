@@ -128,8 +128,8 @@ class Client:
             message = json.dumps(
                 {"v": 1, "id": request_id, "client": self.client_id, "op": op, "args": args}, allow_nan=False
             ).encode()
-        except ValueError:
-            raise MeshwardenError(f"{op}: NaN and infinity cannot be sent (the daemon refuses them)") from None
+        except ValueError as exc:  # NaN or infinity: refused here, with the reason, before sending
+            raise BusError("bad_request", f"{op}: {exc} (NaN and infinity are not values)") from None
         if len(message) > self.max_message_bytes:
             raise BusError(
                 "too_large",
@@ -241,26 +241,44 @@ class Client:
 
     # ------------------------------------------------------------------ telemetry
 
-    def subscribe(
-        self, topics: list[str] | None = None, timeout_s: float | None = None, settle_s: float = 0.2
-    ) -> Iterator[tuple[str, dict[str, Any]]]:
-        """Telemetry messages as (topic, message), in order; when subscribed to every topic, a gap
-        in ``seq`` is reported as a ``("gap", {"missed": n})`` item. Ends after ``timeout_s``
-        without a message. The subscription is made before this returns, and ``settle_s`` gives it
-        time to reach the daemon (ZeroMQ's "slow joiner"), so what you do next is seen."""
+    def telemetry_socket(self, topics: list[str] | None = None) -> zmq.Socket[bytes]:
+        """A SUB socket on the telemetry endpoint subscribed to ``topics`` (all when None), for
+        callers that poll it alongside other work (the command line's progress display)."""
         sub = self._new_socket(zmq.SUB, self.telemetry_endpoint)
         for topic in topics or [""]:
             sub.setsockopt(zmq.SUBSCRIBE, topic.encode())
+        return sub
+
+    def subscribe(
+        self,
+        topics: list[str] | None = None,
+        timeout_s: float | None = None,
+        settle_s: float = 0.2,
+        deadline_s: float | None = None,
+    ) -> Iterator[tuple[str, dict[str, Any]]]:
+        """Telemetry messages as (topic, message), in order; when subscribed to every topic, a gap
+        in ``seq`` is reported as a ``("gap", {"missed": n})`` item. ``timeout_s`` is an *idle*
+        timeout: the iteration ends after that long without a message; ``deadline_s`` ends it
+        that long after the call however busy the stream is. The subscription is made before this
+        returns, and ``settle_s`` gives it time to reach the daemon (ZeroMQ's "slow joiner"), so
+        what you do next is seen."""
+        end = None if deadline_s is None else time.monotonic() + deadline_s
+        sub = self.telemetry_socket(topics)
         time.sleep(settle_s)
-        return self._messages(sub, topics is None, timeout_s)
+        return self._messages(sub, topics is None, timeout_s, end)
 
     @staticmethod
     def _messages(
-        sub: zmq.Socket[bytes], every_topic: bool, timeout_s: float | None
+        sub: zmq.Socket[bytes], every_topic: bool, timeout_s: float | None, end: float | None = None
     ) -> Iterator[tuple[str, dict[str, Any]]]:
         last_seq: int | None = None
+
+        def wait_ms() -> int | None:
+            waits = [w for w in (timeout_s, None if end is None else end - time.monotonic()) if w is not None]
+            return None if not waits else max(0, int(min(waits) * 1000))
+
         try:
-            while sub.poll(None if timeout_s is None else int(timeout_s * 1000)):
+            while (end is None or time.monotonic() < end) and sub.poll(wait_ms()):
                 raw_topic, body = sub.recv_multipart()
                 message = json.loads(body)
                 seq = int(message.get("seq", 0))

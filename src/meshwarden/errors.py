@@ -19,7 +19,9 @@ on the wire" without knowing the details::
     ├── AbortedError                     aborted         queued board work dropped by an emergency stop
     └── RefusedError                     refused         a request that would break a safety rule
         ├── LimitRefused                 limit           above a voltage limit
-        ├── UnreachableRefused           unreachable     a logical value outside the calibration
+        ├── OutOfRangeRefused            out_of_range    a logical value outside the calibration's range
+        │                                                (was UnreachableRefused / unreachable; the old
+        │                                                class name remains an alias)
         ├── NotArmedRefused              not_armed       outputs may change only while armed
         ├── LeaseRefused                 lease           another client holds the actuator
         ├── UnknownTargetRefused         unknown_target  no actuator, gate or attribute of that name
@@ -145,10 +147,15 @@ class LimitRefused(RefusedError):
     code = "limit"
 
 
-class UnreachableRefused(RefusedError):
-    """A logical value outside what the actuator's calibration can reach within its limit."""
+class OutOfRangeRefused(RefusedError):
+    """A logical value outside what the actuator's calibration can reach within its limit.
 
-    code = "unreachable"
+    Its code was ``unreachable`` before message schema 1.1, which read like "daemon unreachable"."""
+
+    code = "out_of_range"
+
+
+UnreachableRefused = OutOfRangeRefused  # the old name, kept so existing scripts still import it
 
 
 class NotArmedRefused(RefusedError):
@@ -210,7 +217,7 @@ class ForbiddenRefused(RefusedError):
 
 
 class UnreachableError(MeshwardenError):
-    """The daemon did not answer within timeout x (retries + 1)."""
+    """The daemon did not answer within timeout x (retries + 1) (raised by the client only)."""
 
     code = "unreachable"
 

@@ -243,7 +243,7 @@ def test_calibration_not_monotone(tmp_path: Path) -> None:
     with pytest.raises(ConfigError) as err:
         load_config(path)
     assert [str(i) for i in err.value.issues] == [
-        "config.yaml:9: chip.actuators[1].calibration: values must increase strictly with volts: values[2] = 0.4 <= 0.5"
+        "config.yaml:9: chip.actuators[1].calibration: cal/p0.yaml: values must increase strictly with volts: values[2] = 0.4 <= 0.5"
     ]
 
 
@@ -297,3 +297,133 @@ def test_board_link_settings(tmp_path: Path) -> None:
     assert problems(bad, tmp_path) == [
         "config.yaml:6: rack.boards[0].baud_rate: 12 is out of range (allowed 1200 to 12000000)"
     ]
+
+
+# ---------------------------------------------------------------- daily-use checks (issue 14)
+
+DEFAULTS_HEAD = (
+    "  actuator_defaults:\n"
+    "    coupler: {limit_volts: 40, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 2 ms}\n"
+    "  actuators:\n"
+)
+C1 = '    - {id: c1, kind: coupler, output: "b0:2"}'
+
+
+def _with_defaults(defaults_line: str) -> str:
+    """MAIN with c0 and a second coupler c1 taking everything from actuator_defaults.coupler."""
+    text = MAIN.replace(C0, '    - {id: c0, kind: coupler, output: "b0:0"}\n' + C1)
+    return text.replace("  actuators:\n", DEFAULTS_HEAD.replace(DEFAULTS_HEAD.splitlines()[1], defaults_line), 1)
+
+
+def test_pull_in_margin_below_minimum_is_refused(tmp_path: Path) -> None:
+    """A margin of 0 (limit may equal pull-in) is refused, naming the minimum and the override."""
+    text = MAIN + "safety:\n  pull_in_margin: 0\n"
+    assert problems(text, tmp_path) == [
+        "config.yaml:19: safety.pull_in_margin: a pull-in margin of 0 is below the minimum 0.1; a thinner margin "
+        "needs safety.margin_override with measured_pull_in (where this chip's pull-in voltages were measured) "
+        "and reason"
+    ]
+
+
+def test_margin_override_names_the_measured_pull_in_and_is_cautioned(tmp_path: Path) -> None:
+    """With an override that names the measured pull-in, a thin margin loads, and the override and a
+    limit within 5 % of pull-in are both loud cautions."""
+    from meshwarden.config.cautions import cautions
+
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: 48, pull_in_volts: 50") + (
+        "safety:\n  pull_in_margin: 0.03\n"
+        "  margin_override: {measured_pull_in: 'probe sweep of die 7: 49.8 V', reason: dynamic test}\n"
+    )
+    config = load_config(write_config(tmp_path, text))
+    assert config.safety.margin_override is not None
+    said = [str(c) for c in cautions(config)]
+    assert any("measured pull-in: probe sweep of die 7: 49.8 V" in s and s.startswith("WARNING") for s in said)
+    assert any("limits within 5% of pull-in: c0" in s for s in said)
+
+
+def test_margin_override_without_its_measurement_is_refused(tmp_path: Path) -> None:
+    """An override that does not say where the pull-in was measured is not an override."""
+    text = MAIN + "safety:\n  pull_in_margin: 0.03\n  margin_override: {reason: hurry}\n"
+    assert problems(text, tmp_path) == [
+        "config.yaml:20: safety.margin_override: missing required key 'measured_pull_in'"
+    ]
+
+
+def test_one_typo_in_actuator_defaults_is_one_message(tmp_path: Path) -> None:
+    """A misspelt key in actuator_defaults is reported once, not again for every actuator missing it."""
+    text = _with_defaults("    coupler: {limt_volts: 40, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 2 ms}")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuator_defaults.coupler.limt_volts: unknown key 'limt_volts' (did you mean 'limit_volts'?)"
+    ]
+
+
+def test_limit_from_defaults_is_blamed_on_the_defaults_line_once(tmp_path: Path) -> None:
+    """A limit too close to pull-in that came from the defaults points at the defaults line, once."""
+    text = _with_defaults("    coupler: {limit_volts: 45, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 2 ms}")
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: chip.actuator_defaults.coupler.limit_volts: limit 45 V is above 42.5 V, the pull-in voltage "
+        "50 V less the 0.15 safety margin (inherited by coupler actuators, first 'c0')"
+    ]
+
+
+def test_calibration_error_names_its_file(tmp_path: Path) -> None:
+    """A broken calibration table is reported with the file it is in."""
+    path = write_config(tmp_path)
+    write_cal(tmp_path / "cal", "c0", "coupler", "[0.0, 0.1, 0.05, 0.6, 0.9]")
+    with pytest.raises(ConfigError) as err:
+        load_config(path)
+    assert [str(i) for i in err.value.issues] == [
+        "config.yaml:8: chip.actuators[0].calibration: cal/c0.yaml: values must increase "
+        "strictly with volts: values[2] = 0.05 <= 0.1"
+    ]
+
+
+def test_table_ending_below_the_limit_is_a_caution(tmp_path: Path) -> None:
+    """A calibration that stops at 40 V under a 42 V limit loads, with a caution naming the actuator."""
+    from meshwarden.config.cautions import cautions
+
+    text = replace_line("limit_volts: 40, pull_in_volts: 50", "limit_volts: 42, pull_in_volts: 50")
+    said = [str(c) for c in cautions(load_config(write_config(tmp_path, text)))]
+    assert "c0 (40 V < 42 V)" in " ".join(said)
+
+
+def test_identical_bind_and_pub_is_refused(tmp_path: Path) -> None:
+    """Commands and telemetry on one endpoint cannot both bind; said before the daemon tries."""
+    text = MAIN + "service:\n  bind: tcp://127.0.0.1:7650\n  pub: tcp://127.0.0.1:7650\n"
+    assert problems(text, tmp_path) == [
+        "config.yaml:20: service.pub: the telemetry endpoint is the command endpoint (tcp://127.0.0.1:7650); "
+        "give each its own"
+    ]
+
+
+def test_uncreatable_journal_path_is_refused(tmp_path: Path) -> None:
+    """A journal below a plain file cannot be created: a configuration error, not a crash at start."""
+    (tmp_path / "notes.txt").write_text("a file, not a folder", encoding="utf-8")
+    text = replace_line("  path: journal.sqlite", "  path: notes.txt/journal.sqlite")
+    assert problems(text, tmp_path) == [
+        f"config.yaml:17: journal.path: cannot create {tmp_path / 'notes.txt' / 'journal.sqlite'}: "
+        f"{tmp_path / 'notes.txt'} is not a writable folder"
+    ]
+
+
+@pytest.mark.parametrize(
+    ("url", "message"),
+    [
+        ("socket://127.0.0.1", "'socket://127.0.0.1' has no port: write socket://HOST:PORT"),
+        ("ttyUSB0", "'ttyUSB0' is not a device path: did you mean '/dev/ttyUSB0'?"),
+    ],
+)
+def test_board_urls_that_cannot_work(tmp_path: Path, url: str, message: str) -> None:
+    """A socket url without a port and a bare tty name are refused with the fix."""
+    text = replace_line("      url: socket://127.0.0.1:9", f"      url: {url}")
+    assert problems(text, tmp_path) == [f"config.yaml:4: rack.boards[0].url: {message}"]
+
+
+def test_watchdog_hold_is_a_loud_caution(tmp_path: Path) -> None:
+    """A board whose watchdog holds outputs gets a loud caution saying they stay live unattended."""
+    from meshwarden.config.cautions import cautions
+
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      watchdog: {action: hold}")
+    said = [str(c) for c in cautions(load_config(write_config(tmp_path, text)))]
+    assert said[0].startswith("WARNING: board 'b0' watchdog action is 'hold'")
+    assert "stay at their voltage indefinitely" in said[0]

@@ -10,6 +10,7 @@ from pathlib import Path
 from meshsim.nominal import write_nominal_tables
 from meshsim.params import parse_params
 from meshsim.scenario import load_scenario
+from meshwarden.config.model import MIN_PULL_IN_MARGIN
 
 _names = itertools.count()
 
@@ -90,7 +91,14 @@ def write_bench(folder: Path, **changes: object) -> tuple[Path, str]:
     values = {**DEFAULTS, **changes, "rack": rack}
     folder.mkdir(parents=True, exist_ok=True)
     path = folder / "bench.yaml"
-    path.write_text(BENCH.format(**values), encoding="utf-8")
+    text = BENCH.format(**values)
+    if float(values["margin"]) < MIN_PULL_IN_MARGIN:  # a thin margin must say what it relies on
+        text = text.replace(
+            f"  pull_in_margin: {values['margin']}\n",
+            f"  pull_in_margin: {values['margin']}\n"
+            "  margin_override: {measured_pull_in: the simulated chip's own pull-in, reason: guard test}\n",
+        )
+    path.write_text(text, encoding="utf-8")
     scenario = load_scenario(path)
     write_nominal_tables(scenario, parse_params(scenario.simulator), folder / "cal")
     return path, rack

@@ -21,6 +21,7 @@ from meshwarden.config.model import (
     GateConfig,
     JournalConfig,
     LatticeConfig,
+    MarginOverride,
     MonitorConfig,
     RackConfig,
     SafetyConfig,
@@ -110,7 +111,11 @@ def _actuators(s: f.Section, calibration_dir: Path | None) -> list[ActuatorConfi
         "step_limit_volts": VOLTS_FIELD,
         "dwell_s": f.quantity(SECONDS, positive=False, maximum=60.0),
     }
+    before = len(s.problems.issues)
     defaults = _defaults(s, "actuator_defaults", ACTUATOR_KINDS, converters)
+    # A mistake in the defaults is reported once, on its own line, not again as a missing key of
+    # every actuator that would have inherited the value.
+    defaults_broken = len(s.problems.issues) > before
     out = []
     for path, raw in s.items("actuators"):
         a = f.Section(s.problems, raw, path, ACTUATOR_KEYS, what="actuator")
@@ -122,7 +127,12 @@ def _actuators(s: f.Section, calibration_dir: Path | None) -> list[ActuatorConfi
             output=a.get("output", f.terminal),
         )
         for key, conv in converters.items():
-            values[key] = a.get(key, conv, group.get(key, f.MISSING)) if kind is not f.BAD or key in a.value else f.BAD
+            if key not in a.value and key not in group and defaults_broken:
+                values[key] = f.BAD  # already reported on the defaults line
+            elif kind is not f.BAD or key in a.value:
+                values[key] = a.get(key, conv, group.get(key, f.MISSING))
+            else:
+                values[key] = f.BAD
         if "calibration" in a.value:
             values["calibration"] = a.get("calibration", f.path_in(s.problems.directory((*path, "calibration"))))
         elif calibration_dir is not None and values["id"] is not f.BAD:
@@ -279,8 +289,14 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
     if "chip" in top.value and chip.ok and not chip.items("actuators"):
         p.add(("chip", "actuators"), "the chip needs at least one actuator")
 
-    safety = top.sub("safety", ("pull_in_margin",))
+    safety = top.sub("safety", ("pull_in_margin", "margin_override"))
     margin = safety.get("pull_in_margin", f.fraction, SafetyConfig().pull_in_margin)
+    override = None
+    if "margin_override" in safety.value:
+        o = safety.sub("margin_override", ("measured_pull_in", "reason"))
+        measured, reason = o.get("measured_pull_in", f.text), o.get("reason", f.text)
+        if o.ok and f.BAD not in (measured, reason):
+            override = MarginOverride(measured, reason)
     journal = top.sub("journal", ("path",))
     journal_path = journal.get("path", f.path_in(p.directory(("journal", "path"))))
     service = _service(p, top.value.get("service"))
@@ -293,7 +309,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         rack=RackConfig(tuple(boards)),
         chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors), lattice),
         journal=JournalConfig(journal_path),
-        safety=SafetyConfig(margin),
+        safety=SafetyConfig(margin, override),
         service=service,
         source=source,
     )

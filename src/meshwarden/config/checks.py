@@ -8,12 +8,15 @@ board can output or too close to pull-in, a gate whose coupler is really a phase
 from __future__ import annotations
 
 import ipaddress
+import os
+import re
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
 from meshwarden.calibration import load_calibration
 from meshwarden.config import fields as f
-from meshwarden.config.model import Config, Terminal
+from meshwarden.config.model import MIN_PULL_IN_MARGIN, ActuatorConfig, Config, Terminal
 from meshwarden.config.source import PathKey, dotted
 from meshwarden.errors import CalibrationError
 
@@ -35,6 +38,8 @@ def check_config(config: Config, p: f.Problems) -> None:
     _check_gates(config, p)
     _check_monitors(config, p)
     _check_service(config, p)
+    _check_safety(config, p)
+    _check_journal(config, p)
 
 
 def _check_boards(config: Config, p: f.Problems) -> None:
@@ -48,6 +53,9 @@ def _check_boards(config: Config, p: f.Problems) -> None:
                 f"board '{board.id}' has the same url and address as board '{seen_links[link]}'",
             )
         seen_links.setdefault(link, board.id)
+        url_problem = _url_problem(board.url)
+        if url_problem:
+            p.add(("rack", "boards", i, "url"), url_problem)
         if board.watchdog.timeout_s < 2 * board.timeout_s:
             p.add(
                 ("rack", "boards", i, "watchdog", "timeout_s"),
@@ -74,6 +82,18 @@ def _check_ids(config: Config, p: f.Problems) -> None:
 def _check_actuators(config: Config, p: f.Problems) -> None:
     boards = {b.id: b for b in config.rack.boards}
     outputs: dict[Terminal, str] = {}
+    blamed: set[tuple[PathKey, str]] = set()
+
+    def blame(at: PathKey, act: ActuatorConfig, key: str, message: str) -> None:
+        """Report on the actuator's own line, or once on the defaults line it inherited the value from."""
+        if (*at, key) in p.locations.marks:
+            p.add((*at, key), message)
+            return
+        origin: PathKey = ("chip", "actuator_defaults", act.kind, key)
+        if (origin, message) not in blamed:
+            blamed.add((origin, message))
+            p.add(origin, f"{message} (inherited by {act.kind} actuators, first '{act.id}')")
+
     for i, act in enumerate(config.chip.actuators):
         at = ("chip", "actuators", i)
         board = boards.get(act.output.board)
@@ -87,26 +107,33 @@ def _check_actuators(config: Config, p: f.Problems) -> None:
         else:
             outputs[act.output] = act.id
         if act.limit_volts > board.full_scale_volts:
-            p.add(
-                (*at, "limit_volts"),
+            blame(
+                at,
+                act,
+                "limit_volts",
                 f"limit {act.limit_volts:g} V is above board '{board.id}' full scale {board.full_scale_volts:g} V",
             )
         ceiling = (1.0 - config.safety.pull_in_margin) * act.pull_in_volts
         if act.limit_volts > ceiling:
-            p.add(
-                (*at, "limit_volts"),
+            blame(
+                at,
+                act,
+                "limit_volts",
                 f"limit {act.limit_volts:g} V is above {ceiling:.4g} V, the pull-in voltage "
                 f"{act.pull_in_volts:g} V less the {config.safety.pull_in_margin:g} safety margin",
             )
         if act.step_limit_volts > act.limit_volts:
-            p.add(
-                (*at, "step_limit_volts"),
+            blame(
+                at,
+                act,
+                "step_limit_volts",
                 f"step limit {act.step_limit_volts:g} V is above the actuator's limit {act.limit_volts:g} V",
             )
         try:
             table = load_calibration(act.calibration)
         except CalibrationError as exc:
-            p.add((*at, "calibration"), exc.message)
+            named = exc.message if str(act.calibration) in exc.message else f"{_short(act.calibration)}: {exc.message}"
+            p.add((*at, "calibration"), named)
         else:
             if table.actuator != act.id:
                 p.add(
@@ -165,6 +192,8 @@ def _check_monitors(config: Config, p: f.Problems) -> None:
 
 def _check_service(config: Config, p: f.Problems) -> None:
     service = config.service
+    if service.bind == service.pub:
+        p.add(("service", "pub"), f"the telemetry endpoint is the command endpoint ({service.bind}); give each its own")
     if not all(is_loopback(e) for e in (service.bind, service.pub)) and service.server_secret_key_file is None:
         p.add(("service",), "binding beyond loopback needs server_secret_key_file and an allow-list of clients")
 
@@ -192,3 +221,54 @@ def is_loopback(endpoint: str) -> bool:
         return ipaddress.ip_address(host).is_loopback
     except ValueError:
         return False
+
+
+def _url_problem(url: str) -> str | None:
+    """What is wrong with a board url that cannot work as written (None when it may)."""
+    if url.startswith("socket://"):
+        rest = url[len("socket://") :].split("?", 1)[0].rstrip("/")
+        host, _, port = rest.rpartition(":")
+        if not host or not port.isdigit():
+            return f"'{url}' has no port: write socket://HOST:PORT"
+        return None
+    if re.fullmatch(r"(tty|cu\.)[A-Za-z0-9_.-]+", url):
+        return f"'{url}' is not a device path: did you mean '/dev/{url}'?"
+    if re.fullmatch(r"COM\d+", url) or "://" in url or url.startswith("/"):
+        return None
+    return f"'{url}' is neither a device path (/dev/...) nor a url (socket://HOST:PORT, meshsim://...)"
+
+
+def _check_safety(config: Config, p: f.Problems) -> None:
+    safety = config.safety
+    if safety.pull_in_margin < MIN_PULL_IN_MARGIN and safety.margin_override is None:
+        p.add(
+            ("safety", "pull_in_margin"),
+            f"a pull-in margin of {safety.pull_in_margin:g} is below the minimum {MIN_PULL_IN_MARGIN:g}; "
+            "a thinner margin needs safety.margin_override with measured_pull_in (where this chip's "
+            "pull-in voltages were measured) and reason",
+        )
+
+
+def _check_journal(config: Config, p: f.Problems) -> None:
+    """The journal must be creatable: the daemon refuses to move outputs it cannot record."""
+    path = config.journal.path
+    if path.is_dir():
+        p.add(("journal", "path"), f"{path} is a folder; give a file path such as {path / 'journal.sqlite'}")
+        return
+    if path.exists():
+        if not os.access(path, os.W_OK):
+            p.add(("journal", "path"), f"{path} is not writable by this user")
+        return
+    folder: Path = path.parent
+    while not folder.exists() and folder != folder.parent:
+        folder = folder.parent
+    if not folder.is_dir() or not os.access(folder, os.W_OK | os.X_OK):
+        p.add(("journal", "path"), f"cannot create {path}: {folder} is not a writable folder")
+
+
+def _short(path: Path) -> str:
+    """``path`` relative to the working folder when it is below it (as the user typed it), else absolute."""
+    try:
+        return path.relative_to(Path.cwd()).as_posix()
+    except ValueError:
+        return str(path)

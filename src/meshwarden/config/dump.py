@@ -40,6 +40,7 @@ def dump_config(config: Config) -> dict[str, Any]:
             "input_modes": list(lattice.input_modes),
         }
     data["service"] = {k: v for k, v in data["service"].items() if v is not None}
+    data["safety"] = {k: v for k, v in data["safety"].items() if v is not None}
     return data
 
 

@@ -150,16 +150,33 @@ class ChipConfig:
         return (a for a in self.actuators if a.kind == kind)
 
 
+MIN_PULL_IN_MARGIN = 0.10  # below this, a configuration must carry a margin_override
+NEAR_PULL_IN_FRACTION = 0.05  # a limit within this fraction of pull-in is warned about
+
+
+@dataclass(frozen=True)
+class MarginOverride:
+    """An explicit permission to run with a pull-in margin below :data:`MIN_PULL_IN_MARGIN`.
+
+    It must say where the measured pull-in voltages come from (a thin margin is only defensible
+    against a measurement of this chip, never against a design value); the daemon journals it at
+    every start."""
+
+    measured_pull_in: str
+    reason: str
+
+
 @dataclass(frozen=True)
 class SafetyConfig:
     """Rules that apply to every actuator.
 
     ``pull_in_margin`` keeps every limit at least this fraction below pull-in: pull-in voltages
     shift with fabrication spread and dielectric charging, so the nominal value is not a line to
-    walk along.
+    walk along. A margin below :data:`MIN_PULL_IN_MARGIN` needs ``margin_override``.
     """
 
     pull_in_margin: float = 0.15
+    margin_override: MarginOverride | None = None
 
 
 @dataclass(frozen=True)

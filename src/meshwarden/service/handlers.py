@@ -25,6 +25,7 @@ from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
 from meshwarden.service.schema import MAX_REASON_CHARS, OPS, READ_ONLY, ROLES, Request
 from meshwarden.service.telemetry import Telemetry
+from meshwarden.service.views import get_view
 
 
 class Dispatcher:
@@ -34,6 +35,7 @@ class Dispatcher:
         self.leases = Leases(controller.claims)
         self.jobs = Jobs(telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
+        self.run_token: str | None = None  # set by `serve --run-token`: lets a launcher know its own daemon
         controller.listeners.append(self._on_event)
 
     def _on_event(self, kind: str, detail: dict[str, Any]) -> None:
@@ -82,6 +84,7 @@ class Dispatcher:
                 label=request.client,
                 request=request.id,
             )
+            self._on_event("command", {"client": who, "op": request.op, "ok": False, "code": exc.code})  # refusals too
             raise
         if request.op not in READ_ONLY:
             self.controller.journal.event(
@@ -98,10 +101,12 @@ class Dispatcher:
             "jobs": [j.describe() for j in self.jobs.running()],
             "leases": self.leases.table(),
             "telemetry_seq": self.telemetry.seq,
+            "outputs_live": dict(zip(("count", "highest_volts"), self.controller._state.live_outputs(), strict=True)),
+            "run_token": self.run_token,
         }
 
     async def _op_get(self, request: Request, who: str) -> Any:
-        return self.controller.snapshot()
+        return get_view(self.controller)  # snapshot + gates + journaled targets
 
     async def _op_snapshot(self, request: Request, who: str) -> Any:
         return {"seq": self.telemetry.seq, "state": self.controller.snapshot()}
