@@ -196,6 +196,9 @@ def build_parser() -> argparse.ArgumentParser:
     load = client_command("load", "ramp to saved settings NAME through the guard", cmd_load)
     load.add_argument("name")
     load.add_argument("--volts", action="store_true", help="load the saved volts rather than the logical values")
+    from meshwarden.cli_calibrate import add_parsers as add_calibration_commands
+
+    add_calibration_commands(sub, client_command)
     sweep = client_command("sweep", "step settings over a grid, read monitors at each point, write CSV", cmd_sweep)
     sweep.add_argument("axes", nargs="+", metavar="ID=START:STOP:POINTS", help="e.g. p05=0:6.28:25 (first: slowest)")
     sweep.add_argument("--out", required=True, help="CSV file for the rows")

@@ -37,7 +37,7 @@ from meshwarden import errors
 from meshwarden.errors import BusError, MeshwardenError, UnreachableError
 from meshwarden.service.keyfiles import check_secret_key_file
 
-LONG_OPS = {"set", "disarm", "restore"}
+LONG_OPS = {"set", "disarm", "restore", "calibrate"}
 DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
 
 
@@ -288,6 +288,43 @@ class Client:
                 yield raw_topic.decode(), message
         finally:
             sub.close(0)
+
+
+    # ------------------------------------------------------------------ calibration
+
+    def calibrate(
+        self, targets: list[str] | None = None, points: int | None = None, activate: bool = True, wait: bool = True
+    ) -> dict[str, Any]:
+        """Calibrate actuators or gates in place (none: the whole chip); with ``wait`` the report
+        ``{"version", "activated", "frames", "actuators": {ID: {"status", "residual", "points",
+        "frames", "reason"}}}``, else ``{"job", "state"}`` (follow it with :meth:`job`)."""
+        args: dict[str, Any] = {"activate": activate, "wait": wait}
+        if targets:
+            args["targets"] = list(targets)
+        if points is not None:
+            args["points"] = points
+        result: dict[str, Any] = self.request("calibrate", **args)
+        return result
+
+    def calibrations(self) -> list[dict[str, Any]]:
+        """Stored calibration versions (the configuration's own first), which is active."""
+        result: list[dict[str, Any]] = self.request("calibrations")
+        return result
+
+    def calibration(self, version: str) -> dict[str, Any]:
+        """One version's manifest: date, method, per-actuator outcome."""
+        result: dict[str, Any] = self.request("calibration_show", version=version)
+        return result
+
+    def activate_calibration(self, version: str) -> dict[str, Any]:
+        """Switch to a stored version (no output moves); which actuators now mean another value."""
+        result: dict[str, Any] = self.request("calibration_activate", version=version)
+        return result
+
+    def job(self, job: str) -> dict[str, Any]:
+        """One job's state, progress and, once finished, its result."""
+        result: dict[str, Any] = self.request("job", job=job)
+        return result
 
 
 def _next_port(endpoint: str) -> str:

@@ -19,7 +19,7 @@ from typing import Any
 
 from meshwarden import __version__
 from meshwarden.controller import Controller
-from meshwarden.errors import ForbiddenRefused, MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.errors import BusError, ForbiddenRefused, MeshwardenError, RefusedError, UnknownTargetRefused
 from meshwarden.service.identity import Sender
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
@@ -135,6 +135,63 @@ class Dispatcher:
 
     async def _op_jobs(self, request: Request, who: str) -> Any:
         return self.jobs.list()
+
+    async def _op_job(self, request: Request, who: str) -> Any:
+        job = self.jobs.get(request.args["job"])
+        if job is None:
+            raise UnknownTargetRefused(f"no job '{request.args['job']}' (finished jobs are kept a while)")
+        return job.full()
+
+    # ------------------------------------------------------------------ calibration
+
+    async def _op_calibrate(self, request: Request, who: str) -> Any:
+        from meshwarden.procedures.calibrate_run import calibration_job
+
+        job_id = self.jobs.next_id()
+        targets = request.args.get("targets")
+        if targets is not None and not all(isinstance(t, str) for t in targets):
+            raise BusError("bad_request", "calibrate: 'targets' must be a list of actuator or gate ids")
+
+        def on_claim(claim: Any) -> None:
+            job.stopper = claim.request_stop
+
+        def progress(done: int, total: int, what: str) -> None:
+            job.progress = {"step": done, "steps": total, "what": what}
+            if total:
+                message = {"job": job_id, "kind": "calibrate", "state": "running", "progress": done / total}
+                self._spawn(self.telemetry.publish("job", {**message, **job.progress}))
+
+        job = self.jobs.start(
+            "calibrate",
+            who,
+            calibration_job(
+                self.controller,
+                targets=targets,
+                points=request.args.get("points"),
+                activate=bool(request.args.get("activate", True)),
+                client=who,
+                name=job_id,
+                progress=progress,
+                on_claim=on_claim,
+            ),
+            job_id=job_id,
+        )
+        if not request.args.get("wait", True):
+            return {"job": job.id, "state": "running"}
+        return await asyncio.shield(job.task)
+
+    async def _op_calibrations(self, request: Request, who: str) -> Any:
+        return self.controller.calibrations.summary()
+
+    async def _op_calibration_show(self, request: Request, who: str) -> Any:
+        version = request.args["version"]
+        store = self.controller.calibrations
+        if version == "config":
+            return {"version": "config", "active": store.active() == "config", "manifest": None}
+        return {"version": version, "active": store.active() == version, "manifest": store.manifest(version)}
+
+    async def _op_calibration_activate(self, request: Request, who: str) -> Any:
+        return await self.controller.activate_calibration(request.args["version"], client=who)
 
     # ------------------------------------------------------------------ changes
 

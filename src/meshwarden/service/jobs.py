@@ -32,6 +32,7 @@ class Job:
     result: Any = None
     error: dict[str, Any] | None = None
     stopper: Callable[[str], None] | None = None  # cooperative stop, once the job's motion runs
+    progress: dict[str, Any] | None = None  # the last progress report (step, steps, what)
     stop_requested: bool = False
 
     def stop(self, reason: str) -> None:
@@ -50,7 +51,12 @@ class Job:
             "state": self.state,
             "started": self.started,
             "error": self.error,
+            "progress": self.progress,
         }
+
+    def full(self) -> dict[str, Any]:
+        """The description with the result of a finished job (the `job` op)."""
+        return {**self.describe(), "result": self.result}
 
 
 class Jobs:

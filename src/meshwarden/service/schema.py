@@ -48,6 +48,19 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "arm": ("admin", {}),
     "restore": ("admin", {}),
     "recover": ("admin", {"board": ((str,), True)}),
+    "job": ("observer", {"job": ((str,), True)}),
+    "calibrate": (
+        "admin",
+        {
+            "targets": ((list,), False),
+            "points": ((int,), False),
+            "activate": ((bool,), False),
+            "wait": ((bool,), False),
+        },
+    ),
+    "calibrations": ("observer", {}),
+    "calibration_show": ("observer", {"version": ((str,), True)}),
+    "calibration_activate": ("admin", {"version": ((str,), True)}),
 }
 # (op, argument) -> (lowest, highest, unit) allowed, both inclusive
 ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
@@ -56,6 +69,7 @@ ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
     ("events", "since"): (0, 2**63 - 1, "(event id)"),
     ("events", "limit"): (1, 1000, "events"),
     ("lease", "ttl_s"): (MIN_TTL_S, MAX_TTL_S, "s"),
+    ("calibrate", "points"): (12, 64, "points per sweep"),
 }
 MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links are shared
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
@@ -65,7 +79,7 @@ MAX_NAME_CHARS = 100  # an actuator, gate attribute, board or job id; longer nam
 MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
-READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs"}
+READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs", "job", "calibrations", "calibration_show"}
 
 
 @dataclass(frozen=True)
