@@ -427,3 +427,25 @@ def test_watchdog_hold_is_a_loud_caution(tmp_path: Path) -> None:
     said = [str(c) for c in cautions(load_config(write_config(tmp_path, text)))]
     assert said[0].startswith("WARNING: board 'b0' watchdog action is 'hold'")
     assert "stay at their voltage indefinitely" in said[0]
+
+
+def test_the_chip_lattice_names_known_gates_and_monitors_at_places_that_exist(tmp_path: Path) -> None:
+    """chip.lattice: a gate or monitor that does not exist, a top mode past the last pair and a
+    tap after a column that is not there are each reported at their line."""
+    lattice = (
+        "  lattice:\n"
+        "    modes: 2\n"
+        "    columns:\n"
+        "      - {g0: 0, gx: 0}\n"
+        "      - {g0: 1}\n"
+        "    taps: {m0: [0, 1], mz: [5, 0]}\n"
+    )
+    text = replace_line("  monitors:", lattice + "  monitors:")
+    assert problems(text, tmp_path) == [
+        "config.yaml:15: chip.lattice.columns[0].gx: no gate 'gx' in chip.gates",
+        "config.yaml:15: chip.lattice.columns[0].gx: gate 'gx' overlaps another gate of this column (modes 0, 1)",
+        "config.yaml:16: chip.lattice.columns[1].g0: gate 'g0' is placed twice in the lattice",
+        "config.yaml:16: chip.lattice.columns[1].g0: top mode must be a whole number from 0 to 0, got 1",
+        "config.yaml:17: chip.lattice.taps.mz: no monitor 'mz' in chip.monitors",
+        "config.yaml:17: chip.lattice.taps.mz: expected [after column -1..1, mode 0..1], got [5, 0]",
+    ]
