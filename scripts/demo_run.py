@@ -5,7 +5,8 @@
    on free ports of its own and with a run token, so that it can never be confused with a
    daemon someone else started (a real rack's daemon may be on the usual port 7640)
 3. `scripts/route_light.py`: arm, route the laser to a chosen output, read monitors, disarm -
-   it checks the token and the rack's boards before it arms anything
+   it checks the token and the rack's boards before it arms anything; then `meshwarden
+   calibrate` measures the chip in place, and the same script runs again on the new tables
 4. the same daemon through the command line: status, a refused request, estop
 5. SIGTERM: the daemon stops cleanly and says what stays live
 
@@ -17,6 +18,7 @@ from __future__ import annotations
 
 import os
 import secrets
+import shutil
 import signal
 import socket
 import subprocess
@@ -101,6 +103,7 @@ def main() -> int:
     # The demo's simulated rack is new on every run, so the demo's own journal starts afresh too.
     for stale in var.glob("demo-journal.sqlite*"):
         stale.unlink()
+    shutil.rmtree(var / "calibration", ignore_errors=True)  # versions measured on an earlier rack
 
     step("start the daemon on the embedded simulated rack")
     log = var / "demo-daemon.log"
@@ -137,9 +140,18 @@ def main() -> int:
         result = subprocess.run(route)
         if result.returncode != 0:
             return result.returncode
+        ep = ["--endpoint", endpoint, "--telemetry", telemetry]
+        step("calibrate the chip in place: the tables so far are design-nominal (meshwarden calibrate)")
+        cli("arm", *ep)
+        if cli("calibrate", *ep, "--ramp-timeout", "600") != 0:
+            return 1
+        cli("disarm", *ep)
+        step("the same experiment with the measured tables")
+        result = subprocess.run(route)
+        if result.returncode != 0:
+            return result.returncode
 
         step("the command line against the same daemon")
-        ep = ["--endpoint", endpoint, "--telemetry", telemetry]
         cli("status", *ep)
         print("(a request while disarmed is refused, exit code 1:)")
         code = cli("set", "g10.kappa=0.5", *ep)

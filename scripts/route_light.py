@@ -11,6 +11,7 @@ from __future__ import annotations
 
 import argparse
 import sys
+from typing import Any
 
 from meshwarden.client import Client
 from meshwarden.errors import MeshwardenError
@@ -80,6 +81,24 @@ def check_rack(mw: Client, args: argparse.Namespace, path: list[str]) -> str | N
     return None
 
 
+def set_reaching(mw: Client, request: dict[str, float]) -> dict[str, Any]:
+    """Set the request; a coupling ratio one coupler cannot reach is replaced by the highest it
+    reaches (its refusal names the reachable range), and the whole request is sent again."""
+    for _ in range(len(request) + 1):
+        try:
+            applied: dict[str, Any] = mw.set(request)["applied"]
+            return applied
+        except MeshwardenError as exc:
+            reachable = exc.details.get("reachable")
+            actuator = str(exc.details.get("actuator", ""))  # the demo chip: coupler cNN is gate gNN's
+            name = next((n for n in request if n in (actuator, f"g{actuator[1:]}.kappa")), None)
+            if exc.code != "out_of_range" or not reachable or name is None:
+                raise
+            request[name] = float(reachable[1])
+            print(f"  {name}: {exc.message}; asking for {reachable[1]:.3f}")
+    raise MeshwardenError("could not find a request every coupler can reach")
+
+
 def main() -> int:
     parser = argparse.ArgumentParser(description=__doc__.splitlines()[0])
     parser.add_argument("--endpoint", default="tcp://127.0.0.1:7640")
@@ -114,17 +133,17 @@ def main() -> int:
             before = outputs(mw)
             show("outputs with every gate in bar state (all actuators at 0 V):", before, 0)
             request = {f"{g}.kappa": 0.99 for g in path}
-            print(f"\nswitching {', '.join(path)} to cross (kappa 0.99) in one request ...")
-            applied = mw.set(request)["applied"]
+            print(f"\nswitching {', '.join(path)} to cross (kappa 0.99, or the highest each reaches) ...")
+            applied = set_reaching(mw, request)
             for aid, a in sorted(applied.items()):
                 print(f"  {aid}: {a['volts']:.3f} V (code {a['code']}, limit {a['limit_v']:g} V)")
             after = outputs(mw)
             show(f"outputs with the path to mode {args.target} switched:", after, args.target)
             share = after[args.target] / (sum(after) or 1.0)
-            print(
-                f"\n{share:.0%} of the output light now leaves at mode {args.target} "
-                f"(design-nominal calibration on a chip with fabrication spread)"
-            )
+            actuators = mw.get()["actuators"]
+            versions = sorted({str(actuators[f"c{g[1:]}"].get("calibration_version")) for g in path})
+            print(f"\n{share:.0%} of the output light now leaves at mode {args.target}")
+            print(f"(calibration of the path's couplers: {', '.join(versions)})")
             mw.disarm()
             print("disarmed: every output ramped back to 0 V")
     except MeshwardenError as exc:
