@@ -209,10 +209,15 @@ def bench_bus(repeats: int) -> dict[str, float]:
         def monitors() -> object:
             return client.monitors()
 
+        def cycle() -> object:  # what an experiment script's loop costs: set one, read all
+            one_set()
+            return client.monitors()
+
         rss_start = _rss_kib(daemon.pid)
         single = median_wall_seconds(one_set, repeats)
         whole = median_wall_seconds(chip_set, max(20, repeats // 10))
         reads = median_wall_seconds(monitors, repeats)
+        cycles = median_wall_seconds(cycle, repeats)
         client.disarm()
         client.close()
         rss_end = _rss_kib(daemon.pid)
@@ -230,7 +235,9 @@ def bench_bus(repeats: int) -> dict[str, float]:
         daemon.terminate()
         daemon.wait(timeout=20)
     telemetry = bench_telemetry()
+    rack768 = bench_rack768(baseline)
     return {
+        **rack768,
         "baseline_raw_zmq_echo_us": baseline * 1e6,
         "set_one_actuator_us": single * 1e6,
         "set_one_actuator_ratio": single / baseline,
@@ -238,11 +245,126 @@ def bench_bus(repeats: int) -> dict[str, float]:
         "set_whole_chip_ratio": whole / baseline,
         "monitors_read_48_us": reads * 1e6,
         "monitors_read_ratio": reads / baseline,
+        "set_monitors_cycle_us": cycles * 1e6,
+        "set_monitors_cycle_ratio": cycles / baseline,
         "daemon_rss_after_start_mib": rss_start / 1024,
         "daemon_rss_after_requests_mib": rss_end / 1024,
         "daemon_rss_ratio_to_bare_python_with_its_imports": rss_end / rss_bare,
         "daemon_rss_growth_during_requests_ratio": rss_end / rss_start,
         **telemetry,
+    }
+
+
+def write_rack768(folder: Path) -> Path:
+    """A generated 768-channel bench (bench only, beside the demo): 12 boards x 64 outputs, a chip
+    of 384 gates (a coupler and a phase shifter each), design-nominal tables, no optics."""
+    from meshsim.nominal import write_nominal_tables
+    from meshsim.params import parse_params
+    from meshsim.scenario import load_scenario
+
+    folder.mkdir(parents=True, exist_ok=True)
+    lines = ["rack:", "  boards:"]
+    for b in range(12):
+        lines.append(
+            f"    - {{id: b{b:02d}, url: 'meshsim://rack768/b{b:02d}?config={{config_dir}}/rack768.yaml', "
+            f"address: 1, outputs: 64, monitor_inputs: 32, timeout_s: 0.5, retries: 3}}"
+        )
+    lines += [
+        "chip:",
+        "  actuator_defaults:",
+        "    coupler: {limit_volts: 42, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 2 ms}",
+        "    phase: {limit_volts: 44, pull_in_volts: 55, step_limit_volts: 4, dwell_s: 2 ms}",
+        "  actuators:",
+    ]
+    gates = []
+    for b in range(12):
+        for g in range(32):
+            n = b * 32 + g
+            lines.append(f"    - {{id: c{n:03d}, kind: coupler, output: 'b{b:02d}:{2 * g}'}}")
+            lines.append(f"    - {{id: p{n:03d}, kind: phase, output: 'b{b:02d}:{2 * g + 1}'}}")
+            gates.append(f"    - {{id: g{n:03d}, coupler: c{n:03d}, phase: p{n:03d}}}")
+    lines += ["  gates:", *gates]
+    lines += ["calibration: {directory: cal}", "journal: {path: journal.sqlite}"]
+    lines += ["simulator: {seed: 7, laser: {wavelength_nm: 1550, power_mw: 1.0, input_modes: [0]}}"]
+    path = folder / "rack768.yaml"
+    path.write_text("\n".join(lines) + "\n", encoding="utf-8")
+    scenario = load_scenario(path)
+    write_nominal_tables(scenario, parse_params(scenario.simulator), folder / "cal")
+    return path
+
+
+def _start_daemon(config: Path) -> tuple[Any, str, str]:
+    import subprocess
+    import sys
+
+    endpoint = f"tcp://127.0.0.1:{free_port()}"
+    pub = f"tcp://127.0.0.1:{free_port()}"
+    args = [sys.executable, "-m", "meshwarden.cli", "--log-format", "json", "serve", "--config", str(config)]
+    daemon = subprocess.Popen(
+        [*args, "--bind", endpoint, "--pub", pub], stdout=subprocess.DEVNULL, stderr=subprocess.DEVNULL
+    )
+    return daemon, endpoint, pub
+
+
+def bench_rack768(baseline_s: float, repeats: int = 20, estops: int = 30) -> dict[str, float]:
+    """The 768-channel rack in one daemon: a whole-rack set, and the emergency stop's latency
+    (request to reply, which comes once every board has confirmed its zero) while a 768-channel
+    ramp runs and another client floods the daemon with requests."""
+    import tempfile
+    import threading
+
+    from meshwarden.client import Client
+
+    with tempfile.TemporaryDirectory(prefix="meshwarden-rack768-") as tmp:
+        config = write_rack768(Path(tmp))
+        daemon, endpoint, pub = _start_daemon(config)
+        try:
+            client = Client(endpoint, pub, timeout_s=30.0, retries=0)
+            client.wait_ready(60.0)
+            client.arm()
+            every = [f"{k}{n:03d}" for n in range(384) for k in ("c", "p")]
+            counter = iter(range(10**9))
+
+            def rack_set() -> object:
+                i = next(counter)
+                return client.set({a: 1.0 + 0.5 * (i % 2) for a in every}, volts=True)
+
+            rack_set()
+            whole = median_wall_seconds(rack_set, repeats)
+            stop = threading.Event()
+            flooded = [0]
+
+            def flood() -> None:
+                with Client(endpoint, pub, timeout_s=30.0, retries=0) as other:
+                    while not stop.is_set():
+                        other.status()
+                        flooded[0] += 1
+
+            flooder = threading.Thread(target=flood, daemon=True)
+            flooder.start()
+            latencies = []
+            for k in range(estops):
+                client.arm()
+                client.set({a: 20.0 + (k % 3) for a in every}, volts=True, wait=False)  # ~10 steps of ramp
+                time.sleep(0.02 + 0.01 * (k % 5))
+                started = time.perf_counter()
+                client.estop(reason="bench")
+                latencies.append(time.perf_counter() - started)
+            stop.set()
+            flooder.join(timeout=30)
+            client.close()
+        finally:
+            daemon.terminate()
+            daemon.wait(timeout=30)
+    latencies.sort()
+    p99 = latencies[min(len(latencies) - 1, round(0.99 * (len(latencies) - 1)))]
+    return {
+        "set_whole_rack_768_us": whole * 1e6,
+        "set_whole_rack_768_ratio": whole / baseline_s,
+        "estop_latency_p50_ms": statistics.median(latencies) * 1e3,
+        "estop_latency_p99_ms": p99 * 1e3,
+        "estop_trials": float(len(latencies)),
+        "flood_requests_during_estops": float(flooded[0]),
     }
 
 

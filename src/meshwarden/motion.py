@@ -42,6 +42,7 @@ from meshwarden.rackstate import RackState
 
 Progress = Callable[[int, int], None]
 MAX_WORKER_WAIT_S = 0.5  # the board thread waits out at most this much dwell itself
+PLAN_IN_THREAD_ABOVE = 32  # actuators; planning more (the dynamic check per step) takes milliseconds
 
 
 class Motion:
@@ -93,7 +94,11 @@ class Motion:
         boards = {self.state.actuators[a].board.id for a in targets}
         await self.make_certain(boards)
         self.check_boards(boards)
-        plan = plan_ramp(self.state.limits, self.state.current_codes(list(targets)), targets)
+        current = self.state.current_codes(list(targets))
+        if len(targets) > PLAN_IN_THREAD_ABOVE:  # a large plan off the loop: estop is served meanwhile
+            plan = await asyncio.to_thread(plan_ramp, self.state.limits, current, targets)
+        else:
+            plan = plan_ramp(self.state.limits, current, targets)
         if before_first_write is not None:
             await before_first_write(plan)
         last_step = -float("inf")
