@@ -112,6 +112,20 @@ def main() -> None:
         board, index = ("b0", i) if i < 32 else ("b1", i - 32)
         chip.append(f"  - {{id: m{i:02d}, input: '{board}:{index}'}}")
         taps.append((f"m{i:02d}", after, mode))
+    columns = gates_by_column()
+    chip += [
+        "",
+        "# Where the gates and monitor taps sit (the chip's design); calibration routes light with it.",
+        "# A gate at top mode k couples modes k and k+1, then its phase shifter acts on mode k; a tap",
+        "# [after, mode] sees that mode after that column. Light enters at input_modes.",
+        "lattice:",
+        f"  modes: {MODES}",
+        "  input_modes: [0]",
+        "  columns:",
+        *("    - {" + ", ".join(f"g{n:02d}: {top}" for n, top in column) + "}" for column in columns),
+        "  taps:   # monitor: [after column, mode]",
+        *(f"    {mid}: [{after}, {mode}]" for mid, after, mode in taps),
+    ]
     (ROOT / "demo" / "chip.yaml").write_text("\n".join(chip) + "\n", encoding="utf-8")
 
     sim = [
