@@ -464,22 +464,26 @@ class Controller:
     def describe(self, actuator_id: str) -> dict[str, Any]:
         return self._state.describe(actuator_id)
 
+    def board_states(self) -> dict[str, dict[str, Any]]:
+        """Per board: boot count, waiting for restore, faulted, in doubt, zero pending, error rate."""
+        return {
+            b: {
+                "boot_count": s.boot_count,
+                "needs_restore": s.needs_restore,
+                "faulted": s.faulted,
+                "uncertain": s.doubt if s.identity is not None else None,
+                "zero_pending": s.zero_pending,
+                "error_rate": round(s.driver.error_rate, 4),
+            }
+            for b, s in self.boards.items()
+        }
+
     def snapshot(self) -> dict[str, Any]:
         """The state as ``get --json`` reports it."""
         return {
             "armed": self.armed,
             "estopped": self.estopped,
-            "boards": {
-                b: {
-                    "boot_count": s.boot_count,
-                    "needs_restore": s.needs_restore,
-                    "faulted": s.faulted,
-                    "uncertain": s.doubt if s.identity is not None else None,
-                    "zero_pending": s.zero_pending,
-                    "error_rate": round(s.driver.error_rate, 4),
-                }
-                for b, s in self.boards.items()
-            },
+            "boards": self.board_states(),
             "actuators": {aid: self.describe(aid) for aid in self.actuators},
         }
 

@@ -182,9 +182,14 @@ class RackState:
 
     def live_outputs(self) -> tuple[int, float]:
         """How many wired outputs are above zero, and the highest of them in volts."""
-        volts = [self.describe(aid)["volts"] for aid in self.actuators]
-        live = [v for v in volts if v > 0.0]
-        return len(live), max(live, default=0.0)
+        count, highest = 0, 0.0
+        held = {b: st.codes for b, st in self.boards.items()}
+        for act in self.actuators.values():
+            code = held[act.board.id][act.config.output.index]
+            if code:
+                count += 1
+                highest = max(highest, code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits))
+        return count, highest
 
 
 NEVER = -math.inf

@@ -49,8 +49,9 @@ class Dispatcher:
         task.add_done_callback(self._background.discard)
 
     def state(self) -> dict[str, Any]:
-        snap = self.controller.snapshot()
-        return {"armed": snap["armed"], "estopped": snap["estopped"], "boards": snap["boards"]}
+        """Armed, estopped and the boards (not every actuator: status is polled often)."""
+        ctl = self.controller
+        return {"armed": ctl.armed, "estopped": ctl.estopped, "boards": ctl.board_states()}
 
     async def handle(self, request: Request, sender: Sender) -> Any:
         """The result of ``request``, or a MeshwardenError."""
