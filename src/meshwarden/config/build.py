@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from meshwarden.config import fields as f
+from meshwarden.config.driver_options import driver_options
 from meshwarden.config.model import (
     ACTUATOR_KINDS,
     WATCHDOG_ACTIONS,
@@ -46,6 +47,8 @@ BOARD_KEYS = (
     "retries",
     "error_rate_limit",
     "baud_rate",
+    "options",
+    "interlock",
 )
 ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
 ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
@@ -86,7 +89,10 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
         retries=s.get("retries", f.integer(0, 10), defaults.retries),
         error_rate_limit=s.get("error_rate_limit", f.fraction, defaults.error_rate_limit),
         baud_rate=s.get("baud_rate", f.integer(1200, 12_000_000), defaults.baud_rate),
+        interlock=s.get("interlock", f.boolean, defaults.interlock),
     )
+    if board["driver"] is not f.BAD and s.ok:
+        board["options"] = driver_options(p, (*path, "options"), board["driver"], s.value.get("options"))
     if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
         return None
     return BoardConfig(**board)
@@ -212,8 +218,9 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
     if "chip" in top.value and chip.ok and not chip.items("actuators"):
         p.add(("chip", "actuators"), "the chip needs at least one actuator")
 
-    safety = top.sub("safety", ("pull_in_margin",))
+    safety = top.sub("safety", ("pull_in_margin", "interlock_poll_s"))
     margin = safety.get("pull_in_margin", f.fraction, SafetyConfig().pull_in_margin)
+    poll_s = safety.get("interlock_poll_s", f.quantity(SECONDS, maximum=1.0), SafetyConfig().interlock_poll_s)
     journal = top.sub("journal", ("path",))
     journal_path = journal.get("path", f.path_in(p.directory(("journal", "path"))))
     service = _service(p, top.value.get("service"))
@@ -226,7 +233,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         rack=RackConfig(tuple(boards)),
         chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors)),
         journal=JournalConfig(journal_path),
-        safety=SafetyConfig(margin),
+        safety=SafetyConfig(margin, poll_s),
         service=service,
         source=source,
     )
