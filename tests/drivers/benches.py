@@ -51,3 +51,18 @@ def served_board(folder: Path, driver: str, **changes: object) -> Iterator[tuple
         yield board.__class__(**{**board.__dict__, "url": server.ports()["b0"]}), rack
     finally:
         server.stop()
+
+
+def write_two_board_bench(folder: Path, driver: str, **changes: object) -> tuple[Path, str]:
+    """The bench with a second board b1 carrying gate g1 (c1, p1); b0's interlock input is watched."""
+    path, rack = write_driver_bench(folder, driver, interlock=True, **changes)
+    text = path.read_text(encoding="utf-8")
+    head, _, rest = text.partition("chip:\n")
+    b0 = head.split("    - id: b0\n", 1)[1]
+    b1 = b0.replace("/b0?", "/b1?").replace("      interlock: true\n", "")
+    head = head + "    - id: b1\n" + b1
+    rest = rest.replace('output: "b0:4"', 'output: "b1:4"').replace('output: "b0:5"', 'output: "b1:5"')
+    path.write_text(head + "chip:\n" + rest, encoding="utf-8")
+    scenario = load_scenario(path)
+    write_nominal_tables(scenario, parse_params(scenario.simulator), folder / "cal")
+    return path, rack

@@ -1,0 +1,84 @@
+"""Opening a hardware interlock during a ramp stops the whole rack and latches (ISO 13850 style):
+every board at zero, ``arm`` refused until the contact is closed and an operator arms again.
+Observed at the simulated boards, for both drivers."""
+
+from __future__ import annotations
+
+import asyncio
+import time
+from pathlib import Path
+
+import pytest
+
+import meshsim.urlhandler.protocol_meshsim  # noqa: F401
+from meshsim import inprocess
+from meshwarden.api import open_controller
+from meshwarden.config import load_config
+from meshwarden.errors import MeshwardenError, NotArmedRefused
+from meshwarden.interlocks import InterlockOpenRefused
+from meshwarden.journal import Journal
+from tests.drivers.benches import DRIVERS, write_two_board_bench
+
+
+async def _until(condition: object, what: str, limit_s: float = 20.0) -> None:
+    """Wait for ``condition()`` (a wait with a generous cap, not a timing assertion)."""
+    deadline = time.monotonic() + limit_s
+    while not condition():  # type: ignore[operator]
+        assert time.monotonic() < deadline, f"gave up waiting for {what}"
+        await asyncio.sleep(0.005)
+
+
+@pytest.mark.parametrize("driver", DRIVERS)
+def test_interlock_opening_during_a_ramp_zeroes_every_board_and_blocks_arm(tmp_path: Path, driver: str) -> None:
+    """The interlock on b0 opens mid-ramp: both boards end at zero with nothing written after the
+    zero, arm is refused while it is open, and after it closes the stop stays latched until armed."""
+    path, name = write_two_board_bench(tmp_path, driver, dwell="20 ms")
+    config = load_config(path)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(name)
+            b0, b1 = rack.board("b0"), rack.board("b1")
+            await ctl.arm()
+            ramp = asyncio.create_task(ctl.set({"c0": 30.0, "p0": 40.0, "c1": 30.0, "p1": 40.0}, volts=True))
+            await _until(lambda: sum(e[1] == "write" for e in b1.write_log) >= 3, "the ramp to be under way")
+            opened_at = rack.clock.now()
+            rack.set_interlock("b0", True)
+            await _until(lambda: ctl.estopped, "the emergency stop")
+            with pytest.raises(MeshwardenError):
+                await ramp  # the stop ended the ramp's claim
+            assert not ramp.cancelled()
+            for board in (b0, b1):
+                assert board.codes.tolist() == [0] * 16
+                after = [e for e in board.write_log if e[0] >= opened_at]
+                zeros = [i for i, e in enumerate(after) if e[1] == "zero" or (e[1] == "write" and not any(e[3]))]
+                assert zeros, "no zero reached the board after the interlock opened"
+                raised = [e for e in after[zeros[0] :] if e[1] == "write" and any(e[3])]
+                assert raised == [], "an output was raised after the stop"
+            snap = ctl.snapshot()
+            assert snap["boards"]["b0"]["interlock"] == "open" and snap["boards"]["b1"]["interlock"] is None
+
+            writes_before = (len(b0.write_log), len(b1.write_log))
+            with pytest.raises(InterlockOpenRefused, match="interlock of board.*b0 \\(open\\)"):
+                await ctl.arm()
+            assert not ctl.armed and ctl.estopped
+            assert (len(b0.write_log), len(b1.write_log)) == writes_before
+
+            rack.set_interlock("b0", False)
+            await _until(lambda: ctl.snapshot()["boards"]["b0"]["interlock"] == "closed", "the closed contact")
+            assert ctl.estopped and not ctl.armed  # closing the contact restarts nothing
+            with pytest.raises(NotArmedRefused):
+                await ctl.set({"c0": 5.0}, volts=True)
+            await ctl.arm()  # the operator's deliberate re-arm
+            await ctl.set({"c0": 5.0}, volts=True)
+            assert b0.codes[0] > 0
+
+    asyncio.run(scenario())
+    inprocess.remove(name)
+    with Journal(config.journal.path) as journal:
+        kinds = [e.kind for e in journal.events() if e.kind.startswith("interlock") or e.kind == "estop"]
+        estop = next(e for e in journal.events(kind="estop"))
+        refused = [e for e in journal.events(kind="refused") if e.detail.get("reason") == "interlock open"]
+    assert kinds[:3] == ["interlock_open", "estop", "interlock_closed"]
+    assert "interlock open on board(s) b0" in estop.detail["reason"]
+    assert len(refused) == 1
