@@ -59,7 +59,7 @@ def test_interlock_opening_during_a_ramp_zeroes_every_board_and_blocks_arm(tmp_p
             assert snap["boards"]["b0"]["interlock"] == "open" and snap["boards"]["b1"]["interlock"] is None
 
             writes_before = (len(b0.write_log), len(b1.write_log))
-            with pytest.raises(InterlockOpenRefused, match="interlock of board.*b0 \\(open\\)"):
+            with pytest.raises(InterlockOpenRefused, match=r"interlock of board.*b0 \(open\)"):
                 await ctl.arm()
             assert not ctl.armed and ctl.estopped
             assert (len(b0.write_log), len(b1.write_log)) == writes_before
