@@ -133,7 +133,7 @@ def test_interlock_contact_in_both_personalities() -> None:
 
 def test_bad_personality_and_interlock_specs_are_refused() -> None:
     """An unknown personality and an interlock on a missing board are clear errors."""
-    with pytest.raises(ParamsError, match="simulator.personality: expected one of reference, scpi"):
+    with pytest.raises(ParamsError, match=r"simulator\.personality: expected one of reference, scpi"):
         parse_params({"personality": "modbus"})
     with pytest.raises(FaultSpecError, match="no board 'b9'"):
         SimRack(small_scenario(), small_params(), ManualClock(), parse_faults("interlock:b9@1"))
