@@ -52,7 +52,7 @@ def test_voltage_output_and_readback_reach_the_firmware(scpi: tuple[SimRack, Man
     lsb = 60.0 / 65536
     assert ask(rack, f"SOUR1:VOLT {1000 * lsb:.6f};:SOUR1:VOLT?;:OUTP1?") == f"{1000 * lsb:.6f};0"
     assert board.codes[0] == 0  # output off: 0 V out
-    assert ask(rack, 'OUTP1 ON;:OUTP1?;:SYST:ERR?') == '1;0,"No error"'
+    assert ask(rack, "OUTP1 ON;:OUTP1?;:SYST:ERR?") == '1;0,"No error"'
     assert board.codes[0] == 1000 and board.write_log[-1][1:] == ("write", 0, (1000,))
     # long forms and any case are the same header (SCPI 1999 Vol. 1 section 6.2.1, from memory)
     ask(rack, f"source2:voltage:level {2000 * lsb:.6f};:OUTPut2:STATe ON")
