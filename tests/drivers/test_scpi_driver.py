@@ -104,7 +104,7 @@ def test_expect_model_refuses_another_instrument(bench: tuple[BoardConfig, str])
     driver = create_driver(dataclasses.replace(board, options=options))
     driver.open()
     try:
-        with pytest.raises(MeshwardenError, match="reports model 'MW-HVD64-SIM'.*expects 'HVS-999'"):
+        with pytest.raises(MeshwardenError, match=r"reports model 'MW-HVD64-SIM'.*expects 'HVS-999'"):
             driver.identify()
     finally:
         driver.close()
