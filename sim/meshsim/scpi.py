@@ -245,6 +245,7 @@ class ScpiBoard:
             self.errors.clear()
             self.esr = 0
             self._firmware(m.ClearFaults(), now)
+            self.programmed[self.enabled] = self.board.codes[self.enabled]  # where a watchdog left them
             return None
         if head == "*ESR" and unit.query:
             value, self.esr = self.esr, 0
@@ -268,7 +269,7 @@ class ScpiBoard:
         if (len(rest) == 2 and not _keyword(rest[1], "LEVel")) or len(rest) > 2:
             raise ScpiError(-113)
         if unit.query:
-            return _format(float(self.programmed[ch] * lsb))
+            return _format(self._setpoint(ch, now) * lsb)
         volts = _number(unit)
         code = round(volts / lsb)
         if volts < 0.0 or code > (1 << self.board.spec.dac_bits) - 1:
@@ -279,6 +280,13 @@ class ScpiBoard:
             self._write(ch, code, now)
         self.programmed[ch] = code
         return None
+
+    def _setpoint(self, ch: int, now: float) -> int:
+        """The channel's setpoint as a code: lowered by the firmware's watchdog ramp while the
+        output is on (the instrument's own action changes its setpoint, as a real one reports)."""
+        if not self.enabled[ch]:
+            return int(self.programmed[ch])
+        return round(float(self.board.commanded_volts(now)[ch]) / self.board.lsb_volts)
 
     def _output(self, ch: int, unit: _Unit, now: float) -> str | None:
         if unit.query:

@@ -378,3 +378,13 @@ def test_interlock_flag_and_poll_interval(tmp_path: Path) -> None:
     text = MAIN.replace("      full_scale_volts: 60", "      full_scale_volts: 60\n      interlock: true")
     config = load_config(write_config(tmp_path, text + "safety:\n  interlock_poll_s: 20 ms\n"))
     assert config.rack.boards[0].interlock and config.safety.interlock_poll_s == pytest.approx(0.02)
+
+
+def test_interlock_on_a_scpi_board_needs_its_query(tmp_path: Path) -> None:
+    """A watched interlock on an instrument with no interlock query could never be seen open."""
+    text = replace_line(
+        "      full_scale_volts: 60", SCPI_BOARD + "        interlock_query: null\n      interlock: true"
+    )
+    assert problems(text, tmp_path) == [
+        "config.yaml:9: rack.boards[0].interlock: an interlock needs a way to read it: options.interlock_query is null"
+    ]

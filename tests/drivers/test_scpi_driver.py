@@ -139,3 +139,22 @@ def test_corrupted_line_never_leaves_a_wrong_certain_record(bench: tuple[BoardCo
         driver.close()
     assert checked > 10 and failed > 0  # the corruption did reach the driver
     assert max(max(e[3], default=0) for e in sim.write_log) <= 3000
+
+
+def test_watchdog_ramp_is_seen_through_the_setpoint_queries(bench: tuple[BoardConfig, str]) -> None:
+    """When the instrument's watchdog ramps the outputs down, the driver reads what is really out
+    and the status reports the trip; clearing keeps the outputs where the ramp left them."""
+    board, name = bench
+    driver = opened(board)
+    try:
+        driver.clear_faults()
+        driver.configure_watchdog(0.3, "ramp_to_zero")
+        assert driver.write_codes(0, (3000, 2000)) == (3000, 2000)
+        time.sleep(0.8)  # no traffic: the watchdog trips at 0.3 s and ramps 2.7 V at 20 V/s
+        assert driver.status().watchdog_tripped
+        assert driver.read_codes(0, 2) == (0, 0)
+        driver.clear_faults()
+        assert driver.read_codes(0, 2) == (0, 0) and not driver.status().watchdog_tripped
+        assert inprocess.get(name).board("b0").codes[:2].tolist() == [0, 0]
+    finally:
+        driver.close()

@@ -24,6 +24,7 @@ from meshwarden.config.model import (
     MonitorConfig,
     RackConfig,
     SafetyConfig,
+    ScpiOptions,
     ServiceConfig,
     WatchdogConfig,
 )
@@ -93,6 +94,9 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
     )
     if board["driver"] is not f.BAD and s.ok:
         board["options"] = driver_options(p, (*path, "options"), board["driver"], s.value.get("options"))
+        options = board["options"]
+        if board["interlock"] is True and isinstance(options, ScpiOptions) and options.interlock_query is None:
+            p.add((*path, "interlock"), "an interlock needs a way to read it: options.interlock_query is null")
     if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
         return None
     return BoardConfig(**board)

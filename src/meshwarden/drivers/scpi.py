@@ -177,12 +177,22 @@ class ScpiDriver(BoardDriver):
     # ------------------------------------------------------------------ the exchange
 
     def _exchange(self, request: m.Message) -> m.Message:
+        """The handler of ``request``; a response whose units cannot be read as their data (a
+        garbled number) is one more failed attempt, and the whole request is sent again - every
+        request is a query or an absolute setpoint, so running it twice is running it once."""
         handler: Callable[[m.Message], m.Message] = getattr(self, f"_on_{type(request).__name__}")
-        try:
-            return handler(request)
-        except ProtocolError as exc:  # a response that parsed as units but not as its data
-            self.note_attempt(False)
-            raise ProtocolError(f"board {self.config.id}: {exc.message}", board=self.config.id) from exc
+        emergency = request.CODE == m.Command.ZERO_ALL
+        last: ProtocolError | None = None
+        for _ in range(self.config.retries + 1):
+            if self.abort.is_set() and not emergency:
+                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
+            try:
+                return handler(request)
+            except ProtocolError as exc:
+                self.note_attempt(False)
+                last = exc
+        assert last is not None
+        raise ProtocolError(f"board {self.config.id}: {last.message}", board=self.config.id) from last
 
     def _channel(self, index: int) -> int:
         return index + self.options.channel_base
