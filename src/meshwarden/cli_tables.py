@@ -40,6 +40,7 @@ def render(op: str, result: Any) -> str:
         boards = ", ".join(
             f"{b}: boot {s['boot_count']}{' FAULTED' if s['faulted'] else ''}"
             f"{' needs restore' if s['needs_restore'] else ''}"
+            f"{'' if s.get('interlock') is None else ', interlock ' + str(s['interlock'])}"
             for b, s in result["boards"].items()
         )
         jobs, leases = len(result.get("jobs", [])), len(result.get("leases", {}))

@@ -82,3 +82,19 @@ def test_interlock_opening_during_a_ramp_zeroes_every_board_and_blocks_arm(tmp_p
     assert kinds[:3] == ["interlock_open", "estop", "interlock_closed"]
     assert "interlock open on board(s) b0" in estop.detail["reason"]
     assert len(refused) == 1
+
+
+def test_status_table_shows_each_watched_interlock() -> None:
+    """The command line's status line names the interlock of a board that has one, and only then."""
+    from meshwarden.cli_tables import render
+
+    board = {"boot_count": 1, "faulted": False, "needs_restore": False}
+    text = render(
+        "status",
+        {
+            "armed": False,
+            "estopped": True,
+            "boards": {"b0": {**board, "interlock": "open"}, "b1": {**board, "interlock": None}},
+        },
+    )
+    assert "b0: boot 1, interlock open" in text and "b1: boot 1," in text and "b1: boot 1, interlock" not in text
