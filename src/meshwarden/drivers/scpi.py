@@ -34,14 +34,11 @@ driver counts the power-on bit of the standard event status register, from 0 at 
 
 from __future__ import annotations
 
-import contextlib
 import time
 from collections.abc import Callable
 
-import serial
-
 from meshwarden.config.model import TERMINATIONS, BoardConfig, ScpiOptions
-from meshwarden.drivers.base import BoardDriver
+from meshwarden.drivers.port_link import PortLinkDriver
 from meshwarden.drivers.scpi_text import (
     QueueEntry,
     format_volts,
@@ -53,25 +50,20 @@ from meshwarden.drivers.scpi_text import (
     render,
     split_units,
 )
-from meshwarden.errors import LinkError, LinkTimeout, MeshwardenError, ProtocolError, RefusedError
+from meshwarden.errors import MeshwardenError, ProtocolError, RefusedError
 from meshwarden.protocol import messages as m
 from meshwarden.protocol.messages import NakReason, StatusFlag, WatchdogAction
-from meshwarden.transport import open_port
 
-READ_SLICE_S = 0.02
-BACKOFF_START_S = 0.05
-BACKOFF_MAX_S = 2.0
 POWER_ON_BIT = 0x80  # IEEE 488.2 section 11.5.1: standard event status register bit 7, PON
 MAX_QUEUE_DRAIN = 32
 
 
-class ScpiDriver(BoardDriver):
+class ScpiDriver(PortLinkDriver):
     """A board (an instrument) commanded in SCPI text."""
 
     def __init__(self, config: BoardConfig) -> None:
         super().__init__(config)
         self.options = config.options if isinstance(config.options, ScpiOptions) else ScpiOptions()
-        self.port: serial.SerialBase | None = None
         self._write_end = TERMINATIONS[self.options.write_termination].encode("ascii")
         self._read_end = TERMINATIONS[self.options.read_termination].encode("ascii")
         self._lsb_volts = config.full_scale_volts / (1 << config.dac_bits)
@@ -79,77 +71,19 @@ class ScpiDriver(BoardDriver):
         self._boots = 0
         self._power_on = False
         self._opened_at = time.monotonic()
-        self._backoff = BACKOFF_START_S
-        self._next_open = 0.0
-        self._limits_sent = False
         self.last_errors: list[QueueEntry] = []  # the instrument's last error queue entries
 
     # ------------------------------------------------------------------ link
 
-    def _open_link(self) -> None:
-        self._close_link()
-        try:
-            self.port = open_port(self.config.url, READ_SLICE_S, baud_rate=self.config.baud_rate)
-        except (serial.SerialException, OSError, ValueError) as exc:
-            raise LinkError(
-                f"board {self.config.id}: cannot open {self.config.url}: {exc}", board=self.config.id
-            ) from exc
-        self.port.reset_input_buffer()
+    def _link_opened(self) -> None:
         self._opened_at = time.monotonic()
-        self._backoff = BACKOFF_START_S
-
-    def _close_link(self) -> None:
-        if self.port is not None:
-            with contextlib.suppress(serial.SerialException, OSError):
-                self.port.close()
-            self.port = None
-
-    def _reconnect(self) -> bool:
-        now = time.monotonic()
-        if now < self._next_open:
-            return False
-        try:
-            self._open_link()
-            self.log.warning("link reopened")
-            return True
-        except LinkError:
-            self._next_open = now + self._backoff
-            self._backoff = min(self._backoff * 2, BACKOFF_MAX_S)
-            return False
 
     def _transact(self, units: list[str], responses: int, emergency: bool = False) -> list[str]:
         """Send one line of program message units and return its ``responses`` response units;
         retried whole on a timeout, a garbled or misshapen response, or a lost link."""
         line = ";:".join(u.lstrip(":") for u in units).encode("ascii") + self._write_end
-        last_error = "no reply"
-        for attempt in range(self.config.retries + 1):
-            if self.abort.is_set() and not emergency:
-                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
-            if self.port is None and not self._reconnect():
-                self.note_attempt(False)
-                last_error = "link down"
-                time.sleep(min(self.config.timeout_s, max(self._next_open - time.monotonic(), 0.0)))
-                continue
-            try:
-                reply = self._attempt(line, responses, emergency)
-            except (serial.SerialException, OSError) as exc:
-                self.log.warning("link lost", error=str(exc))
-                self._close_link()
-                self.note_attempt(False)
-                last_error = f"link lost: {exc}"
-                continue
-            if isinstance(reply, str):
-                self.note_attempt(False)
-                last_error = reply
-                if attempt < self.config.retries:
-                    self.log.debug("retry", line=line[:60].decode("ascii", "replace"), reason=reply)
-                continue
-            self.note_attempt(True)
-            return reply
-        raise LinkTimeout(
-            f"board {self.config.id}: SCPI line failed after {self.config.retries + 1} attempts ({last_error})",
-            board=self.config.id,
-        )
+        what = f"SCPI line {line[:40].decode('ascii', 'replace')!r}"
+        return self._with_retries(lambda: self._attempt(line, responses, emergency), what, emergency)
 
     def _attempt(self, line: bytes, responses: int, emergency: bool) -> list[str] | str:
         """One send and wait: the response units, or a short reason to retry."""
@@ -170,8 +104,7 @@ class ScpiDriver(BoardDriver):
                     return split_units(text.decode("ascii"), responses)
                 except (UnicodeDecodeError, ProtocolError) as exc:
                     return f"garbled response ({exc})"
-            if self.abort.is_set() and not emergency:
-                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
+            self._check_abort(emergency)
         return "timeout"
 
     # ------------------------------------------------------------------ the exchange
@@ -184,8 +117,7 @@ class ScpiDriver(BoardDriver):
         emergency = request.CODE == m.Command.ZERO_ALL
         last: ProtocolError | None = None
         for _ in range(self.config.retries + 1):
-            if self.abort.is_set() and not emergency:
-                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
+            self._check_abort(emergency)
             try:
                 return handler(request)
             except ProtocolError as exc:
