@@ -23,16 +23,10 @@ import asyncio
 from collections.abc import Awaitable, Callable
 from typing import Any
 
-from meshwarden.errors import AbortedError, RefusedError
+from meshwarden.errors import AbortedError, InterlockOpenRefused
 from meshwarden.rackstate import RackState
 
 CLOSED, OPEN = "closed", "open"
-
-
-class InterlockOpenRefused(RefusedError):
-    """``arm`` while an interlock is open or unreadable: close it first, then arm again."""
-
-    code = "interlock_open"
 
 
 class InterlockWatch:

@@ -14,8 +14,7 @@ import meshsim.urlhandler.protocol_meshsim  # noqa: F401
 from meshsim import inprocess
 from meshwarden.api import open_controller
 from meshwarden.config import load_config
-from meshwarden.errors import MeshwardenError, NotArmedRefused
-from meshwarden.interlocks import InterlockOpenRefused
+from meshwarden.errors import InterlockOpenRefused, MeshwardenError, NotArmedRefused
 from meshwarden.journal import Journal
 from tests.drivers.benches import DRIVERS, write_two_board_bench
 
@@ -115,3 +114,27 @@ def test_status_table_shows_each_watched_interlock() -> None:
         },
     )
     assert "b0: boot 1, interlock open, b1: boot 1\n" in text
+
+
+def test_interlock_over_the_bus(tmp_path: Path) -> None:
+    """Through the daemon and the client library: an open interlock shows in status, the stop is
+    latched, and arm is refused with the interlock_open code until the contact is closed."""
+    from meshwarden.client import Client
+    from meshwarden.testing import running_daemon
+
+    path, name = write_two_board_bench(tmp_path, "reference")
+    with running_daemon(load_config(path)) as (endpoint, pub), Client(endpoint, pub, timeout_s=10.0) as mw:
+        mw.arm()
+        inprocess.get(name).set_interlock("b0", True)
+        deadline = time.monotonic() + 20
+        while not mw.status()["estopped"]:
+            assert time.monotonic() < deadline, "the daemon did not stop"
+            time.sleep(0.01)
+        assert mw.status()["boards"]["b0"]["interlock"] == "open"
+        with pytest.raises(InterlockOpenRefused) as refused:
+            mw.arm()
+        assert refused.value.code == "interlock_open" and refused.value.details["interlocks"] == {"b0": "open"}
+        inprocess.get(name).set_interlock("b0", False)
+        mw.arm()
+        assert mw.status()["armed"] and mw.status()["boards"]["b0"]["interlock"] == "closed"
+    inprocess.remove(name)
