@@ -4,14 +4,17 @@ included, and fails where a board breaks the contract."""
 from __future__ import annotations
 
 import dataclasses
+import subprocess
+import sys
 from pathlib import Path
 
 import pytest
 
 from meshsim.faults import Fault
 from meshsim.rack import SimRack
+from meshwarden.drivers import create_driver
 from meshwarden.testing import LinkControl, run_conformance
-from tests.drivers.benches import DRIVERS, served_board
+from tests.drivers.benches import DRIVERS, served_board, write_driver_bench
 
 
 def _silencer(rack: SimRack, board: str) -> LinkControl:
@@ -36,15 +39,38 @@ def test_conformance_suite_passes_over_a_pty(tmp_path: Path, driver: str) -> Non
 
 @pytest.mark.parametrize("driver", DRIVERS)
 def test_conformance_suite_passes_under_link_faults(tmp_path: Path, driver: str) -> None:
-    """With lost, repeated, garbled and delayed replies on the line, the suite still passes:
-    the driver retries and verifies by readback (the link checks are left out here)."""
+    """With lost, repeated, garbled and delayed replies on the line (and, for the reference
+    protocol, corrupted frames and replies from a wrong address), the suite still passes: the
+    driver retries and verifies by readback (the link checks are left out here)."""
+    kinds = ["drop", "repeat", "garbage"] + (["corrupt", "wrong_address"] if driver == "reference" else [])
     with served_board(tmp_path, driver, timeout_s=0.1, retries=6, error_rate_limit=0.9) as (board, rack):
-        rack.inject(Fault("drop", "b0", 0.03))
-        rack.inject(Fault("repeat", "b0", 0.03))
-        rack.inject(Fault("garbage", "b0", 0.03))
-        rack.inject(Fault("delay", "b0", 0.03, 0.15))
-        report = run_conformance(board)
+        for kind in kinds:
+            rack.inject(Fault(kind, "b0", 0.04))
+        rack.inject(Fault("delay", "b0", 0.04, 0.15))
+        d = create_driver(board)
+        attempts: list[bool] = []
+        note = d.note_attempt
+        d.note_attempt = lambda ok: (attempts.append(ok), note(ok))  # type: ignore[method-assign]
+        report = run_conformance(board, driver=d)
     assert report.ok, report.text()
+    assert set(report.results) >= {"identify", "write_and_read_back", "range_refusals", "monitor_reads"}
+    assert attempts.count(False) > 0, "no fault reached the driver"
+
+
+def test_conformance_from_the_command_line(tmp_path: Path) -> None:
+    """`python -m meshwarden.conformance CONFIG BOARD` prints every check and exits 0 when none
+    failed (the link checks skipped: nothing can pull the cable); an unknown board exits 2."""
+    path, _ = write_driver_bench(tmp_path, "scpi")
+    done = subprocess.run(
+        [sys.executable, "-m", "meshwarden.conformance", str(path), "b0"], capture_output=True, text=True, timeout=120
+    )
+    assert done.returncode == 0, done.stdout + done.stderr
+    assert "write_and_read_back" in done.stdout and "skipped: no LinkControl" in done.stdout
+    assert "failed" not in done.stdout
+    missing = subprocess.run(
+        [sys.executable, "-m", "meshwarden.conformance", str(path), "b7"], capture_output=True, text=True, timeout=120
+    )
+    assert missing.returncode == 2 and "no board 'b7'" in missing.stderr and "Traceback" not in missing.stderr
 
 
 def test_conformance_suite_reports_a_board_that_is_not_the_configured_one(tmp_path: Path) -> None:
