@@ -138,3 +138,23 @@ def test_interlock_over_the_bus(tmp_path: Path) -> None:
         mw.arm()
         assert mw.status()["armed"] and mw.status()["boards"]["b0"]["interlock"] == "closed"
     inprocess.remove(name)
+
+
+def test_an_interlock_found_open_at_start_stops_at_once(tmp_path: Path) -> None:
+    """A contact already open when the daemon starts latches the stop right away: every board is
+    zeroed (outputs adopted from an earlier run included) and arm is refused."""
+    from meshsim.rack import SimRack
+
+    path, name = write_two_board_bench(tmp_path, "reference")
+    rack = inprocess.register(name, SimRack.from_config(path, faults="interlock:b0"))
+    config = load_config(path)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await _until(lambda: ctl.estopped and rack.board("b1").write_log[-1][1] == "zero", "the stop")
+            with pytest.raises(InterlockOpenRefused):
+                await ctl.arm()
+
+    asyncio.run(scenario())
+    inprocess.remove(name)
+    assert [e[1] for e in rack.board("b0").write_log][-1] == "zero"
