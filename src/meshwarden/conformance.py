@@ -286,9 +286,9 @@ def run_conformance(
     driver (or ``driver``); the outputs are zeroed and the link closed at the end."""
     if url is not None:
         board = dataclasses.replace(board, url=url)
-    d = driver or create_driver(board)
     report = ConformanceReport(board.id)
     try:
+        d = driver or create_driver(board)
         d.open()
     except MeshwardenError as exc:
         report.results["open"] = f"failed: {exc}"
@@ -306,12 +306,10 @@ def run_conformance(
                 report.results[name] = f"failed: {exc}"
                 d.abort.clear()
                 d.recover()
-        with_zero = d.faulted
-        if not with_zero:
-            try:
-                d.zero_all()
-            except MeshwardenError as exc:
-                report.results["final_zero"] = f"failed: {exc}"
+        try:
+            d.emergency_zero()  # leave the board at zero whatever happened, faulted or not
+        except MeshwardenError as exc:
+            report.results["final_zero"] = f"failed: {exc}"
     finally:
         d.close()
     return report
