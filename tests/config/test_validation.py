@@ -361,6 +361,9 @@ def test_reference_driver_takes_no_options(tmp_path: Path) -> None:
 
 def test_other_driver_options_are_kept_for_the_driver(tmp_path: Path) -> None:
     """A driver from another package gets its options mapping as written."""
+    from meshwarden.drivers import register_driver
+
+    register_driver("acme64", "meshwarden.testing", "RecordingDriver")  # as an entry point would
     text = replace_line(
         "      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: acme64\n      options: {slot: 3}"
     )
@@ -388,3 +391,11 @@ def test_interlock_on_a_scpi_board_needs_its_query(tmp_path: Path) -> None:
     assert problems(text, tmp_path) == [
         "config.yaml:9: rack.boards[0].interlock: an interlock needs a way to read it: options.interlock_query is null"
     ]
+
+
+def test_unknown_driver_is_named_with_the_known_ones(tmp_path: Path) -> None:
+    """A driver name no package provides is an error at its line, with the close known name."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpii")
+    (issue,) = problems(text, tmp_path)
+    assert issue.startswith("config.yaml:6: rack.boards[0].driver: unknown board driver 'scpii' (known: ")
+    assert issue.endswith("(did you mean 'scpi'?)") and "reference" in issue
