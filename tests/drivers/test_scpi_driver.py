@@ -158,3 +158,24 @@ def test_watchdog_ramp_is_seen_through_the_setpoint_queries(bench: tuple[BoardCo
         assert inprocess.get(name).board("b0").codes[:2].tolist() == [0, 0]
     finally:
         driver.close()
+
+
+def test_a_lost_event_status_response_puts_the_outputs_in_doubt(bench: tuple[BoardConfig, str]) -> None:
+    """*ESR? clears what it reads, so when a heartbeat's response is lost a reset may have gone
+    unseen: the outputs are in doubt until every one has been read again."""
+    board, name = bench
+    driver = opened(dataclasses.replace(board, timeout_s=0.05, retries=1, error_rate_limit=0.99))
+    try:
+        driver.read_codes(0, board.outputs)
+        assert driver.outputs_seen()[1] is None
+        rack = inprocess.get(name)
+        rack.inject(Fault("drop", "b0", 1.0))
+        with pytest.raises(MeshwardenError):
+            driver.heartbeat()
+        rack.inject(Fault("drop", "b0", 0.0))
+        driver.heartbeat()
+        assert driver.outputs_seen()[1] == "a response that may have reported a power-on was lost"
+        driver.read_codes(0, board.outputs)
+        assert driver.outputs_seen()[1] is None
+    finally:
+        driver.close()

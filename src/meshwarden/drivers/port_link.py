@@ -36,6 +36,7 @@ class PortLinkDriver(BoardDriver):
         self.port: serial.SerialBase | None = None
         self._backoff = BACKOFF_START_S
         self._next_open = 0.0
+        self.attempts_failed = 0  # every failed attempt since the driver was made (never windowed)
 
     def _open_link(self) -> None:
         self._close_link()  # never two handles on one port (an exclusive lock would refuse the second)
@@ -72,6 +73,11 @@ class PortLinkDriver(BoardDriver):
             self._backoff = min(self._backoff * 2, BACKOFF_MAX_S)
             return False
 
+    def _failed(self) -> None:
+        """One failed attempt: counted here and in the error rate."""
+        self.attempts_failed += 1
+        self.note_attempt(False)
+
     def _check_abort(self, emergency: bool) -> None:
         if self.abort.is_set() and not emergency:
             raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
@@ -83,7 +89,7 @@ class PortLinkDriver(BoardDriver):
         for number in range(self.config.retries + 1):
             self._check_abort(emergency)
             if self.port is None and not self._reconnect():
-                self.note_attempt(False)
+                self._failed()
                 last_error = "link down"
                 time.sleep(min(self.config.timeout_s, max(self._next_open - time.monotonic(), 0.0)))
                 continue
@@ -92,11 +98,11 @@ class PortLinkDriver(BoardDriver):
             except (serial.SerialException, OSError) as exc:
                 self.log.warning("link lost", error=str(exc))
                 self._close_link()
-                self.note_attempt(False)
+                self._failed()
                 last_error = f"link lost: {exc}"
                 continue
             if isinstance(reply, str):
-                self.note_attempt(False)
+                self._failed()
                 last_error = reply
                 if number < self.config.retries:
                     self.log.debug("retry", request=what, reason=reply)

@@ -56,6 +56,7 @@ from meshwarden.protocol.messages import NakReason, StatusFlag, WatchdogAction
 
 POWER_ON_BIT = 0x80  # IEEE 488.2 section 11.5.1: standard event status register bit 7, PON
 MAX_QUEUE_DRAIN = 32
+READS_EVENT_STATUS = (m.Command.IDENTIFY, m.Command.HEARTBEAT, m.Command.STATUS)
 
 
 class ScpiDriver(PortLinkDriver):
@@ -115,16 +116,23 @@ class ScpiDriver(PortLinkDriver):
         request is a query or an absolute setpoint, so running it twice is running it once."""
         handler: Callable[[m.Message], m.Message] = getattr(self, f"_on_{type(request).__name__}")
         emergency = request.CODE == m.Command.ZERO_ALL
-        last: ProtocolError | None = None
-        for _ in range(self.config.retries + 1):
-            self._check_abort(emergency)
-            try:
-                return handler(request)
-            except ProtocolError as exc:
-                self.note_attempt(False)
-                last = exc
-        assert last is not None
-        raise ProtocolError(f"board {self.config.id}: {last.message}", board=self.config.id) from last
+        failed_before = self.attempts_failed
+        try:
+            last: ProtocolError | None = None
+            for _ in range(self.config.retries + 1):
+                self._check_abort(emergency)
+                try:
+                    return handler(request)
+                except ProtocolError as exc:
+                    self._failed()
+                    last = exc
+            assert last is not None
+            raise ProtocolError(f"board {self.config.id}: {last.message}", board=self.config.id) from last
+        finally:
+            if request.CODE in READS_EVENT_STATUS and self.attempts_failed > failed_before:
+                # *ESR? clears what it reads: a lost response may have carried the power-on bit
+                # of a reset we then never see. Read every output again before trusting them.
+                self._doubted("a response that may have reported a power-on was lost")
 
     def _channel(self, index: int) -> int:
         return index + self.options.channel_base
