@@ -229,6 +229,8 @@ def bench_interlock(repeats: int) -> dict[str, float]:
         for t, kind, first, values in list(sim.write_log):
             if kind in ("boot", "zero", "ramped_to_zero"):
                 codes = [0] * len(codes)
+            elif kind == "output_off":
+                codes[first] = 0
             elif kind == "write":
                 codes[first : first + len(values)] = values
             if t >= since and not any(codes):

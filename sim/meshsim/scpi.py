@@ -20,7 +20,8 @@ case; program message units separated by ``;``, each taken as rooted, a leading 
     SYSTem:WDOG <seconds>,OFF|HOLD|ZERO    SYSTem:WDOG:TRIPped?
 
 Outputs are off at power-on (as instruments come up); an output that is off drives 0 V and
-keeps its programmed voltage for when it is switched on. ``*CLS`` also clears the firmware's
+keeps its programmed voltage for when it is switched on. Switching an output off is logged in
+the firmware's ``write_log`` as ``(time, "output_off", channel, ())``. ``*CLS`` also clears the firmware's
 power-on and watchdog flags (what clear faults does in the reference protocol). The error queue
 holds 16 entries; when full, the last is replaced by -350 "Queue overflow".
 """
@@ -300,7 +301,12 @@ class ScpiBoard:
         if on and not self.enabled[ch]:
             self._write(ch, int(self.programmed[ch]), now)
         elif not on and self.enabled[ch]:
-            self._write(ch, 0, now)
+            # Switched off by command: the output drops to 0 V at once, as a zero all does in the
+            # reference protocol (logged "output_off" for this channel, not as a write).
+            self.programmed[ch] = self._setpoint(ch, now)
+            self.board.codes[ch] = 0
+            self.board.write_log.append((now, "output_off", ch, ()))
+            self.board._drive(now)
         self.enabled[ch] = on
         return None
 

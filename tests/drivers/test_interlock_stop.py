@@ -16,6 +16,7 @@ from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.errors import InterlockOpenRefused, MeshwardenError, NotArmedRefused
 from meshwarden.journal import Journal
+from meshwarden.writelog import check_board_log
 from tests.drivers.benches import DRIVERS, write_two_board_bench
 
 
@@ -34,6 +35,8 @@ def _all_zero_index(log: list[tuple[float, str, int, tuple[int, ...]]], since: f
     for index, (t, kind, first, values) in enumerate(log):
         if kind in ("boot", "zero", "ramped_to_zero"):
             codes.clear()
+        elif kind == "output_off":
+            codes[first] = 0
         elif kind == "write":
             codes.update({first + k: v for k, v in enumerate(values)})
         if t >= since and not any(codes.values()):
@@ -71,6 +74,9 @@ def test_interlock_opening_during_a_ramp_zeroes_every_board_and_blocks_arm(tmp_p
                 raised = [e for e in log[zeroed:] if e[1] == "write" and any(e[3])]
                 assert raised == [], "an output was raised after the stop"
                 assert any(e[1] == "write" and any(e[3]) for e in log[:zeroed]), "the ramp had not reached the board"
+                board_id = "b0" if board is b0 else "b1"
+                # the design's rules 1-2 at the board, recomputed from the configured numbers
+                assert check_board_log(config, board_id, log).violations == []
             snap = ctl.snapshot()
             assert snap["boards"]["b0"]["interlock"] == "open" and snap["boards"]["b1"]["interlock"] is None
 

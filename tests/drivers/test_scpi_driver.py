@@ -179,3 +179,18 @@ def test_a_lost_event_status_response_puts_the_outputs_in_doubt(bench: tuple[Boa
         assert driver.outputs_seen()[1] is None
     finally:
         driver.close()
+
+
+def test_write_log_checker_reads_an_output_switched_off(bench: tuple[BoardConfig, str]) -> None:
+    """An output switched off by command holds 0 V for the write-log checker, so a ramp from there
+    is judged from 0 (and the drop itself is not a step, like a zero all)."""
+    from meshwarden.writelog import check_board_log
+
+    board, _ = bench
+    config = load_config(Path(board.url.split("config=")[1]))
+    lsb = 60.0 / 65536
+    step = round(1.5 / lsb)  # within c0's 2 V step limit
+    log = [(0.0, "write", 0, (step,)), (0.1, "write", 0, (2 * step,)), (0.2, "output_off", 0, ())]
+    assert check_board_log(config, "b0", [*log, (0.3, "write", 0, (step,))]).violations == []
+    late = check_board_log(config, "b0", [*log[:2], (0.3, "write", 0, (0,)), (0.4, "write", 0, (2 * step,))])
+    assert [v.rule for v in late.violations] == ["2", "2"]  # without the switch-off both are steps

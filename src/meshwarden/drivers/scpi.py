@@ -15,7 +15,7 @@ write outputs       set volts (+ output on) for each channel, then in the same l
                     the queue is a refusal (the board goes into doubt), the codes read
                     back are what the base class verifies
 read outputs        volts (+ output state) queried; an output that is off holds code 0
-zero all            0 V (+ output off) on every channel, then ``SYST:ERR?``
+zero all            output off (if it has one) and 0 V on every channel, then ``SYST:ERR?``
 identify            ``*IDN?`` (four fields) and ``*ESR?``; sizes come from the config
 heartbeat, status   ``*ESR?`` (its power-on bit counts boots), interlock and watchdog
                     queries
@@ -267,9 +267,9 @@ class ScpiDriver(PortLinkDriver):
         o = self.options
         units = []
         for ch in range(self.config.outputs):
-            units.append(render(o.set_volts, channel=self._channel(ch), volts=format_volts(0.0)))
-            if o.output_off is not None:
+            if o.output_off is not None:  # off first: the output drops at once, not along a setpoint
                 units.append(render(o.output_off, channel=self._channel(ch)))
+            units.append(render(o.set_volts, channel=self._channel(ch), volts=format_volts(0.0)))
         refusal: m.Nak | None = None
         for start in range(0, len(units), o.units_per_line):
             result = self._checked(units[start : start + o.units_per_line], 0, m.Command.ZERO_ALL, emergency=True)
