@@ -131,6 +131,7 @@ class ScpiBoard:
     def __init__(self, board: SimBoard) -> None:
         self.board = board
         self._buffer = bytearray()
+        self._undriven = False  # outputs switched off but not yet pushed to the chip
         self._boot_seen = -1
         self._sync_boot()
 
@@ -180,6 +181,14 @@ class ScpiBoard:
         if not text.strip():
             return now, None
         self.board.last_valid = now  # any message feeds the watchdog
+        try:
+            return self._units(text, now)
+        finally:
+            if self._undriven:
+                self._undriven = False
+                self.board._drive(now)
+
+    def _units(self, text: str, now: float) -> tuple[float, str | None]:
         responses: list[str] = []
         ready = now
         for raw in text.split(";"):
@@ -306,7 +315,7 @@ class ScpiBoard:
             self.programmed[ch] = self._setpoint(ch, now)
             self.board.codes[ch] = 0
             self.board.write_log.append((now, "output_off", ch, ()))
-            self.board._drive(now)
+            self._undriven = True  # pushed to the chip once, at the end of the message
         self.enabled[ch] = on
         return None
 
