@@ -44,10 +44,12 @@ class ConformanceFailure(AssertionError):
 
 @dataclass(frozen=True)
 class LinkControl:
-    """How the suite may break the link: ``silence(seconds)`` makes the board's link carry
-    nothing for that long (starting now) and returns at once."""
+    """How the suite may act on the bench: ``silence(seconds)`` makes the board's link carry
+    nothing for that long (starting now) and returns at once; ``set_interlock(is_open)``, if
+    given, opens or closes the board's interlock contact (on a real bench: a person at the door)."""
 
     silence: Callable[[float], None]
+    set_interlock: Callable[[bool], None] | None = None
 
 
 @dataclass
@@ -222,6 +224,16 @@ class _Suite:
         _expect(self.d.read_codes(0, self.c.outputs) == (0,) * self.c.outputs, "outputs not at 0 after the estop")
         self.d.recover()
 
+    def interlock_reads_open_and_closed(self) -> None:
+        """The board's interlock reads open while its contact is open and closed again after."""
+        assert self.link is not None and self.link.set_interlock is not None
+        self.link.set_interlock(True)
+        try:
+            _expect(self.d.interlock_open(), "the interlock reads closed with its contact open")
+        finally:
+            self.link.set_interlock(False)
+        _expect(not self.d.interlock_open(), "the interlock reads open after its contact closed")
+
     def reset_or_refusal(self) -> None:
         """A reset either restarts the board (boot counter + 1, outputs 0, power-on flag) or is
         refused with nothing changed."""
@@ -267,6 +279,7 @@ CHECKS = (
     "watchdog_configuration",
     "monitor_reads",
     "status_and_interlock",
+    "interlock_reads_open_and_closed",
     "reset_or_refusal",
     "link_loss_and_reconnect",
     "estop_abort_during_retries",
@@ -298,6 +311,10 @@ def run_conformance(
         for name in CHECKS:
             if name in NEEDS_LINK and link is None:
                 report.results[name] = "skipped: no LinkControl to silence the link"
+                continue
+            if name == "interlock_reads_open_and_closed" and not (board.interlock and link and link.set_interlock):
+                why = "the board has no watched interlock" if not board.interlock else "nothing to open it"
+                report.results[name] = f"skipped: {why}"
                 continue
             try:
                 getattr(suite, name)()

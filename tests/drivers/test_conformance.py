@@ -22,13 +22,13 @@ def _silencer(rack: SimRack, board: str) -> LinkControl:
         now = rack.clock.now()
         rack.inject(Fault("unplug", board, at_s=now, until_s=now + seconds))  # the clock runs at wall speed
 
-    return LinkControl(silence)
+    return LinkControl(silence, lambda is_open: rack.set_interlock(board, is_open))
 
 
 @pytest.mark.parametrize("driver", DRIVERS)
 def test_conformance_suite_passes_over_a_pty(tmp_path: Path, driver: str) -> None:
-    """Every check of the suite, link loss and the estop abort included, passes on the board."""
-    with served_board(tmp_path, driver, timeout_s=0.1, retries=3) as (board, rack):
+    """Every check of the suite, link loss, the estop abort and the interlock included, passes."""
+    with served_board(tmp_path, driver, interlock=True, timeout_s=0.1, retries=3) as (board, rack):
         report = run_conformance(board, link=_silencer(rack, "b0"))
         written = [entry for entry in rack.board("b0").write_log if entry[1] == "write"]
     assert report.ok, report.text()
