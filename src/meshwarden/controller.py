@@ -436,7 +436,7 @@ class Controller:
                     "uncertain": s.doubt if s.identity is not None else None,
                     "zero_pending": s.zero_pending,
                     "error_rate": round(s.driver.error_rate, 4),
-                    "interlock": s.interlock if s.config.interlock else None,
+                    "interlock": (s.interlock or "not read yet") if s.config.interlock else None,
                 }
                 for b, s in self.boards.items()
             },

@@ -50,7 +50,10 @@ class InterlockWatch:
 
     async def _loop(self) -> None:
         while True:
-            await self.poll()
+            try:
+                await self.poll()
+            except Exception as exc:  # the watch must outlive any one bad pass
+                self.state.log.error("interlock poll failed", error=repr(exc))
             await asyncio.sleep(self.state.config.safety.interlock_poll_s)
 
     async def poll(self) -> dict[str, str]:
@@ -70,14 +73,11 @@ class InterlockWatch:
             level = f"unreadable: {result}" if isinstance(result, BaseException) else OPEN if result else CLOSED
             before = boards[board_id].interlock
             boards[board_id].interlock = level
-            if level == before or (before not in (None, CLOSED) and level != CLOSED):
-                continue
-            if level == CLOSED:
-                if before is not None:
-                    self.state.emit("interlock_closed", board=board_id)
-                continue
-            opened.append(board_id)
-            self.state.emit("interlock_open", board=board_id, level=level)
+            if _demands_stop(level) and not _demands_stop(before):
+                opened.append(board_id)
+                self.state.emit("interlock_open", board=board_id, level=level)
+            elif level == CLOSED and _demands_stop(before):
+                self.state.emit("interlock_closed", board=board_id)
         if opened:
             self.state.log.error("interlock open: emergency stop", boards=opened)
             await self.estop(reason=f"interlock open on board(s) {', '.join(opened)}")
@@ -97,3 +97,8 @@ class InterlockWatch:
             raise InterlockOpenRefused(
                 f"cannot arm: interlock of board(s) {text}; close it, then arm again", interlocks=detail
             )
+
+
+def _demands_stop(level: str | None) -> bool:
+    """An open contact, or one that cannot be read (fail-safe)."""
+    return level is not None and (level == OPEN or level.startswith("unreadable"))

@@ -12,6 +12,7 @@ import pytest
 
 import meshsim.urlhandler.protocol_meshsim  # noqa: F401
 from meshsim import inprocess
+from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.errors import InterlockOpenRefused, MeshwardenError, NotArmedRefused
@@ -164,3 +165,27 @@ def test_an_interlock_found_open_at_start_stops_at_once(tmp_path: Path) -> None:
     asyncio.run(scenario())
     inprocess.remove(name)
     assert [e[1] for e in rack.board("b0").write_log][-1] == "zero"
+
+
+def test_a_board_coming_up_late_with_its_interlock_open_stops_the_rack(tmp_path: Path) -> None:
+    """A watched board that was away at start and comes up with its contact open stops the rack
+    when it is first read, like a contact that opens."""
+    from meshsim.rack import SimRack
+
+    path, name = write_two_board_bench(tmp_path, "reference")
+    rack = inprocess.register(name, SimRack.from_config(path))
+    now = rack.clock.now()
+    rack.inject(Fault("unplug", "b0", at_s=now, until_s=now + 1.0))
+    rack.set_interlock("b0", True)
+    config = load_config(path)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await _until(lambda: ctl.snapshot()["boards"]["b0"]["interlock"] == "board not up", "the first poll")
+            assert not ctl.estopped  # an unreachable board alone is the heartbeat's business
+            await _until(lambda: ctl.boards["b0"].identity is not None, "b0 to come up", 30.0)
+            await _until(lambda: ctl.estopped, "the stop")
+            assert ctl.snapshot()["boards"]["b0"]["interlock"] == "open"
+
+    asyncio.run(scenario())
+    inprocess.remove(name)
