@@ -399,3 +399,11 @@ def test_unknown_driver_is_named_with_the_known_ones(tmp_path: Path) -> None:
     (issue,) = problems(text, tmp_path)
     assert issue.startswith("config.yaml:6: rack.boards[0].driver: unknown board driver 'scpii' (known: ")
     assert issue.endswith("(did you mean 'scpi'?)") and "reference" in issue
+
+
+def test_scpi_options_must_be_a_mapping(tmp_path: Path) -> None:
+    """Options written as a list are reported as such, at their line."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpi\n      options: [lf]")
+    assert problems(text, tmp_path) == [
+        "config.yaml:7: rack.boards[0].options: expected a mapping for this driver's options, got a list"
+    ]

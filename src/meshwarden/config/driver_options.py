@@ -85,7 +85,7 @@ def _words(value: Any) -> tuple[str, str, str]:
 
 def scpi_options(p: f.Problems, path: PathKey, raw: Any) -> ScpiOptions | None:
     """The options of a ``driver: scpi`` board; None after recording a problem."""
-    s = f.Section(p, raw, path, SCPI_KEYS, what="scpi options")
+    s = f.Section(p, raw, path, SCPI_KEYS, what="driver's options")
     d = ScpiOptions()
     values: dict[str, Any] = {}
     for key in TEMPLATES:
