@@ -366,6 +366,86 @@ def bench_rack768(baseline_s: float, repeats: int = 20, estops: int = 30) -> dic
         "estop_trials": float(len(latencies)),
         "flood_requests_during_estops": float(flooded[0]),
     }
+def bench_interlock(repeats: int) -> dict[str, float]:
+    """Emergency stop latency from an interlock opening to every board at zero, read from the
+    simulated boards' own write logs (their clock runs at wall speed), for the demo rack with the
+    reference driver and with the scpi driver; as a ratio to an estop requested directly."""
+    import asyncio
+    import dataclasses
+    import tempfile
+
+    from meshsim import inprocess
+    from meshwarden.api import open_controller
+    from meshwarden.config import load_config
+    from meshwarden.config.model import JournalConfig, RackConfig
+
+    def zero_at(rack: object, board: str, since: float) -> float | None:
+        """When the board first held every output at zero at or after ``since`` (None: not yet),
+        replaying its write log (a SCPI board zeroes channel by channel, a reference one at once)."""
+        sim = rack.board(board)  # type: ignore[attr-defined]
+        codes = [0] * sim.spec.outputs
+        for t, kind, first, values in list(sim.write_log):
+            if kind in ("boot", "zero", "ramped_to_zero"):
+                codes = [0] * len(codes)
+            elif kind == "output_off":
+                codes[first] = 0
+            elif kind == "write":
+                codes[first : first + len(values)] = values
+            if t >= since and not any(codes):
+                return float(t)
+        return None
+
+    async def all_zero(rack: object, since: float) -> float:
+        deadline = time.monotonic() + 30.0
+        while True:
+            times = [zero_at(rack, b, since) for b in rack.boards]  # type: ignore[attr-defined]
+            if all(t is not None for t in times):
+                return max(t for t in times if t is not None) - since
+            if time.monotonic() > deadline:
+                raise RuntimeError("the boards did not all reach zero")
+            await asyncio.sleep(0.002)
+
+    async def run(config_name: str, rack_name: str, folder: Path) -> tuple[list[float], list[float]]:
+        config = load_config(REPO / "config" / config_name)
+        boards = tuple(dataclasses.replace(b, interlock=b.id == "b0") for b in config.rack.boards)
+        config = dataclasses.replace(
+            config, rack=RackConfig(boards), journal=JournalConfig(folder / f"{rack_name}.sqlite")
+        )
+        by_interlock, direct = [], []
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(rack_name)
+            targets = {f"c{g:02d}": 5.0 for g in range(0, 60, 6)}
+            for _ in range(repeats):
+                await ctl.arm()
+                await ctl.set(targets, volts=True)
+                opened = rack.clock.now()
+                rack.set_interlock("b0", True)
+                by_interlock.append(await all_zero(rack, opened))
+                rack.set_interlock("b0", False)
+                await ctl.interlocks_once()
+                await ctl.arm()
+                await ctl.set(targets, volts=True)
+                asked = rack.clock.now()
+                await ctl.estop(reason="bench")
+                direct.append(await all_zero(rack, asked))
+        inprocess.remove(rack_name)
+        return by_interlock, direct
+
+    out: dict[str, float] = {}
+    with tempfile.TemporaryDirectory() as tmp:
+        for driver, config_name, rack_name in (
+            ("reference", "demo.yaml", "demo"),
+            ("scpi", "demo-scpi.yaml", "demo-scpi"),
+        ):
+            by_interlock, direct = asyncio.run(run(config_name, rack_name, Path(tmp)))
+            out[f"{driver}_interlock_to_all_zero_ms_median"] = statistics.median(by_interlock) * 1e3
+            out[f"{driver}_interlock_to_all_zero_ms_max"] = max(by_interlock) * 1e3
+            out[f"{driver}_direct_estop_to_all_zero_ms_median"] = statistics.median(direct) * 1e3
+            out[f"{driver}_interlock_ratio_to_direct_estop"] = statistics.median(by_interlock) / statistics.median(
+                direct
+            )
+    out["interlock_poll_interval_ms"] = 50.0
+    return out
 
 
 def _rss_kib(pid: int) -> int:
@@ -598,7 +678,10 @@ def main() -> None:
     parser.add_argument("--out", type=Path, required=True)
     parser.add_argument("--repeats", type=int, default=500)
     parser.add_argument(
-        "--only", choices=("all", "hardening"), default="all", help="hardening: the hostile-bus figures only"
+        "--only",
+        choices=("all", "simulator", "bus", "interlock", "hardening"),
+        default="all",
+        help="one section of the figures (default: all)",
     )
     parser.add_argument("--hostile", type=int, default=100_000, help="hostile messages to send (default 100,000)")
     args = parser.parse_args()
@@ -610,10 +693,14 @@ def main() -> None:
         },
         "repeats": args.repeats,
     }
-    if args.only == "all":
+    if args.only in ("all", "simulator"):
         results["simulator"] = bench_simulator(args.repeats)
+    if args.only in ("all", "bus"):
         results["bus"] = bench_bus(min(args.repeats, 300))
-    results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
+    if args.only in ("all", "interlock"):
+        results["interlock"] = bench_interlock(min(args.repeats, 10))
+    if args.only in ("all", "hardening"):
+        results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
     text = json.dumps(results, indent=2)
     args.out.write_text(text + "\n", encoding="utf-8")
     print(text)

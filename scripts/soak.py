@@ -10,6 +10,7 @@ limits recomputed from the configuration's numbers (meshwarden.writelog).
 
     scripts/soak --sequences 1000            # or --minutes 10
     scripts/soak --sequences 20 --seed 7 --json
+    scripts/soak --driver scpi              # SCPI boards (the simulator's SCPI personality)
 
 Prints counts: sequences, operations, writes checked, violations (must be 0), restarts.
 Exit status 1 if any violation was seen.
@@ -48,9 +49,9 @@ SOAK_CONFIG = """\
 rack:
   boards:
     - {{id: b0, url: "socket://127.0.0.1:1", outputs: 16, monitor_inputs: 8, timeout_s: 0.1, retries: 4,
-       error_rate_limit: 0.5, watchdog: {{timeout_s: 20, action: ramp_to_zero}}}}
+       driver: {driver}, error_rate_limit: 0.5, watchdog: {{timeout_s: 20, action: ramp_to_zero}}}}
     - {{id: b1, url: "socket://127.0.0.1:2", outputs: 16, monitor_inputs: 8, timeout_s: 0.1, retries: 4,
-       error_rate_limit: 0.5, watchdog: {{timeout_s: 20, action: ramp_to_zero}}}}
+       driver: {driver}, error_rate_limit: 0.5, watchdog: {{timeout_s: 20, action: ramp_to_zero}}}}
 chip:
   actuator_defaults:
     coupler: {{limit_volts: 40, pull_in_volts: 50, step_limit_volts: 2, dwell_s: 2 ms}}
@@ -78,6 +79,7 @@ calibration:
 journal:
   path: journal.sqlite
 simulator:
+  personality: {driver}  # the simulated boards speak what the driver speaks
   seed: {seed}
   laser: {{wavelength_nm: 1550, power_mw: 1.0, input_modes: [0]}}
   lattice:
@@ -120,11 +122,11 @@ class Counts:
 class Soak:
     """The rack, the daemon process and the checkers of one soak run."""
 
-    def __init__(self, folder: Path, seed: int, log: Path) -> None:
+    def __init__(self, folder: Path, seed: int, log: Path, driver: str = "reference") -> None:
         self.folder = folder
         self.rng = random.Random(seed)
         self.config_path = folder / "soak.yaml"
-        self.config_path.write_text(SOAK_CONFIG.format(seed=seed), encoding="utf-8")
+        self.config_path.write_text(SOAK_CONFIG.format(seed=seed, driver=driver), encoding="utf-8")
         scenario = load_scenario(self.config_path)
         write_nominal_tables(scenario, parse_params(scenario.simulator), folder / "cal")
         self.config = load_config(self.config_path)
@@ -282,13 +284,18 @@ class _Restarted(MeshwardenError):
 
 
 def run_soak(
-    sequences: int, seed: int, minutes: float | None = None, length: int = 8, restart_every: int | None = None
+    sequences: int,
+    seed: int,
+    minutes: float | None = None,
+    length: int = 8,
+    restart_every: int | None = None,
+    driver: str = "reference",
 ) -> dict[str, Any]:
     """Run the soak; the counts as a dict (``violations`` must be 0). ``restart_every``: also
     kill -9 and restart the daemon in the middle of a ramp after every that many sequences."""
     with tempfile.TemporaryDirectory(prefix="meshwarden-soak-") as tmp:
         folder = Path(tmp)
-        soak = Soak(folder, seed, folder / "daemon.log")
+        soak = Soak(folder, seed, folder / "daemon.log", driver)
         started = time.monotonic()
         try:
             soak.start_daemon()
@@ -315,8 +322,9 @@ def main() -> None:
     parser.add_argument("--length", type=int, default=8, help="operations per sequence (default 8)")
     parser.add_argument("--restart-every", type=int, help="also kill -9 mid-ramp after every N sequences")
     parser.add_argument("--json", action="store_true", help="print the counts as JSON")
+    parser.add_argument("--driver", choices=("reference", "scpi"), default="reference", help="board driver")
     args = parser.parse_args()
-    result = run_soak(args.sequences, args.seed, args.minutes, args.length, args.restart_every)
+    result = run_soak(args.sequences, args.seed, args.minutes, args.length, args.restart_every, args.driver)
     if args.json:
         print(json.dumps(result, indent=2))
     else:

@@ -14,6 +14,9 @@ Spec syntax (``--faults``, ``;``-separated; also :func:`parse_faults` in-process
     drop:*=0.01  repeat:*=0.01  garbage:*=0.01  wrong_address:*=0.01
     delay:b0=0.05/0.3          5 % of replies delayed by 0.3 s
     unplug:b1@10-20            link silent from 10 s to 20 s (simulated time)
+    interlock:b0@10-20         b0's interlock contact open from 10 s to 20 s (no time: open now,
+                               for good; one time: open from then on); ``SimRack.set_interlock``
+                               opens and closes it in-process
 
 The link classes follow the transmission errors a safety-rated fieldbus must defend against
 (IEC 61784-3: corruption, loss, repetition, insertion, delay, masquerade/wrong address).
@@ -28,7 +31,7 @@ LINK_KINDS = ("corrupt", "drop", "repeat", "garbage", "wrong_address", "delay")
 DEVICE_KINDS = ("stuck", "open_wire")
 CHANNEL_KINDS = ("dead_channel", "short")
 MONITOR_KINDS = ("dead_monitor", "saturated_monitor", "noisy_monitor")
-BOARD_KINDS = ("reset", "unplug")
+BOARD_KINDS = ("reset", "unplug", "interlock")
 ALL_KINDS = LINK_KINDS + DEVICE_KINDS + CHANNEL_KINDS + MONITOR_KINDS + BOARD_KINDS
 
 

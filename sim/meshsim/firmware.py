@@ -75,6 +75,7 @@ class SimBoard:
         self.responsivity = responsivity_a_per_w(detectors.quantum_efficiency, laser.wavelength_m)
         self.rng = rng
         self.faults = ChannelFaults()
+        self.interlock_open = False  # the interlock contact wired to this board (set by the rack)
         self.boot_count = 0
         self.writes_executed = 0  # inspection: how many write commands really ran
         # inspection: (sim time, "write" | "zero" | "boot" | "ramped_to_zero", first channel, codes)
@@ -336,6 +337,7 @@ class SimBoard:
         if self.watchdog_action != WatchdogAction.OFF and self.tripped_at is None:
             remaining = max(0, round((self.last_valid + self.watchdog_ms / 1000.0 - now) * 1000))
         flags = self.flags | (StatusFlag.OUTPUT_FAULT if self.faults.short else 0)
+        flags |= StatusFlag.INTERLOCK_OPEN if self.interlock_open else 0
         return m.StatusReply(
             int(flags), self.boot_count, self._uptime_ms(now), remaining, self.crc_errors, self.framing_errors
         )

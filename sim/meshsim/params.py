@@ -12,6 +12,8 @@ import math
 from dataclasses import dataclass, fields, replace
 from typing import Any
 
+PERSONALITIES = ("reference", "scpi")
+
 
 class ParamsError(ValueError):
     """A simulator section with an unknown key or an unusable value."""
@@ -154,6 +156,7 @@ class SimParams:
     lattice: LatticeSpec | None
     crosstalk: Crosstalk = Crosstalk()
     drift: Drift = Drift()
+    personality: str = "reference"  # what every board speaks: reference | scpi (meshsim.scpi)
 
 
 # key in YAML -> (field name, factor to SI)
@@ -277,7 +280,22 @@ def _check_imperfections(params: SimParams) -> None:
 
 def parse_params(raw: dict[str, Any], seed: int | None = None) -> SimParams:
     """The simulator section as :class:`SimParams`; ``seed`` overrides the section's seed."""
-    known = {"seed", "coupler", "phase", "spread", "detectors", "laser", "board", "lattice", "crosstalk", "drift"}
+    known = {
+        "seed",
+        "coupler",
+        "phase",
+        "spread",
+        "detectors",
+        "laser",
+        "board",
+        "lattice",
+        "crosstalk",
+        "drift",
+        "personality",
+    }
+    personality = raw.get("personality", "reference")
+    if personality not in PERSONALITIES:
+        raise ParamsError(f"simulator.personality: expected one of {', '.join(PERSONALITIES)}, got {personality!r}")
     for key in raw:
         if key not in known:
             raise ParamsError(f"simulator: unknown key '{key}' (known: {', '.join(sorted(known))})")
@@ -292,6 +310,7 @@ def parse_params(raw: dict[str, Any], seed: int | None = None) -> SimParams:
         lattice=_lattice(raw.get("lattice")),
         crosstalk=_section(Crosstalk, raw.get("crosstalk"), "crosstalk"),
         drift=_drift(raw.get("drift")),
+        personality=str(personality),
     )
     _check_imperfections(params)
     return params

@@ -23,6 +23,7 @@ from meshsim.faults import LINK_KINDS, Fault, FaultSpecError, parse_faults
 from meshsim.firmware import BoardWiring, SimBoard
 from meshsim.params import SimParams, parse_params
 from meshsim.scenario import Scenario, load_scenario
+from meshsim.scpi import ScpiBoard
 from meshwarden.protocol import Frame, decode_frame, encode_frame
 
 
@@ -54,6 +55,8 @@ class SimRack:
         self.boards: dict[str, SimBoard] = {}
         self.links: dict[str, LinkFaults] = {}
         self.pending_resets: list[Fault] = []
+        self.interlock_windows: dict[str, list[tuple[float, float]]] = {}  # board -> open from, until
+        self.interlock_forced: dict[str, bool] = {}  # board -> set by set_interlock (wins over windows)
         actuator_index = {a.id: i for i, a in enumerate(scenario.actuators)}
         monitor_index = {mon.id: i for i, mon in enumerate(scenario.monitors)}
         for number, spec in enumerate(scenario.boards):
@@ -76,6 +79,10 @@ class SimRack:
                 np.random.default_rng(seeds[3 + number]),
             )
             self.links[spec.id] = LinkFaults()
+        # The SCPI personality: a text front end over the same firmware (meshsim.scpi).
+        self.scpi: dict[str, ScpiBoard] = (
+            {b: ScpiBoard(board) for b, board in self.boards.items()} if params.personality == "scpi" else {}
+        )
         for fault in faults or []:
             self.inject(fault)
 
@@ -102,7 +109,8 @@ class SimRack:
             incoming = self._mangle_incoming(link, data)
             if incoming is None:
                 return []
-            replies = self.boards[board_id].receive(incoming, now)
+            front = self.scpi.get(board_id) or self.boards[board_id]
+            replies = front.receive(incoming, now)
             out: list[tuple[float, bytes]] = []
             for ready, reply in replies:
                 out.extend(self._mangle_outgoing(link, ready, reply))
@@ -118,8 +126,24 @@ class SimRack:
         for fault in due:
             self.pending_resets.remove(fault)
             self.boards[fault.target].power_cycle(now)
-        for board in self.boards.values():
+        for board_id, board in self.boards.items():
+            if board_id in self.interlock_forced:
+                board.interlock_open = self.interlock_forced[board_id]
+            elif board_id in self.interlock_windows:
+                board.interlock_open = any(a <= now < b for a, b in self.interlock_windows[board_id])
             board.tick(now)
+
+    def set_interlock(self, board_id: str, is_open: bool | None) -> None:
+        """Open (True) or close (False) a board's interlock contact now; None hands it back to
+        the ``interlock`` faults' time windows."""
+        with self.lock:
+            if board_id not in self.boards:
+                raise FaultSpecError(f"no board {board_id!r}")
+            if is_open is None:
+                self.interlock_forced.pop(board_id, None)
+            else:
+                self.interlock_forced[board_id] = is_open
+            self._tick(self.clock.now())
 
     def _chance(self, link: LinkFaults, kind: str) -> bool:
         rate = link.rates.get(kind, 0.0)
@@ -135,7 +159,7 @@ class SimRack:
     def _mangle_outgoing(self, link: LinkFaults, ready: float, reply: bytes) -> list[tuple[float, bytes]]:
         if self._chance(link, "drop"):
             return []
-        if self._chance(link, "wrong_address"):
+        if self._chance(link, "wrong_address") and not self.scpi:  # a SCPI line carries no address
             frame = decode_frame(reply[:-1])
             reply = encode_frame(Frame((frame.address % 254) + 1, frame.seq, frame.command, frame.payload))
         if self._chance(link, "corrupt"):
@@ -157,7 +181,7 @@ class SimRack:
         with self.lock:
             now = self.clock.now()
             boards = list(self.boards) if fault.target == "*" else [fault.target.split(":")[0]]
-            if fault.kind in LINK_KINDS or fault.kind == "unplug" or fault.kind in ("reset",):
+            if fault.kind in LINK_KINDS or fault.kind in ("unplug", "reset", "interlock"):
                 for b in boards:
                     if b not in self.boards:
                         raise FaultSpecError(f"fault {fault.kind}: no board {b!r}")
@@ -169,6 +193,11 @@ class SimRack:
             elif fault.kind == "unplug":
                 for b in boards:
                     self.links[b].unplugged.append((fault.at_s or 0.0, fault.until_s or float("inf")))
+            elif fault.kind == "interlock":
+                for b in boards:
+                    start = fault.at_s if fault.at_s is not None else now
+                    self.interlock_windows.setdefault(b, []).append((start, fault.until_s or float("inf")))
+                self._tick(now)
             elif fault.kind == "reset":
                 self.pending_resets.extend(Fault("reset", b, at_s=fault.at_s) for b in boards)
             elif fault.kind == "stuck":

@@ -151,4 +151,9 @@ def load_scenario(path: str | Path) -> Scenario:
     sim = raw.get("simulator") or {}
     if not isinstance(sim, dict):
         raise ScenarioError(f"{path}: the simulator section must be a mapping")
+    if "extends" in sim:  # another simulator section (usually an !include) with these keys on top
+        base = sim["extends"]
+        if not isinstance(base, dict):
+            raise ScenarioError(f"{path}: simulator.extends must be a mapping (a simulator section)")
+        sim = {**base, **{k: v for k, v in sim.items() if k != "extends"}}
     return Scenario(boards, tuple(actuators), gates, tuple(monitors), sim, Path(path).resolve())

@@ -57,6 +57,7 @@ def _boards(boards: dict[str, Any]) -> list[str]:
             "needs restore" if s.get("needs_restore") else "",
             f"UNCERTAIN: {s['uncertain']}" if s.get("uncertain") else "",
             f"ZERO NOT CONFIRMED: {s['zero_pending']}" if s.get("zero_pending") else "",
+            f"interlock {s['interlock']}" if s.get("interlock") is not None else "",
         ]
         out.append(f"  {b:<8} boot {s['boot_count']}  {'  '.join(f for f in flags if f) or 'ok'}")
     return out

@@ -41,6 +41,7 @@ from meshwarden.errors import (
     UnreachableRefused,
 )
 from meshwarden.guard import RampPlan, check_targets
+from meshwarden.interlocks import InterlockWatch
 from meshwarden.journal import Journal
 from meshwarden.mapping import ActuatorMap, code_to_volts, volts_to_code
 from meshwarden.motion import Motion, Progress
@@ -64,6 +65,7 @@ class Controller:
         self.claims = ClaimRegistry()
         self._motion = Motion(self._state)
         self._supervisor = Supervisor(self._state, self._motion, self.estop)
+        self._interlocks = InterlockWatch(self._state, self.estop)
         self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
         active = self.calibrations.active()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
@@ -107,6 +109,7 @@ class Controller:
     async def start(self) -> None:
         """Bring every board up and adopt its outputs without writing any."""
         await self._supervisor.start()
+        self._interlocks.start()
         for aid in self.over_limit():
             self._emit("above_limit", actuator=aid, code=self._state.code_of(aid))
             self.log.error("output found above its hard limit; disarm to ramp it down", actuator=aid)
@@ -116,6 +119,7 @@ class Controller:
     async def close(self) -> None:
         """Stop background work and the board threads; outputs stay as they are (the boards'
         watchdogs take over if no daemon comes back; a restarted daemon adopts them)."""
+        await self._interlocks.stop()
         await self._supervisor.stop()
         await asyncio.to_thread(self._state.rack.stop)
         self._emit("stop")
@@ -130,6 +134,10 @@ class Controller:
     async def recover(self, board_id: str, client: str | None = None) -> dict[str, Any]:
         return await self._supervisor.recover(board_id, client)
 
+    async def interlocks_once(self) -> dict[str, str]:
+        """Read every configured interlock now (see :mod:`meshwarden.interlocks`)."""
+        return await self._interlocks.poll()
+
     # ------------------------------------------------------------------ arm, disarm, stop
 
     def over_limit(self) -> list[str]:
@@ -143,6 +151,7 @@ class Controller:
         # Look first: a reset or a tripped watchdog must be noticed before clearing the flags
         # that show it, even if arming is then refused.
         await self.heartbeat_once()
+        await self._interlocks.refuse_arm_if_open(client)  # a latching stop: closed contact + re-arm
         above = self.over_limit()
         if above:
             self._emit("refused", client=client, op="arm", reason="outputs above their limit", actuators=above)
@@ -474,6 +483,7 @@ class Controller:
                 "uncertain": s.doubt if s.identity is not None else None,
                 "zero_pending": s.zero_pending,
                 "error_rate": round(s.driver.error_rate, 4),
+                "interlock": (s.interlock or "not read yet") if s.config.interlock else None,
             }
             for b, s in self.boards.items()
         }

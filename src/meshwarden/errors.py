@@ -28,7 +28,8 @@ on the wire" without knowing the details::
         ├── FaultedRefused               faulted         a board needed for the request is faulted or unreachable
         │   └── UncertainRefused         uncertain       a board's outputs are in doubt until a re-read succeeds
         ├── BusyRefused                  busy            another owner's motion claim holds the actuator
-        └── StoppedRefused               stopped         motion stopped before its end (stop, disarm, estop)
+        ├── StoppedRefused               stopped         motion stopped before its end (stop, disarm, estop)
+        └── InterlockOpenRefused         interlock_open  arm while a watched hardware interlock is open
 
 Foreign exceptions are re-raised ``from`` the original so the cause stays in the log.
 """
@@ -200,6 +201,12 @@ class StoppedRefused(RefusedError):
     outputs are where the last verified step left them."""
 
     code = "stopped"
+
+
+class InterlockOpenRefused(RefusedError):
+    """``arm`` while a watched hardware interlock is open or cannot be read: close it, then arm."""
+
+    code = "interlock_open"
 
 
 class BusError(MeshwardenError):

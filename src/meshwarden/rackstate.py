@@ -54,6 +54,7 @@ class BoardState:
     needs_restore: bool = False
     faulted: bool = False
     zero_pending: str | None = None  # an emergency stop could not confirm this board's zero: why
+    interlock: str | None = None  # its interlock input, if configured: closed | open | unreadable: why
     notes: list[str] = field(default_factory=list)
 
     @property

@@ -13,6 +13,9 @@ real controller, guard and bus without hardware and without the simulator::
     assert RecordingDriver.boards["b0"].codes[10] > 0
 
 Monitor inputs read what :attr:`RecordingDriver.monitor_counts` holds (zeros by default).
+
+The driver conformance suite (:mod:`meshwarden.conformance`) is reachable from here too:
+``run_conformance(board, url=...)`` checks a driver and a board against the driver contract.
 """
 
 from __future__ import annotations
@@ -26,6 +29,7 @@ from collections.abc import Iterator
 from typing import ClassVar
 
 from meshwarden.config.model import BoardConfig, Config
+from meshwarden.conformance import ConformanceReport, LinkControl, run_conformance
 from meshwarden.drivers.base import BoardDriver
 from meshwarden.drivers.registry import register_driver
 from meshwarden.protocol import messages as m
@@ -164,3 +168,14 @@ def running_daemon(config: Config, ports: dict[str, str] | None = None) -> Itera
         if isinstance(loop, asyncio.AbstractEventLoop) and isinstance(stop, asyncio.Event):
             loop.call_soon_threadsafe(stop.set)
         thread.join(30)
+
+
+__all__ = [
+    "ConformanceReport",
+    "LinkControl",
+    "RecordingDriver",
+    "free_port",
+    "run_conformance",
+    "running_daemon",
+    "unguarded_driver",
+]

@@ -2,8 +2,9 @@
 
 A board's write log is a sequence of ``(time_s, kind, first_channel, codes)`` entries, ``kind``
 one of ``write`` (codes latched from ``first_channel`` on), ``zero`` (all outputs zeroed by
-command), ``boot`` (power-on: all zero) and ``ramped_to_zero`` (the board's own watchdog
-finished a ramp to zero). The simulated firmware keeps one; a logic analyser on a real link
+command), ``output_off`` (the output ``first_channel`` switched off by command: 0 V, as an
+instrument's output switch does), ``boot`` (power-on: all zero) and ``ramped_to_zero`` (the
+board's own watchdog finished a ramp to zero). The simulated firmware keeps one; a logic analyser on a real link
 gives the same. This checker does not use the controller's guard or configuration helpers: it
 recomputes each channel's ceiling from the configured numbers (full scale, actuator limit,
 pull-in margin), so a bug in the guard cannot hide itself here.
@@ -83,6 +84,9 @@ class BoardLogChecker:
         for t, kind, first, codes in log:
             if kind in ("zero", "boot", "ramped_to_zero"):
                 self.held = [0] * len(self.held)
+                continue
+            if kind == "output_off":
+                self.held[first] = 0
                 continue
             if kind == "write":
                 self._write(t, first, codes)

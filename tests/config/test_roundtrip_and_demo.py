@@ -33,6 +33,19 @@ def test_round_trip_gives_an_equal_config(tmp_path: Path) -> None:
     assert second.chip.actuators[5] == first.chip.actuators[5]
 
 
+def test_scpi_demo_round_trips_and_shares_the_demo_chip(tmp_path: Path) -> None:
+    """config/demo-scpi.yaml loads (scpi options and an interlock included), survives the
+    dump/load round trip, and is the demo's chip and calibration on other drivers."""
+    scpi = load_config(DEMO_CONFIG.with_name("demo-scpi.yaml"))
+    dumped = tmp_path / "dumped.yaml"
+    dumped.write_text(dump_config_text(scpi), encoding="utf-8")
+    assert load_config(dumped) == scpi
+    assert [(b.driver, b.interlock) for b in scpi.rack.boards] == [("scpi", True), ("scpi", False)]
+    assert scpi.chip == load_config(DEMO_CONFIG).chip
+    result = run_cli("check-config", str(DEMO_CONFIG.with_name("demo-scpi.yaml")))
+    assert result.returncode == 0 and "driver scpi, interlock watched" in result.stdout
+
+
 def test_demo_scenario_has_the_promised_size() -> None:
     """Two 64-output, 32-input, 16-bit, 60 V boards; >= 96 actuators of both kinds; >= 40 monitors;
     some gates spanning both boards."""

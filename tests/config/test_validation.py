@@ -449,3 +449,113 @@ def test_the_chip_lattice_names_known_gates_and_monitors_at_places_that_exist(tm
         "config.yaml:17: chip.lattice.taps.mz: no monitor 'mz' in chip.monitors",
         "config.yaml:17: chip.lattice.taps.mz: expected [after column -1..1, mode 0..1], got [5, 0]",
     ]
+
+
+SCPI_BOARD = "      full_scale_volts: 60\n      driver: scpi\n      options:\n"
+
+
+def test_scpi_options_are_read_with_their_defaults(tmp_path: Path) -> None:
+    """A scpi board's options take the defaults for what is not written; null removes a command."""
+    text = replace_line(
+        "      full_scale_volts: 60",
+        SCPI_BOARD + "        read_termination: crlf\n        interlock_query: null\n        expect_model: HVS-32",
+    )
+    board = load_config(write_config(tmp_path, text)).rack.boards[0]
+    assert board.options.read_termination == "crlf" and board.options.interlock_query is None
+    assert board.options.expect_model == "HVS-32" and board.options.set_volts == "SOUR{channel}:VOLT {volts}"
+
+
+def test_scpi_template_with_an_unknown_placeholder(tmp_path: Path) -> None:
+    """A template may use only the placeholders of its command, and is told which."""
+    text = replace_line("      full_scale_volts: 60", SCPI_BOARD + '        set_volts: "SOUR{chan}:VOLT {volts}"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: rack.boards[0].options.set_volts: unknown placeholder {chan} "
+        "(this command may use {channel}, {volts})"
+    ]
+
+
+def test_scpi_template_missing_its_value(tmp_path: Path) -> None:
+    """A set-voltage template without {volts} would send no value: refused."""
+    text = replace_line("      full_scale_volts: 60", SCPI_BOARD + '        set_volts: "SOUR{channel}:VOLT"')
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: rack.boards[0].options.set_volts: the template must contain {volts}"
+    ]
+
+
+def test_scpi_required_command_cannot_be_removed(tmp_path: Path) -> None:
+    """The error query is how a write is checked: it cannot be set to nothing."""
+    text = replace_line("      full_scale_volts: 60", SCPI_BOARD + "        error_query: null")
+    config = load_config(write_config(tmp_path, text))  # null means "the default" for a required one
+    assert config.rack.boards[0].options.error_query == "SYST:ERR?"
+    text = replace_line("      full_scale_volts: 60", SCPI_BOARD + '        error_query: ""')
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: rack.boards[0].options.error_query: expected non-empty text, got text"
+    ]
+
+
+def test_scpi_unknown_option_and_bad_termination(tmp_path: Path) -> None:
+    """A misspelt option and a termination that is not one of the known ones are both reported."""
+    text = replace_line(
+        "      full_scale_volts: 60", SCPI_BOARD + "        write_terminator: lf\n        read_termination: LF"
+    )
+    assert problems(text, tmp_path) == [
+        "config.yaml:8: rack.boards[0].options.write_terminator: unknown key 'write_terminator' "
+        "(did you mean 'write_termination'?)",
+        "config.yaml:9: rack.boards[0].options.read_termination: expected one of lf, crlf, cr, got 'LF'",
+    ]
+
+
+def test_reference_driver_takes_no_options(tmp_path: Path) -> None:
+    """Options on a board of the reference driver are a mistake, not silently ignored."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      options: {baud: 9600}")
+    assert problems(text, tmp_path) == ["config.yaml:6: rack.boards[0].options: the reference driver takes no options"]
+
+
+def test_other_driver_options_are_kept_for_the_driver(tmp_path: Path) -> None:
+    """A driver from another package gets its options mapping as written."""
+    from meshwarden.drivers import register_driver
+
+    register_driver("acme64", "meshwarden.testing", "RecordingDriver")  # as an entry point would
+    text = replace_line(
+        "      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: acme64\n      options: {slot: 3}"
+    )
+    assert load_config(write_config(tmp_path, text)).rack.boards[0].options == {"slot": 3}
+
+
+def test_interlock_flag_and_poll_interval(tmp_path: Path) -> None:
+    """``interlock`` is true or false; the poll interval is a time of at most 1 s."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      interlock: yes please")
+    assert problems(text, tmp_path) == [
+        "config.yaml:6: rack.boards[0].interlock: expected true or false, got 'yes please'"
+    ]
+    text = MAIN + "safety:\n  interlock_poll_s: 2 s\n"
+    assert problems(text, tmp_path) == ["config.yaml:19: safety.interlock_poll_s: must be at most 1 s, got 2"]
+    text = MAIN.replace("      full_scale_volts: 60", "      full_scale_volts: 60\n      interlock: true")
+    config = load_config(write_config(tmp_path, text + "safety:\n  interlock_poll_s: 20 ms\n"))
+    assert config.rack.boards[0].interlock and config.safety.interlock_poll_s == pytest.approx(0.02)
+
+
+def test_interlock_on_a_scpi_board_needs_its_query(tmp_path: Path) -> None:
+    """A watched interlock on an instrument with no interlock query could never be seen open."""
+    text = replace_line(
+        "      full_scale_volts: 60", SCPI_BOARD + "        interlock_query: null\n      interlock: true"
+    )
+    assert problems(text, tmp_path) == [
+        "config.yaml:9: rack.boards[0].interlock: an interlock needs a way to read it: options.interlock_query is null"
+    ]
+
+
+def test_unknown_driver_is_named_with_the_known_ones(tmp_path: Path) -> None:
+    """A driver name no package provides is an error at its line, with the close known name."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpii")
+    (issue,) = problems(text, tmp_path)
+    assert issue.startswith("config.yaml:6: rack.boards[0].driver: unknown board driver 'scpii' (known: ")
+    assert issue.endswith("(did you mean 'scpi'?)") and "reference" in issue
+
+
+def test_scpi_options_must_be_a_mapping(tmp_path: Path) -> None:
+    """Options written as a list are reported as such, at their line."""
+    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpi\n      options: [lf]")
+    assert problems(text, tmp_path) == [
+        "config.yaml:7: rack.boards[0].options: expected a mapping for this driver's options, got a list"
+    ]

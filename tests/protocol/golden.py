@@ -44,4 +44,5 @@ MEANING: dict[str, tuple[int, int, int, m.Message]] = {
     "zero-all": (1, 9, 0x09, m.ZeroAll()),
     "status-reply": (1, 10, 0x8A, m.StatusReply(0x0005, 3, 123456, 0, 2, 1)),
     "nak-bad-channel": (1, 11, 0x7F, m.Nak(0x02, 5, 64)),
+    "status-reply-interlock": (1, 12, 0x8A, m.StatusReply(0x0010, 3, 123456, 1500, 0, 0)),
 }

@@ -10,6 +10,7 @@ from pathlib import Path
 from typing import Any
 
 from meshwarden.config import fields as f
+from meshwarden.config.driver_options import driver_options
 from meshwarden.config.model import (
     ACTUATOR_KINDS,
     WATCHDOG_ACTIONS,
@@ -25,6 +26,7 @@ from meshwarden.config.model import (
     MonitorConfig,
     RackConfig,
     SafetyConfig,
+    ScpiOptions,
     ServiceConfig,
     WatchdogConfig,
 )
@@ -48,6 +50,8 @@ BOARD_KEYS = (
     "retries",
     "error_rate_limit",
     "baud_rate",
+    "options",
+    "interlock",
 )
 ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
 ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
@@ -88,7 +92,13 @@ def _board(p: f.Problems, path: PathKey, raw: Any) -> BoardConfig | None:
         retries=s.get("retries", f.integer(0, 10), defaults.retries),
         error_rate_limit=s.get("error_rate_limit", f.fraction, defaults.error_rate_limit),
         baud_rate=s.get("baud_rate", f.integer(1200, 12_000_000), defaults.baud_rate),
+        interlock=s.get("interlock", f.boolean, defaults.interlock),
     )
+    if board["driver"] is not f.BAD and s.ok:
+        board["options"] = driver_options(p, (*path, "options"), board["driver"], s.value.get("options"))
+        options = board["options"]
+        if board["interlock"] is True and isinstance(options, ScpiOptions) and options.interlock_query is None:
+            p.add((*path, "interlock"), "an interlock needs a way to read it: options.interlock_query is null")
     if any(v is f.BAD for v in board.values()) or f.BAD in (board["watchdog"].timeout_s, board["watchdog"].action):
         return None
     return BoardConfig(**board)
@@ -289,7 +299,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
     if "chip" in top.value and chip.ok and not chip.items("actuators"):
         p.add(("chip", "actuators"), "the chip needs at least one actuator")
 
-    safety = top.sub("safety", ("pull_in_margin", "margin_override"))
+    safety = top.sub("safety", ("pull_in_margin", "margin_override", "interlock_poll_s"))
     margin = safety.get("pull_in_margin", f.fraction, SafetyConfig().pull_in_margin)
     override = None
     if "margin_override" in safety.value:
@@ -297,6 +307,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         measured, reason = o.get("measured_pull_in", f.text), o.get("reason", f.text)
         if o.ok and f.BAD not in (measured, reason):
             override = MarginOverride(measured, reason)
+    poll_s = safety.get("interlock_poll_s", f.quantity(SECONDS, maximum=1.0), SafetyConfig().interlock_poll_s)
     journal = top.sub("journal", ("path",))
     journal_path = journal.get("path", f.path_in(p.directory(("journal", "path"))))
     service = _service(p, top.value.get("service"))
@@ -309,7 +320,7 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         rack=RackConfig(tuple(boards)),
         chip=ChipConfig(tuple(actuators), tuple(gates), tuple(monitors), lattice),
         journal=JournalConfig(journal_path),
-        safety=SafetyConfig(margin, override),
+        safety=SafetyConfig(margin, override, poll_s),
         service=service,
         source=source,
     )

@@ -43,9 +43,18 @@ def check_config(config: Config, p: f.Problems) -> None:
 
 
 def _check_boards(config: Config, p: f.Problems) -> None:
+    from meshwarden.drivers.registry import known_drivers  # the shipped ones and entry points
+
+    drivers = known_drivers()
     _index_of(lambda i: ("rack", "boards", i), [b.id for b in config.rack.boards], p, "board")
     seen_links: dict[tuple[str, int], str] = {}
     for i, board in enumerate(config.rack.boards):
+        if board.driver not in drivers:
+            p.add(
+                ("rack", "boards", i, "driver"),
+                f"unknown board driver '{board.driver}' (known: {', '.join(sorted(drivers))})"
+                f"{f.suggest(board.driver, drivers)}",
+            )
         link = (board.url, board.address)
         if link in seen_links and seen_links[link] != board.id:
             p.add(

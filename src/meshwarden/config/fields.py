@@ -159,6 +159,12 @@ def quantity(dimension: Dimension, *, positive: bool = True, maximum: float | No
     return convert
 
 
+def boolean(value: Any) -> bool:
+    if not isinstance(value, bool):
+        raise ValueError(f"expected true or false, got {value!r}")
+    return value
+
+
 def fraction(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 <= float(value) < 1.0:
         raise ValueError(f"expected a fraction from 0 to below 1, got {value!r}")

@@ -11,7 +11,7 @@ from __future__ import annotations
 from collections.abc import Iterator
 from dataclasses import dataclass, field
 from pathlib import Path
-from typing import Literal
+from typing import Any, Literal
 
 ActuatorKind = Literal["phase", "coupler"]
 WatchdogAction = Literal["hold", "ramp_to_zero"]
@@ -44,6 +44,43 @@ class WatchdogConfig:
     action: WatchdogAction = "ramp_to_zero"
 
 
+TERMINATIONS = {"lf": "\n", "crlf": "\r\n", "cr": "\r"}
+
+
+@dataclass(frozen=True)
+class ScpiOptions:
+    """How a board speaking SCPI (driver ``scpi``) is commanded: command templates with
+    ``{channel}``, ``{input}``, ``{volts}``, ``{integration_s}``, ``{ohms}``, ``{timeout_s}``,
+    ``{action}`` placeholders; a template set to null means the instrument has no such command.
+    See docs/drivers.md."""
+
+    write_termination: str = "lf"
+    read_termination: str = "lf"
+    channel_base: int = 1  # the number the instrument gives output 0 (SCPI instruments count from 1)
+    units_per_line: int = 64  # program message units joined with ';' in one line at most
+    identify: str = "*IDN?"
+    expect_model: str | None = None  # the model field *IDN? must report, if set
+    set_volts: str = "SOUR{channel}:VOLT {volts}"
+    query_volts: str = "SOUR{channel}:VOLT?"
+    set_limit: str | None = "SOUR{channel}:VOLT:LIM {volts}"
+    output_on: str | None = "OUTP{channel} ON"
+    output_off: str | None = "OUTP{channel} OFF"
+    query_output: str | None = "OUTP{channel}?"
+    read_sense: str | None = "MEAS{channel}:VOLT?"
+    read_input: str | None = "INP{input}:CURR? {integration_s}"
+    set_gain: str | None = "INP{input}:GAIN {ohms}"
+    error_query: str = "SYST:ERR?"
+    event_status: str = "*ESR?"
+    clear_status: str = "*CLS"
+    interlock_query: str | None = "SYST:INT?"
+    watchdog: str | None = "SYST:WDOG {timeout_s},{action}"
+    watchdog_query: str | None = "SYST:WDOG:TRIP?"
+    watchdog_words: tuple[str, str, str] = ("OFF", "HOLD", "ZERO")  # off, hold, ramp_to_zero
+    reset: str = "*RST"
+    allow_reset: bool = False
+    adc_full_scale_volts: float = 2.5
+
+
 @dataclass(frozen=True)
 class BoardConfig:
     """One high-voltage DAC driver board in the rack."""
@@ -63,6 +100,8 @@ class BoardConfig:
     retries: int = 3
     error_rate_limit: float = 0.25
     baud_rate: int = 115200
+    options: Any = None  # the driver's own options: ScpiOptions for scpi, a mapping for others
+    interlock: bool = False  # the board has an interlock input the daemon watches
 
 
 @dataclass(frozen=True)
@@ -177,6 +216,7 @@ class SafetyConfig:
 
     pull_in_margin: float = 0.15
     margin_override: MarginOverride | None = None
+    interlock_poll_s: float = 0.05  # how often every configured interlock is read
 
 
 @dataclass(frozen=True)

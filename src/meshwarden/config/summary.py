@@ -20,6 +20,7 @@ def summarize(config: Config) -> str:
             f"   monitor inputs {used_inputs[b.id]:>3} used / {b.monitor_inputs - used_inputs[b.id]:>3} free"
             f"   {b.dac_bits}-bit DAC, {b.full_scale_volts:g} V full scale"
             f"   watchdog {b.watchdog.timeout_s:g} s -> {b.watchdog.action}"
+            f"   driver {b.driver}{', interlock watched' if b.interlock else ''}"
         )
     by_kind = ", ".join(f"{kinds[k]} {k}" for k in ("coupler", "phase"))
     lines.append(f"actuators: {len(config.chip.actuators)} ({by_kind})")

@@ -68,6 +68,7 @@ class BoardStatus:
     watchdog_remaining_s: float
     crc_errors: int
     framing_errors: int
+    interlock_open: bool = False  # the board's interlock contact is open now (a live level)
 
 
 @dataclass(frozen=True)
@@ -329,7 +330,12 @@ class BoardDriver(ABC):
             r.watchdog_remaining_ms / 1000.0,
             r.crc_errors,
             r.framing_errors,
+            bool(flags & StatusFlag.INTERLOCK_OPEN),
         )
+
+    def interlock_open(self) -> bool:
+        """Whether the board's interlock contact is open now (read from its status)."""
+        return self.status().interlock_open
 
     def reset(self) -> None:
         self._doubted("board reset")

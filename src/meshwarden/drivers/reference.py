@@ -20,66 +20,26 @@ board uses when it cannot read the frame's own).
 
 from __future__ import annotations
 
-import contextlib
 import time
 
-import serial
-
 from meshwarden.config.model import BoardConfig
-from meshwarden.drivers.base import BoardDriver
-from meshwarden.errors import LinkError, LinkTimeout, ProtocolError
+from meshwarden.drivers.port_link import PortLinkDriver
+from meshwarden.errors import ProtocolError
 from meshwarden.protocol import Frame, FrameDecoder, decode_reply, encode_frame
 from meshwarden.protocol import messages as m
 from meshwarden.protocol.messages import NakReason
-from meshwarden.transport import open_port
-
-READ_SLICE_S = 0.02
-BACKOFF_START_S = 0.05
-BACKOFF_MAX_S = 2.0
 
 
-class ReferenceDriver(BoardDriver):
+class ReferenceDriver(PortLinkDriver):
     """A board speaking the reference protocol."""
 
     def __init__(self, config: BoardConfig) -> None:
         super().__init__(config)
-        self.port: serial.SerialBase | None = None
         self.decoder = FrameDecoder()
         self.seq = 0
-        self._backoff = BACKOFF_START_S
-        self._next_open = 0.0
 
-    def _open_link(self) -> None:
-        self._close_link()  # never two handles on one port (an exclusive lock would refuse the second)
-        try:
-            self.port = open_port(self.config.url, READ_SLICE_S, baud_rate=self.config.baud_rate)
-        except (serial.SerialException, OSError, ValueError) as exc:
-            raise LinkError(
-                f"board {self.config.id}: cannot open {self.config.url}: {exc}", board=self.config.id
-            ) from exc
-        self.port.reset_input_buffer()
+    def _link_opened(self) -> None:
         self.decoder.reset()
-        self._backoff = BACKOFF_START_S
-
-    def _close_link(self) -> None:
-        if self.port is not None:
-            with contextlib.suppress(serial.SerialException, OSError):
-                self.port.close()
-            self.port = None
-
-    def _reconnect(self) -> bool:
-        """Try to reopen a lost link, no more often than the backoff allows."""
-        now = time.monotonic()
-        if now < self._next_open:
-            return False
-        try:
-            self._open_link()
-            self.log.warning("link reopened")
-            return True
-        except LinkError:
-            self._next_open = now + self._backoff
-            self._backoff = min(self._backoff * 2, BACKOFF_MAX_S)
-            return False
 
     def _next_seq(self) -> int:
         self.seq = self.seq % 255 + 1
@@ -88,36 +48,8 @@ class ReferenceDriver(BoardDriver):
     def _exchange(self, request: m.Message) -> m.Message:
         seq = self._next_seq()
         wire = encode_frame(Frame(self.config.address, seq, request.CODE, request.pack()))
-        last_error = "no reply"
-        for attempt in range(self.config.retries + 1):
-            if self.abort.is_set() and request.CODE != m.Command.ZERO_ALL:
-                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
-            if self.port is None and not self._reconnect():
-                self.note_attempt(False)
-                last_error = "link down"
-                time.sleep(min(self.config.timeout_s, max(self._next_open - time.monotonic(), 0.0)))
-                continue
-            try:
-                reply = self._attempt(wire, seq, request)
-            except (serial.SerialException, OSError) as exc:
-                self.log.warning("link lost", error=str(exc))
-                self._close_link()
-                self.note_attempt(False)
-                last_error = f"link lost: {exc}"
-                continue
-            if isinstance(reply, str):
-                self.note_attempt(False)
-                last_error = reply
-                if attempt < self.config.retries:
-                    self.log.debug("retry", command=type(request).__name__, seq=seq, reason=reply)
-                continue
-            self.note_attempt(True)
-            return reply
-        raise LinkTimeout(
-            f"board {self.config.id}: {type(request).__name__} failed after "
-            f"{self.config.retries + 1} attempts ({last_error})",
-            board=self.config.id,
-        )
+        emergency = request.CODE == m.Command.ZERO_ALL
+        return self._with_retries(lambda: self._attempt(wire, seq, request), type(request).__name__, emergency)
 
     def _attempt(self, wire: bytes, seq: int, request: m.Message) -> m.Message | str:
         """One send and wait: the reply, or a short reason to retry."""
@@ -134,8 +66,7 @@ class ReferenceDriver(BoardDriver):
                 retry_reason = retry_reason or verdict
             if retry_reason is not None:
                 return retry_reason
-            if self.abort.is_set() and request.CODE != m.Command.ZERO_ALL:
-                raise LinkError(f"board {self.config.id}: aborted by emergency stop", board=self.config.id)
+            self._check_abort(request.CODE == m.Command.ZERO_ALL)
         return "timeout"
 
     def _judge(self, item: Frame | ProtocolError, seq: int, request: m.Message) -> m.Message | str | None:

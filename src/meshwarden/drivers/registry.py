@@ -24,6 +24,7 @@ ENTRY_POINT_GROUP = "meshwarden.board_drivers"
 
 _DRIVERS: dict[str, tuple[str, str]] = {
     "reference": ("meshwarden.drivers.reference", "ReferenceDriver"),
+    "scpi": ("meshwarden.drivers.scpi", "ScpiDriver"),
 }
 
 

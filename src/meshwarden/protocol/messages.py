@@ -59,6 +59,9 @@ class StatusFlag(enum.IntFlag):
     OUTPUT_FAULT = 0x0002
     POWER_ON = 0x0004  # set at boot, cleared by CLEAR_FAULTS: "this board was (re)started"
     RAMPING = 0x0008
+    # The board's interlock input (a door switch, a latching stop button, a shutter contact) is
+    # open. Only reported: the board does not act on it; the host stops the whole rack.
+    INTERLOCK_OPEN = 0x0010
 
 
 def _unpack(fmt: str, payload: bytes, what: str) -> tuple[Any, ...]:

@@ -40,7 +40,16 @@ class Dispatcher:
 
     def _on_event(self, kind: str, detail: dict[str, Any]) -> None:
         self._spawn(self.telemetry.publish("event", {"kind": kind, **detail}))
-        if kind in ("arm", "disarm", "estop", "board_reset_detected", "board_faulted", "restore"):
+        if kind in (
+            "arm",
+            "disarm",
+            "estop",
+            "board_reset_detected",
+            "board_faulted",
+            "restore",
+            "interlock_open",
+            "interlock_closed",
+        ):
             self._spawn(self.telemetry.publish("state", self.state()))
 
     def _spawn(self, work: Any) -> None:
