@@ -120,7 +120,7 @@ def test_status_table_shows_each_watched_interlock() -> None:
             "boards": {"b0": {**board, "interlock": "open"}, "b1": {**board, "interlock": None}},
         },
     )
-    assert "b0: boot 1, interlock open, b1: boot 1\n" in text
+    assert "  b0       boot 1  interlock open\n  b1       boot 1  ok\n" in text
 
 
 def test_interlock_over_the_bus(tmp_path: Path) -> None:

@@ -3,24 +3,12 @@
 from __future__ import annotations
 
 import json
-from collections.abc import Iterator
-from pathlib import Path
 
 import pytest
 
 from meshwarden.errors import UnknownTargetRefused
-from tests.control.bench import write_bench
-from tests.service.daemon import Daemon, start_daemon
+from tests.service.daemon import Daemon
 from tests.service.test_daemon import cli
-
-
-@pytest.fixture
-def daemon(tmp_path: Path) -> Iterator[Daemon]:
-    config, _ = write_bench(tmp_path)
-    d = start_daemon(config, tmp_path)
-    yield d
-    assert d.stop() == 0, d.log.read_text()
-    assert "Traceback" not in d.log.read_text()
 
 
 def test_calibrate_from_the_command_line_prints_the_pinned_report(daemon: Daemon) -> None:

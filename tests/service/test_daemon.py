@@ -9,7 +9,6 @@ import signal
 import subprocess
 import sys
 import time
-from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
@@ -20,15 +19,6 @@ from meshwarden.errors import LeaseRefused, MeshwardenError, NotArmedRefused, Un
 from tests.control.bench import write_bench
 from tests.service.daemon import Daemon, start_daemon
 from tests.sim.test_transports import start_server, stop_server
-
-
-@pytest.fixture
-def daemon(tmp_path: Path) -> Iterator[Daemon]:
-    config, _ = write_bench(tmp_path)
-    d = start_daemon(config, tmp_path)
-    yield d
-    assert d.stop() == 0, d.log.read_text()
-    assert "Traceback" not in d.log.read_text()
 
 
 def cli(*args: str) -> subprocess.CompletedProcess[str]:
