@@ -1,0 +1,445 @@
+"""The fault scan: a thin async runner over the pure cores (designs, verdicts, scan_paths).
+
+One scan, under a held motion claim on the actuators it tests:
+
+1. ``rest_frames`` monitor frames and sense reads at the operating point (the noise of every
+   monitor, its rest level, and the drivers at the operating point);
+2. the frames of a 0/1 multiplexed design (:func:`.designs.s_matrix_design`: a rest frame and
+   the rows of an S-matrix) over the actuators a monitor can see, each moved by its own small
+   step: the step that changes its calibrated value by ``kappa_step`` (or ``phase_step_rad``),
+   toward zero when it sits high enough, else up, never above ``test_volts`` (so no output
+   exceeds the larger of its operating voltage and the test voltage). N actuators cost the
+   smallest power of two above N frames, plus the rest frames;
+3. the actuators no monitor can see are stepped once together for the driver check (sense only,
+   no monitor frame);
+4. every output goes back to its initial code, and the codes are compared.
+
+Steps are not journaled (the journal keeps the operating point, which is where the scan ends).
+Verdicts: monitors first (:func:`.verdicts.monitor_verdict`, :func:`.verdicts.dark_monitor_verdict`),
+then each actuator from its sense readings and its strongest response on a healthy monitor
+that can see it (:func:`.verdicts.actuator_verdict`). With a lattice topology the scan knows who
+can see what (:mod:`.scan_paths`); without one it cannot tell a stuck actuator from one no
+monitor sees, and says so (``unobservable``).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from dataclasses import dataclass, field
+from typing import Any
+
+import numpy as np
+
+from meshwarden.controller import Controller
+from meshwarden.errors import MeshwardenError, StoppedRefused
+from meshwarden.mapping import code_to_volts, volts_to_code
+from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
+from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.scan_paths import gate_setting, lit_monitors, sight, upstream_of
+from meshwarden.procedures.verdicts import (
+    Verdict,
+    actuator_verdict,
+    dark_monitor_verdict,
+    detector_noise_a,
+    monitor_verdict,
+)
+
+FAULTY = ("no_response", "driver_fault", "drifted")
+
+
+@dataclass(frozen=True)
+class ScanSettings:
+    """How hard a scan pushes and how it judges (the ``scans:`` section of the configuration)."""
+
+    test_volts: float = 10.0  # no step goes up past this (steps from higher operating points go down)
+    max_step_volts: float = 2.0
+    kappa_step: float = 0.002  # the calibrated change each step aims for
+    phase_step_rad: float = 0.005
+    rest_frames: int = 4
+    integration_s: float = 1e-3
+    temperature_k: float = 300.0
+    sense_noise_volts: float = 0.005
+    dark_current_a: float = 0.0  # the dark level assumed where no unlit monitor shows it
+    k_sigma: float = 5.0
+    false_alarm: float = 1e-6
+
+
+@dataclass
+class ScanControl:
+    """A cooperative stop for a running scan: it returns the outputs, then ends ``stopped``."""
+
+    reason: str | None = None
+    on_stop: list[Callable[[str], None]] = field(default_factory=list)
+
+    def stop(self, reason: str) -> None:
+        if self.reason is None:
+            self.reason = reason
+
+
+@dataclass
+class _Plan:
+    """One actuator's part in a scan."""
+
+    actuator: str
+    gate: str | None
+    attribute: str
+    code0: int
+    volts0: float
+    step_volts: float = 0.0  # signed, after snapping to a DAC code
+    value_step: float = 0.0
+    seen_by: frozenset[str] | None = None  # None: no topology, any monitor may see it
+    reason: str = ""
+    commanded: list[float] = field(default_factory=list)
+    sensed: list[float] = field(default_factory=list)
+
+
+def _gate_of(controller: Controller) -> dict[str, tuple[str, str]]:
+    out = {}
+    for gid, gate in controller.gates.items():
+        out[gate.coupler] = (gid, "kappa")
+        out[gate.phase] = (gid, "phase")
+    return out
+
+
+def _volts(controller: Controller, aid: str, code: int) -> float:
+    board = controller.actuators[aid].board
+    return code_to_volts(code, board.full_scale_volts, board.dac_bits)
+
+
+def _code(controller: Controller, aid: str, volts: float) -> int:
+    board = controller.actuators[aid].board
+    return volts_to_code(volts, board.full_scale_volts, board.dac_bits)
+
+
+def _choose_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> None:
+    """Signed step (volts, on a code) that moves the calibrated value by about the wanted amount."""
+    act = controller.actuators[plan.actuator]
+    wanted = settings.kappa_step if plan.attribute == "kappa" else settings.phase_step_rad
+    v0 = plan.volts0
+    try:
+        value0 = act.map.value_at(v0)
+        probe = min(0.05, max(v0, 0.05))
+        down = v0 >= probe
+        slope = abs(act.map.value_at(v0 - probe if down else v0 + probe) - value0) / probe
+    except MeshwardenError as exc:
+        plan.reason = f"its operating point is outside its calibration ({exc.message})"
+        return
+    size = min(settings.max_step_volts, wanted / slope if slope > 0 else math.inf)
+    ceiling = min(settings.test_volts, act.limit.hard_limit_volts)
+    if v0 >= size:
+        target = v0 - size
+    else:
+        target = min(v0 + size, ceiling)
+    code = _code(controller, plan.actuator, target)
+    if code == plan.code0:
+        code = plan.code0 - 1 if plan.code0 > 0 else plan.code0 + 1
+    if code > act.limit.hard_limit_code or (code > plan.code0 and _volts(controller, plan.actuator, code) > ceiling):
+        plan.reason = f"no room for a test step below {ceiling:g} V from {v0:.4g} V"
+        return
+    plan.step_volts = _volts(controller, plan.actuator, code) - v0
+    try:
+        plan.value_step = act.map.value_at(v0 + plan.step_volts) - value0
+    except MeshwardenError as exc:
+        plan.reason = f"its test step leaves its calibration ({exc.message})"
+        return
+    if abs(plan.value_step) < wanted / 4:
+        unit = "rad" if plan.attribute == "phase" else "(kappa)"
+        plan.reason = (
+            f"at {v0:.4g} V a {abs(plan.step_volts):.3g} V step changes its value by only {abs(plan.value_step):.2g} "
+            f"{unit}: no first-order effect at this operating point"
+        )
+
+
+def _monitor_noise(controller: Controller, settings: ScanSettings, level_a: float, monitor: Any) -> tuple[float, float]:
+    """(expected rms noise of one reading at ``level_a``, one ADC LSB) in amps, for ``monitor``."""
+    board = controller.boards[monitor.input.board]
+    bits = controller.config.rack.board(monitor.input.board).adc_bits
+    full_scale_v = board.identity.adc_full_scale_volts if board.identity is not None else 0.0
+    lsb_a = full_scale_v / (1 << bits) / monitor.transimpedance_ohms
+    bandwidth = 1.0 / (2.0 * settings.integration_s)  # integrate-and-dump, B = 1/(2T) (standard)
+    noise = detector_noise_a(
+        max(level_a, 0.0), 0.0, bandwidth, monitor.transimpedance_ohms, settings.temperature_k, lsb_a
+    )
+    return noise, lsb_a
+
+
+async def run_scan(
+    controller: Controller,
+    targets: list[str] | None = None,
+    *,
+    owner: str,
+    settings: ScanSettings | None = None,
+    topology: LatticeTopology | None = None,
+    control: ScanControl | None = None,
+    progress: Callable[[int, int], None] | None = None,
+    on_claim: Callable[[Any], None] | None = None,
+) -> dict[str, Any]:
+    """Scan ``targets`` (actuator or gate ids; default every actuator) and return the report."""
+    settings = settings or ScanSettings()
+    control = control or ScanControl()
+    ids = _resolve(controller, targets)
+    sense0 = await controller.read_sense()
+    blocked = controller._state.unavailable({controller.actuators[a].board.id for a in ids})
+    untested = [a for a in ids if a not in sense0 or controller.actuators[a].board.id in blocked]
+    tested = [a for a in ids if a not in untested]
+    gate_of = _gate_of(controller)
+    plans = {}
+    for aid in tested:
+        code0 = int(controller.describe(aid)["code"])
+        gate, attribute = gate_of.get(aid, (None, controller.actuators[aid].config.kind))
+        if attribute == "coupler":
+            attribute = "kappa"
+        plans[aid] = _Plan(aid, gate, attribute, code0, _volts(controller, aid, code0))
+    settings_of = _gate_settings(controller, gate_of)
+    for plan in plans.values():
+        if plan.gate is None:
+            plan.reason = "it belongs to no gate"
+        elif topology is not None:
+            seen = sight(topology, settings_of, plan.gate, plan.attribute)
+            plan.seen_by, plan.reason = seen.monitors, seen.reason
+        unseen = plan.reason
+        _choose_step(controller, plan, settings)
+        plan.reason = unseen or plan.reason
+    optical = [a for a in tested if not plans[a].reason]
+    sense_only = [a for a in tested if plans[a].reason and plans[a].step_volts != 0.0]
+    design = s_matrix_design(len(optical)) if optical else None
+
+    frames: list[dict[str, float]] = []
+    rest: list[dict[str, float]] = []
+    total = settings.rest_frames + (design.frames if design else 0) + 2
+    done = 0
+
+    def tick() -> None:
+        nonlocal done
+        done += 1
+        if progress is not None:
+            progress(done, total)
+
+    final_codes: dict[str, int] = {}
+    stopped: str | None = None
+    async with controller.claim(tested, owner=owner, purpose="scan") as claim:
+        control.on_stop.append(claim.request_stop)
+        if on_claim is not None:
+            on_claim(claim)
+
+        async def frame(moves: dict[str, float], *, monitors: bool) -> dict[str, float] | None:
+            if moves:
+                await claim.move(moves, volts=True, journal=False)
+            sense = await claim.read_sense()
+            for aid, plan in plans.items():
+                if aid in sense:
+                    plan.commanded.append(_volts(controller, aid, int(controller.describe(aid)["code"])))
+                    plan.sensed.append(sense[aid])
+            if not monitors:
+                return None
+            levels = await claim.read_monitors(average=1, integration_s=settings.integration_s)
+            return {m: r["amps"] for m, r in levels.items()}
+
+        home = {a: plans[a].volts0 for a in tested}
+        try:
+            for _ in range(settings.rest_frames):
+                _check(control)
+                rest.append(await frame({}, monitors=True) or {})
+                tick()
+            if design is not None:
+                for row in design.pattern:
+                    _check(control)
+                    moves = {a: plans[a].volts0 + x * plans[a].step_volts for a, x in zip(optical, row, strict=True)}
+                    frames.append(await frame(moves, monitors=True) or {})
+                    tick()
+                await claim.move({a: plans[a].volts0 for a in optical}, volts=True, journal=False)
+            if sense_only:
+                _check(control)
+                await frame({a: plans[a].volts0 + plans[a].step_volts for a in sense_only}, monitors=False)
+            tick()
+        except StoppedRefused as exc:
+            stopped = exc.message
+        finally:
+            if not claim.ended:
+                await claim.move(home, volts=True, journal=False)
+            final_codes = {a: int(controller.describe(a)["code"]) for a in tested}
+            tick()
+    if stopped is not None:
+        raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
+    restored = all(final_codes[a] == plans[a].code0 for a in tested)
+    report = _judge(controller, settings, topology, settings_of, plans, untested, rest, frames, design, optical)
+    report["frames"] = len(rest) + len(frames)
+    report["outputs_restored"] = restored
+    report["actuators_tested"] = len(tested)
+    return report
+
+
+def _check(control: ScanControl) -> None:
+    if control.reason is not None:
+        raise StoppedRefused(control.reason)
+
+
+def _resolve(controller: Controller, targets: list[str] | None) -> list[str]:
+    if not targets:
+        return list(controller.actuators)
+    out: list[str] = []
+    for target in targets:
+        if target in controller.actuators:
+            ids = [target]
+        elif target in controller.gates:
+            ids = [controller.gates[target].coupler, controller.gates[target].phase]
+        else:
+            from meshwarden.errors import UnknownTargetRefused
+
+            raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
+        out += [a for a in ids if a not in out]
+    return out
+
+
+def _gate_settings(controller: Controller, gate_of: dict[str, tuple[str, str]]) -> dict[str, str]:
+    out = {}
+    for gid, gate in controller.gates.items():
+        act = controller.actuators[gate.coupler]
+        try:
+            kappa: float | None = act.map.value_at(float(controller.describe(gate.coupler)["volts"]))
+        except MeshwardenError:
+            kappa = None
+        out[gid] = gate_setting(kappa)
+    return out
+
+
+def _judge(
+    controller: Controller,
+    settings: ScanSettings,
+    topology: LatticeTopology | None,
+    settings_of: dict[str, str],
+    plans: dict[str, _Plan],
+    untested: list[str],
+    rest: list[dict[str, float]],
+    frames: list[dict[str, float]],
+    design: PerturbationDesign | None,
+    optical: list[str],
+) -> dict[str, Any]:
+    monitors = {m.id: m for m in controller.config.chip.monitors}
+    names = list(monitors)
+    rest_a = np.array([[r[m] for m in names] for r in rest])
+    frame_a = np.array([[f[m] for m in names] for f in frames]) if frames else np.zeros((0, len(names)))
+    noise = {m: _monitor_noise(controller, settings, float(rest_a[:, i].mean()), monitors[m]) for i, m in enumerate(names)}
+
+    # responses (amps per design step) and their standard errors, actuators x monitors
+    responses = np.zeros((len(optical), len(names)))
+    se = np.ones((len(optical), len(names)))
+    if design is not None:
+        responses, _ = estimate_responses(design, frame_a, 1.0)
+        factors = np.sqrt(design.variance_factors())
+        sigma = np.array([noise[m][0] for m in names])
+        se = np.outer(factors, sigma)
+    significant = np.abs(responses) >= settings.k_sigma * se
+
+    # monitors
+    lit = lit_monitors(topology, settings_of) if topology is not None else None
+    full_scale = {m: noise[m][1] * (1 << controller.config.rack.board(monitors[m].input.board).adc_bits) for m in names}
+    dark_verdicts: dict[str, Verdict] = {}
+    for i, m in enumerate(names):
+        if lit is not None and m not in lit:
+            dark_verdicts[m] = dark_monitor_verdict(
+                dark_a=rest_a[:, i], full_scale_a=full_scale[m], dark_noise_a=noise[m][0], false_alarm=settings.false_alarm
+            )
+    healthy_dark = [names.index(m) for m, v in dark_verdicts.items() if v.verdict == "ok"]
+    if healthy_dark:
+        dark_ref = rest_a[:, healthy_dark].mean(axis=1)
+        dark_source = "the unlit monitors' mean"
+    else:
+        dark_ref = np.full(rest_a.shape[0], settings.dark_current_a)
+        dark_source = "the configured dark current"
+    monitor_out: dict[str, Verdict] = {}
+    for i, m in enumerate(names):
+        if m in dark_verdicts:
+            monitor_out[m] = dark_verdicts[m]
+            continue
+        if lit is None and rest_a[:, i].mean() - dark_ref.mean() < settings.k_sigma * noise[m][0]:
+            monitor_out[m] = dark_monitor_verdict(
+                dark_a=rest_a[:, i], full_scale_a=full_scale[m], dark_noise_a=noise[m][0], false_alarm=settings.false_alarm
+            )
+            continue
+        watchers = [j for j, a in enumerate(optical) if plans[a].seen_by is not None and m in (plans[a].seen_by or ())]
+        neighbours = any(significant[j, k] for j in watchers for k in range(len(names)) if k != i)
+        dark_noise, lsb = _monitor_noise(controller, settings, float(dark_ref.mean()), monitors[m])
+        monitor_out[m] = monitor_verdict(
+            dark_a=dark_ref if dark_ref.size >= 2 else np.repeat(dark_ref, 2),
+            lit_a=rest_a[:, i],
+            frame_levels_a=frame_a[:, i] if frames else rest_a[:, i],
+            full_scale_a=full_scale[m],
+            dark_noise_a=dark_noise,
+            lit_noise_a=noise[m][0],
+            neighbours_changed=neighbours,
+            adc_lsb_a=lsb,
+            k_sigma=settings.k_sigma,
+            false_alarm=settings.false_alarm,
+        )
+    usable = {m for m, v in monitor_out.items() if v.verdict == "ok" and (lit is None or m in lit)}
+
+    # actuators
+    actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
+    for aid, plan in plans.items():
+        act = controller.actuators[aid]
+        common = {
+            "readable": True,
+            "commanded_volts": plan.commanded,
+            "sense_volts": plan.sensed,
+            "lsb_volts": act.limit.lsb_volts,
+            "sense_noise_volts": settings.sense_noise_volts,
+            "k_sigma": settings.k_sigma,
+        }
+        if aid not in optical:
+            actuator_out[aid] = actuator_verdict(**common, unobservable_reason=plan.reason or "no monitor can see it")
+            continue
+        j = optical.index(aid)
+        candidates = [k for k, m in enumerate(names) if m in usable and (plan.seen_by is None or m in plan.seen_by)]
+        if not candidates:
+            why = "every monitor that can see it is faulty" if plan.seen_by else "no healthy lit monitor"
+            actuator_out[aid] = actuator_verdict(**common, unobservable_reason=why)
+            continue
+        best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
+        verdict = actuator_verdict(**common, response=float(responses[j, best]), response_se=float(se[j, best]))
+        evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
+        reason = verdict.reason
+        if verdict.verdict == "no_response" and topology is None:
+            verdict = Verdict(
+                "unobservable",
+                "no monitor responded, and without the lattice topology a stuck actuator cannot be told from one no "
+                "monitor sees",
+                evidence,
+            )
+        else:
+            verdict = Verdict(verdict.verdict, reason, evidence | {"monitor": names[best]})  # type: ignore[dict-item]
+        actuator_out[aid] = verdict
+    if topology is not None:
+        _blame_upstream(topology, settings_of, plans, actuator_out)
+    return {
+        "actuators": {a: v.as_dict() for a, v in sorted(actuator_out.items())},
+        "monitors": {m: v.as_dict() for m, v in monitor_out.items()},
+        "design": {"kind": design.kind if design else "none", "actuators": len(optical)},
+        "dark_reference": dark_source,
+        "topology": topology is not None,
+    }
+
+
+def _blame_upstream(
+    topology: LatticeTopology, settings_of: dict[str, str], plans: dict[str, _Plan], verdicts: dict[str, Verdict]
+) -> None:
+    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed."""
+    faulty = [a for a, v in verdicts.items() if v.verdict in FAULTY and a in plans]
+    for aid, verdict in list(verdicts.items()):
+        plan = plans.get(aid)
+        if plan is None or plan.gate is None or verdict.verdict != "no_response":
+            continue
+        culprits = [
+            f
+            for f in faulty
+            if f != aid
+            and plans[f].gate is not None
+            and upstream_of(topology, settings_of, str(plans[f].gate), plans[f].attribute, plan.gate, plan.attribute)
+        ]
+        if culprits:
+            verdicts[aid] = Verdict(
+                "unobservable",
+                f"its light passes {', '.join(sorted(culprits))}, found faulty, so its own response cannot be judged",
+                verdict.evidence,
+            )
