@@ -32,8 +32,9 @@ def _lines(rack: str, time_scale: float) -> str:
             gates.append(f"    - {{id: {gate}, coupler: {gate}c, phase: {gate}p}}")
             column.append(f"{gate}: {2 * i}")
             channel += 2
-        for k, (name, spot) in enumerate(((f"o{i}t", f"[1, {2 * i}]"), (f"o{i}b", f"[1, {2 * i + 1}]"),
-                                          (f"d{i}", f"[-1, {2 * i + 1}]"))):
+        for k, (name, spot) in enumerate(
+            ((f"o{i}t", f"[1, {2 * i}]"), (f"o{i}b", f"[1, {2 * i + 1}]"), (f"d{i}", f"[-1, {2 * i + 1}]"))
+        ):
             monitors.append(f'    - {{id: {name}, input: "b0:{3 * i + k}"}}')
             taps.append(f"{name}: {spot}")
     inputs = ", ".join(str(2 * i) for i in range(BLOCKS))

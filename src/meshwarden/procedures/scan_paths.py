@@ -27,7 +27,7 @@ BAR_CROSS_TOLERANCE = 0.02  # kappa within this of 0 (or 1) counts as bar (or cr
 
 
 def gate_setting(kappa: float | None, tolerance: float = BAR_CROSS_TOLERANCE) -> str:
-    """"bar", "cross" or "split" for a coupler's power coupling (None: unknown, taken as split)."""
+    """ "bar", "cross" or "split" for a coupler's power coupling (None: unknown, taken as split)."""
     if kappa is None:
         return "split"
     if kappa <= tolerance:
@@ -92,9 +92,7 @@ def reached_monitors(
     return reached
 
 
-def sight(
-    topology: LatticeTopology, settings: Mapping[str, str], gate: str, attribute: str
-) -> Sight:
+def sight(topology: LatticeTopology, settings: Mapping[str, str], gate: str, attribute: str) -> Sight:
     """Who can see the ``attribute`` ("kappa" or "phase") of ``gate`` at these gate settings."""
     if gate not in topology.gates:
         return Sight(frozenset(), f"gate {gate} is not in the lattice topology")
@@ -113,16 +111,16 @@ def sight(
         return Sight(frozenset(), f"no light leaves gate {gate} on its phase-shifted arm")
     phased = {top}
     for later in range(column + 1, topology.columns):
-        seen: set[str] = set()
+        mixed: set[str] = set()
         for other, (col, other_top) in topology.gates.items():
             if col != later or not {other_top, other_top + 1} & phased:
                 continue
             pair = {other_top, other_top + 1}
             unmixed = pair - phased
             if settings.get(other, "split") == "split" and unmixed & lit[later - 1]:
-                seen |= reached_monitors(topology, settings, later, pair)
-        if seen:
-            return Sight(frozenset(seen))
+                mixed |= reached_monitors(topology, settings, later, pair)
+        if mixed:
+            return Sight(frozenset(mixed))
         phased = _apply(topology, later, phased, settings)
     return Sight(
         frozenset(),

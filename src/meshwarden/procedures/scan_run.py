@@ -27,6 +27,7 @@ from __future__ import annotations
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
+from functools import partial
 from typing import Any
 
 import numpy as np
@@ -43,6 +44,7 @@ from meshwarden.procedures.verdicts import (
     dark_monitor_verdict,
     detector_noise_a,
     monitor_verdict,
+    noise_threshold,
 )
 
 FAULTY = ("no_response", "driver_fault", "drifted")
@@ -127,10 +129,7 @@ def _choose_step(controller: Controller, plan: _Plan, settings: ScanSettings) ->
         return
     size = min(settings.max_step_volts, wanted / slope if slope > 0 else math.inf)
     ceiling = min(settings.test_volts, act.limit.hard_limit_volts)
-    if v0 >= size:
-        target = v0 - size
-    else:
-        target = min(v0 + size, ceiling)
+    target = v0 - size if v0 >= size else min(v0 + size, ceiling)
     code = _code(controller, plan.actuator, target)
     if code == plan.code0:
         code = plan.code0 - 1 if plan.code0 > 0 else plan.code0 + 1
@@ -320,7 +319,9 @@ def _judge(
     names = list(monitors)
     rest_a = np.array([[r[m] for m in names] for r in rest])
     frame_a = np.array([[f[m] for m in names] for f in frames]) if frames else np.zeros((0, len(names)))
-    noise = {m: _monitor_noise(controller, settings, float(rest_a[:, i].mean()), monitors[m]) for i, m in enumerate(names)}
+    noise = {
+        m: _monitor_noise(controller, settings, float(rest_a[:, i].mean()), monitors[m]) for i, m in enumerate(names)
+    }
 
     # responses (amps per design step) and their standard errors, actuators x monitors
     responses = np.zeros((len(optical), len(names)))
@@ -331,6 +332,11 @@ def _judge(
         sigma = np.array([noise[m][0] for m in names])
         se = np.outer(factors, sigma)
     significant = np.abs(responses) >= settings.k_sigma * se
+    samples = rest_a.shape[0]
+    quiet = [
+        samples < 2 or float(rest_a[:, i].std(ddof=1)) <= noise_threshold(noise[m][0], samples, settings.false_alarm)
+        for i, m in enumerate(names)
+    ]
 
     # monitors
     lit = lit_monitors(topology, settings_of) if topology is not None else None
@@ -338,9 +344,7 @@ def _judge(
     dark_verdicts: dict[str, Verdict] = {}
     for i, m in enumerate(names):
         if lit is not None and m not in lit:
-            dark_verdicts[m] = dark_monitor_verdict(
-                dark_a=rest_a[:, i], full_scale_a=full_scale[m], dark_noise_a=noise[m][0], false_alarm=settings.false_alarm
-            )
+            dark_verdicts[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
     healthy_dark = [names.index(m) for m, v in dark_verdicts.items() if v.verdict == "ok"]
     if healthy_dark:
         dark_ref = rest_a[:, healthy_dark].mean(axis=1)
@@ -354,12 +358,16 @@ def _judge(
             monitor_out[m] = dark_verdicts[m]
             continue
         if lit is None and rest_a[:, i].mean() - dark_ref.mean() < settings.k_sigma * noise[m][0]:
-            monitor_out[m] = dark_monitor_verdict(
-                dark_a=rest_a[:, i], full_scale_a=full_scale[m], dark_noise_a=noise[m][0], false_alarm=settings.false_alarm
-            )
+            monitor_out[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
             continue
-        watchers = [j for j, a in enumerate(optical) if plans[a].seen_by is not None and m in (plans[a].seen_by or ())]
-        neighbours = any(significant[j, k] for j in watchers for k in range(len(names)) if k != i)
+        # frozen needs evidence: an actuator this monitor should see moved another quiet monitor that sees it too
+        watchers = [j for j, a in enumerate(optical) if m in (plans[optical[j]].seen_by or ())]
+        neighbours = any(
+            significant[j, k]
+            for j in watchers
+            for k, other in enumerate(names)
+            if k != i and quiet[k] and other in (plans[optical[j]].seen_by or ())
+        )
         dark_noise, lsb = _monitor_noise(controller, settings, float(dark_ref.mean()), monitors[m])
         monitor_out[m] = monitor_verdict(
             dark_a=dark_ref if dark_ref.size >= 2 else np.repeat(dark_ref, 2),
@@ -377,27 +385,30 @@ def _judge(
 
     # actuators
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
+    seen_at: dict[str, str] = {}
     for aid, plan in plans.items():
         act = controller.actuators[aid]
-        common = {
-            "readable": True,
-            "commanded_volts": plan.commanded,
-            "sense_volts": plan.sensed,
-            "lsb_volts": act.limit.lsb_volts,
-            "sense_noise_volts": settings.sense_noise_volts,
-            "k_sigma": settings.k_sigma,
-        }
+        common = partial(
+            actuator_verdict,
+            readable=True,
+            commanded_volts=plan.commanded,
+            sense_volts=plan.sensed,
+            lsb_volts=act.limit.lsb_volts,
+            sense_noise_volts=settings.sense_noise_volts,
+            k_sigma=settings.k_sigma,
+        )
         if aid not in optical:
-            actuator_out[aid] = actuator_verdict(**common, unobservable_reason=plan.reason or "no monitor can see it")
+            actuator_out[aid] = common(unobservable_reason=plan.reason or "no monitor can see it")
             continue
         j = optical.index(aid)
         candidates = [k for k, m in enumerate(names) if m in usable and (plan.seen_by is None or m in plan.seen_by)]
         if not candidates:
             why = "every monitor that can see it is faulty" if plan.seen_by else "no healthy lit monitor"
-            actuator_out[aid] = actuator_verdict(**common, unobservable_reason=why)
+            actuator_out[aid] = common(unobservable_reason=why)
             continue
         best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
-        verdict = actuator_verdict(**common, response=float(responses[j, best]), response_se=float(se[j, best]))
+        seen_at[aid] = names[best]
+        verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]))
         evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
         reason = verdict.reason
         if verdict.verdict == "no_response" and topology is None:
@@ -408,17 +419,25 @@ def _judge(
                 evidence,
             )
         else:
-            verdict = Verdict(verdict.verdict, reason, evidence | {"monitor": names[best]})  # type: ignore[dict-item]
+            verdict = Verdict(verdict.verdict, reason, evidence)
         actuator_out[aid] = verdict
     if topology is not None:
         _blame_upstream(topology, settings_of, plans, actuator_out)
     return {
-        "actuators": {a: v.as_dict() for a, v in sorted(actuator_out.items())},
+        "actuators": {
+            a: v.as_dict() | ({"monitor": seen_at[a]} if a in seen_at else {}) for a, v in sorted(actuator_out.items())
+        },
         "monitors": {m: v.as_dict() for m, v in monitor_out.items()},
         "design": {"kind": design.kind if design else "none", "actuators": len(optical)},
         "dark_reference": dark_source,
         "topology": topology is not None,
     }
+
+
+def _dark(samples: Any, full_scale_a: float, noise_a: float, settings: ScanSettings) -> Verdict:
+    return dark_monitor_verdict(
+        dark_a=samples, full_scale_a=full_scale_a, dark_noise_a=noise_a, false_alarm=settings.false_alarm
+    )
 
 
 def _blame_upstream(

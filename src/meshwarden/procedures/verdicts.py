@@ -171,7 +171,7 @@ def monitor_verdict(
     noise_floor = positive("dark_noise_a", dark_noise_a)
     dark_limit = noise_threshold(noise_floor, dark.size, false_alarm)
     lit_limit = noise_threshold(positive("lit_noise_a", lit_noise_a), lit.size, false_alarm)
-    everything = np.concatenate([dark, lit, levels])
+    everything = np.concatenate([lit, levels])  # its own readings (the dark level may come from elsewhere)
     spread = float(everything.max() - everything.min())
     evidence = {
         "dark_mean_a": float(dark.mean()),
