@@ -266,6 +266,8 @@ async def run_scan(
     report["frames"] = len(rest) + len(frames)
     report["outputs_restored"] = restored
     report["actuators_tested"] = len(tested)
+    report["layout"] = topology.as_dict() if topology is not None else None
+    report["gates"] = {g: {"coupler": gate.coupler, "phase": gate.phase} for g, gate in controller.gates.items()}
     return report
 
 

@@ -10,6 +10,7 @@ and ``ramp_to_zero`` disarms first. SIGHUP re-reads the client key allow-list.
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import signal
 from collections.abc import Callable
 from pathlib import Path
@@ -48,14 +49,18 @@ async def serve(
             loop.add_signal_handler(signal.SIGHUP, lambda: log.info("keys reloaded", count=bus.reload_keys()))
         if ready is not None:
             ready(bus)
+        schedule = asyncio.ensure_future(bus.dispatcher.scans.run_schedule())  # automatic fault scans
         try:
             await stop.wait()
         finally:
+            schedule.cancel()
             log.info("stopping")
             if signals:
                 for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
                     loop.remove_signal_handler(sig)
             bus.dispatcher.jobs.cancel_all()
+            with contextlib.suppress(asyncio.CancelledError):
+                await schedule
             await bus.close()
             if shutdown == "ramp_to_zero" and not controller.estopped:
                 await controller.disarm(client="shutdown")

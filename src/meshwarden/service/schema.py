@@ -48,6 +48,8 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "arm": ("admin", {}),
     "restore": ("admin", {}),
     "recover": ("admin", {"board": ((str,), True)}),
+    "scan": ("operator", {"targets": ((list,), False), "wait": ((bool,), False)}),
+    "scans": ("observer", {"limit": ((int,), False)}),
 }
 # (op, argument) -> (lowest, highest, unit) allowed, both inclusive
 ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
@@ -56,6 +58,7 @@ ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
     ("events", "since"): (0, 2**63 - 1, "(event id)"),
     ("events", "limit"): (1, 1000, "events"),
     ("lease", "ttl_s"): (MIN_TTL_S, MAX_TTL_S, "s"),
+    ("scans", "limit"): (1, 1000, "scans"),
 }
 MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links are shared
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
@@ -65,7 +68,7 @@ MAX_NAME_CHARS = 100  # an actuator, gate attribute, board or job id; longer nam
 MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
-READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs"}
+READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs", "scans"}
 
 
 @dataclass(frozen=True)
@@ -178,6 +181,10 @@ def parse_request(data: bytes) -> Request:
     if op in ("lease", "release"):
         if not all(isinstance(t, str) for t in args["targets"]):
             raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
+        _check_names(op, "targets", args["targets"])
+    if op == "scan" and "targets" in args:
+        if not all(isinstance(t, str) for t in args["targets"]):
+            raise BusError("bad_request", "scan: 'targets' must be a list of ids")
         _check_names(op, "targets", args["targets"])
     if op in ("cancel", "recover"):
         _check_names(op, "job" if op == "cancel" else "board", [args["job" if op == "cancel" else "board"]])
