@@ -217,8 +217,6 @@ SCAN_KEYS = (
 
 
 def _time_of_day(value: Any) -> str:
-    if isinstance(value, int):  # YAML 1.1 reads an unquoted 02:30 as the number 150
-        raise ValueError(f"write the time of day in quotes, e.g. at: \"02:30\" (read {value!r})")
     if not isinstance(value, str) or not re.fullmatch(r"([01]\d|2[0-3]):[0-5]\d", value):
         raise ValueError(f"expected a time of day HH:MM such as \"02:30\", got {value!r}")
     return value
