@@ -83,8 +83,9 @@ def draw(rng: np.random.Generator) -> Draw:
     for mon in rng.choice(monitors, size=int(rng.integers(0, 3)), replace=False):
         kind = str(rng.choice(MONITOR_FAULTS))
         out.monitor_faults[str(mon)] = kind
-        # extra noise 3e-9 .. 1e-7 A rms: >= 25x the detector's expected 1.1e-10 A (ADC-limited)
-        value = float(10 ** rng.uniform(np.log10(3e-9), -7)) if kind == "noisy_monitor" else 0.0
+        # extra noise 1e-7 .. 1e-6 A rms: above the 1 % of its light a lit monitor may wander by (drift, laser
+        # noise: scans.optical_noise_rel), and ~1000x the detector's expected 1.1e-10 A (ADC-limited)
+        value = float(10 ** rng.uniform(-7, -6)) if kind == "noisy_monitor" else 0.0
         out.faults.append(Fault(kind, str(mon), value))
     return out
 

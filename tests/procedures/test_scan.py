@@ -47,12 +47,14 @@ async def _custom(tmp_path: Path, faults: list[Fault] | None, **kwargs: Any) -> 
 
 def test_random_faults_are_found_and_classed_right() -> None:
     """Over random draws of actuator and monitor faults, every judgeable fault gets its class and no healthy part
-    is flagged, within rules 1-3, outputs back where they began, in at most 1.2 monitor frames per actuator."""
+    is flagged, within rules 1-3, outputs back where they began, in at most 1.35 monitor frames per actuator (1.2 for
+    the design and its rest frames, plus one and one per group of suspects for a second look where a response is
+    missing)."""
     # a seed picked once and never adjusted; the longer run is `python -m tests.procedures.scan_draws`
     result = run_draws(8, seed=31337)
     assert result["failures"] == []
     assert result["found"] > result["draws"]  # most injected faults were judgeable, and found
-    assert result["frames_per_actuator"] <= 1.2
+    assert result["frames_per_actuator"] <= 1.35
 
 
 def test_healthy_bench_is_all_ok_except_the_invisible_phases(tmp_path: Path) -> None:
@@ -65,13 +67,14 @@ def test_healthy_bench_is_all_ok_except_the_invisible_phases(tmp_path: Path) -> 
     assert report["actuators"]["b0p"]["reason"].startswith("the phase of b0 meets no other light")
     assert {v["verdict"] for v in report["monitors"].values()} == {"ok"}
     assert report["outputs_restored"] is True
-    # 15 observable actuators: an S-matrix of order 15 plus its rest frame (Harwit & Sloane 1979), + 4 rest frames
-    assert report["frames"] == 16 + 4
+    # 15 observable actuators: an S-matrix of order 15 plus its rest frame (Harwit & Sloane 1979), + 8 rest frames
+    assert report["frames"] == 16 + 8
 
 
 def test_noise_limit_is_the_detector_noise_of_the_formulas(tmp_path: Path) -> None:
     """The noise limit a lit monitor is judged by equals sigma sqrt(chi2_{1-a}(n-1)/(n-1)) with sigma from shot,
-    feedback-resistor and ADC quantisation noise, recomputed here from the published formulas."""
+    feedback-resistor and ADC quantisation noise and the allowance for wandering light, recomputed here from the
+    published formulas."""
     report, _ = _scan(tmp_path)
     evidence = report["monitors"]["o0b"]["evidence"]
     level = evidence["lit_mean_a"]
@@ -80,15 +83,22 @@ def test_noise_limit_is_the_detector_noise_of_the_formulas(tmp_path: Path) -> No
     shot = 2 * ELEMENTARY_CHARGE_C * level * bandwidth  # Source: Schottky shot noise 2qIB
     johnson = 4 * BOLTZMANN_J_PER_K * 300.0 * bandwidth / 100e3  # Source: Johnson 1928; Nyquist 1928
     quantisation = lsb**2 / 12  # Source: Kester, Analog Devices MT-001
-    sigma = math.sqrt(shot + johnson + quantisation)
-    # chi-square with 3 degrees of freedom has the closed-form tail Q(x) = erfc(sqrt(x/2)) + sqrt(2x/pi) e^(-x/2)
-    # (Abramowitz & Stegun 26.4.5); solve Q(x) = 1e-6 by bisection
-    low, high = 0.0, 100.0
+    wander = (0.01 * level) ** 2  # scans.optical_noise_rel: 1 % of the light (drift, laser noise; common practice)
+    sigma = math.sqrt(shot + johnson + quantisation + wander)
+    # 8 rest frames: chi-square with 7 degrees of freedom, whose tail for odd nu is
+    # Q(x) = erfc(sqrt(x/2)) + sqrt(2/pi) e^(-x/2) (x^(1/2) + x^(3/2)/3 + x^(5/2)/15) (Abramowitz & Stegun 26.4.5);
+    # solve Q(x) = 1e-6 by bisection
+    low, high = 0.0, 200.0
     for _ in range(200):
         mid = (low + high) / 2
-        tail = math.erfc(math.sqrt(mid / 2)) + math.sqrt(2 * mid / math.pi) * math.exp(-mid / 2)
+        series = math.sqrt(mid) + mid**1.5 / 3 + mid**2.5 / 15
+        tail = math.erfc(math.sqrt(mid / 2)) + math.sqrt(2 / math.pi) * math.exp(-mid / 2) * series
         low, high = (mid, high) if tail > 1e-6 else (low, mid)
-    assert evidence["lit_std_limit_a"] == pytest.approx(sigma * math.sqrt(low / 3), rel=1e-6)
+    assert evidence["lit_std_limit_a"] == pytest.approx(sigma * math.sqrt(low / 7), rel=1e-6)
+    # the dark taps are judged by the detector alone (no light to wander): shot of nothing but thermal and ADC
+    dark = report["monitors"]["d0"]["evidence"]
+    dark_sigma = math.sqrt(2 * ELEMENTARY_CHARGE_C * dark["dark_mean_a"] * bandwidth + johnson + quantisation)
+    assert dark["dark_std_limit_a"] == pytest.approx(dark_sigma * math.sqrt(low / 7), rel=1e-6)
 
 
 def test_without_topology_a_stuck_actuator_is_unobservable_never_ok(tmp_path: Path) -> None:
@@ -112,7 +122,7 @@ def test_a_stopped_scan_returns_the_outputs(tmp_path: Path) -> None:
     control = ScanControl()
 
     def progress(done: int, total: int) -> None:
-        if done == 6:
+        if done == 12:  # within the design frames: outputs have moved
             control.stop("cancelled by a client")
 
     async def scenario() -> tuple[dict[str, int], dict[str, int], int]:

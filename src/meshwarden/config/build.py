@@ -211,6 +211,7 @@ SCAN_KEYS = (
     "kappa_step",
     "phase_step_rad",
     "rest_frames",
+    "optical_noise_rel",
     "sense_noise_volts",
     "k_sigma",
 )
@@ -231,7 +232,7 @@ def _sigmas(value: Any) -> float:
 def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
     s = f.Section(p, raw, ("scans",), SCAN_KEYS)
     d = ScansConfig()
-    if "every_s" in s.value and "at" in s.value:
+    if s.value.get("every_s") is not None and s.value.get("at") is not None:
         p.add(("scans",), "give 'every_s' (a period) or 'at' (a time of day), not both")
     targets = []
     for path, item in s.items("targets"):
@@ -249,7 +250,8 @@ def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
         max_step_volts=s.get("max_step_volts", f.quantity(VOLTS), d.max_step_volts),
         kappa_step=s.get("kappa_step", f.fraction, d.kappa_step),
         phase_step_rad=s.get("phase_step_rad", f.quantity(RADIANS), d.phase_step_rad),
-        rest_frames=s.get("rest_frames", f.integer(2, 1000), d.rest_frames),
+        rest_frames=s.get("rest_frames", f.integer(3, 1000), d.rest_frames),
+        optical_noise_rel=s.get("optical_noise_rel", f.fraction, d.optical_noise_rel),
         sense_noise_volts=s.get("sense_noise_volts", f.quantity(VOLTS), d.sense_noise_volts),
         k_sigma=s.get("k_sigma", _sigmas, d.k_sigma),
     )

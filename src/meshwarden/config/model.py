@@ -190,9 +190,10 @@ class ScansConfig:
     directory: Path | None = None
     test_volts: float = 10.0
     max_step_volts: float = 2.0
-    kappa_step: float = 0.002
-    phase_step_rad: float = 0.005
-    rest_frames: int = 4
+    kappa_step: float = 0.005
+    phase_step_rad: float = 0.01
+    rest_frames: int = 8
+    optical_noise_rel: float = 0.01
     sense_noise_volts: float = 0.005
     k_sigma: float = 5.0
 

@@ -2,8 +2,8 @@
 
 One scan, under a held motion claim on the actuators it tests:
 
-1. ``rest_frames`` monitor frames and sense reads at the operating point (the noise of every
-   monitor, its rest level, and the drivers at the operating point);
+1. ``rest_frames`` monitor frames back to back at the operating point (the noise of every
+   monitor and its rest level) and a sense read (the drivers at the operating point);
 2. the frames of a 0/1 multiplexed design (:func:`.designs.s_matrix_design`: a rest frame and
    the rows of an S-matrix) over the actuators a monitor can see, each moved by its own small
    step: the step that changes its calibrated value by ``kappa_step`` (or ``phase_step_rad``),
@@ -24,6 +24,7 @@ monitor sees, and says so (``unobservable``).
 
 from __future__ import annotations
 
+import dataclasses
 import math
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -48,6 +49,7 @@ from meshwarden.procedures.verdicts import (
 )
 
 FAULTY = ("no_response", "driver_fault", "drifted")
+FROZEN_LSBS = 4.0  # a neighbour's change that a live monitor sharing its light could not hide: common practice
 
 
 @dataclass(frozen=True)
@@ -56,9 +58,10 @@ class ScanSettings:
 
     test_volts: float = 10.0  # no step goes up past this (steps from higher operating points go down)
     max_step_volts: float = 2.0
-    kappa_step: float = 0.002  # the calibrated change each step aims for
-    phase_step_rad: float = 0.005
-    rest_frames: int = 4
+    kappa_step: float = 0.005  # the calibrated change each step aims for
+    phase_step_rad: float = 0.01
+    rest_frames: int = 8
+    optical_noise_rel: float = 0.01  # lit light wanders this much over the rest frames (drift, laser noise)
     integration_s: float = 1e-3
     temperature_k: float = 300.0
     sense_noise_volts: float = 0.005
@@ -216,20 +219,22 @@ async def run_scan(
             progress(done, total)
 
     final_codes: dict[str, int] = {}
+    second_look: dict[str, dict[str, float]] = {}
+    extra_frames = 0
     stopped: str | None = None
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
         control.on_stop.append(claim.request_stop)
         if on_claim is not None:
             on_claim(claim)
 
-        async def frame(moves: dict[str, float], *, monitors: bool) -> dict[str, float] | None:
+        async def frame(moves: dict[str, float], *, monitors: bool, sense: bool = True) -> dict[str, float] | None:
             if moves:
                 await claim.move(moves, volts=True, journal=False)
-            sense = await claim.read_sense()
+            sensed = await claim.read_sense() if sense else {}
             for aid, plan in plans.items():
-                if aid in sense:
+                if aid in sensed:
                     plan.commanded.append(_volts(controller, aid, int(controller.describe(aid)["code"])))
-                    plan.sensed.append(sense[aid])
+                    plan.sensed.append(sensed[aid])
             if not monitors:
                 return None
             levels = await claim.read_monitors(average=1, integration_s=settings.integration_s)
@@ -237,9 +242,9 @@ async def run_scan(
 
         home = {a: plans[a].volts0 for a in tested}
         try:
-            for _ in range(settings.rest_frames):
+            for k in range(settings.rest_frames):  # back to back: the noise, not the drift
                 _check(control)
-                rest.append(await frame({}, monitors=True) or {})
+                rest.append(await frame({}, monitors=True, sense=k == 0) or {})
                 tick()
             if design is not None:
                 for row in design.pattern:
@@ -248,6 +253,36 @@ async def run_scan(
                     frames.append(await frame(moves, monitors=True) or {})
                     tick()
                 await claim.move({a: plans[a].volts0 for a in optical}, volts=True, journal=False)
+            if design is not None and topology is not None:
+                first = _judge(
+                    controller,
+                    settings,
+                    topology,
+                    settings_of,
+                    plans,
+                    untested,
+                    rest,
+                    frames,
+                    design,
+                    optical,
+                    blame=False,
+                )
+                suspects = [a for a in optical if first["actuators"][a]["verdict"] == "no_response"]
+                before: dict[str, float] | None = None  # one rest frame for every group
+                for group in _groups(suspects, plans):
+                    _check(control)
+                    big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings) for a in group}
+                    big = {a: v for a, v in big.items() if v != plans[a].volts0}
+                    if not big:
+                        continue
+                    if before is None:
+                        before = await frame({}, monitors=True, sense=False) or {}
+                        extra_frames += 1
+                    after = await frame(big, monitors=True) or {}
+                    await claim.move({a: plans[a].volts0 for a in big}, volts=True, journal=False)
+                    extra_frames += 1
+                    for aid in big:
+                        second_look[aid] = {m: after[m] - before[m] for m in after}
             if sense_only:
                 _check(control)
                 await frame({a: plans[a].volts0 + plans[a].step_volts for a in sense_only}, monitors=False)
@@ -262,13 +297,40 @@ async def run_scan(
     if stopped is not None:
         raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
-    report = _judge(controller, settings, topology, settings_of, plans, untested, rest, frames, design, optical)
-    report["frames"] = len(rest) + len(frames)
+    report = _judge(
+        controller, settings, topology, settings_of, plans, untested, rest, frames, design, optical, second_look
+    )
+    report["frames"] = len(rest) + len(frames) + extra_frames
     report["outputs_restored"] = restored
     report["actuators_tested"] = len(tested)
     report["layout"] = topology.as_dict() if topology is not None else None
     report["gates"] = {g: {"coupler": gate.coupler, "phase": gate.phase} for g, gate in controller.gates.items()}
     return report
+
+
+def _big_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> float:
+    """The second look's step (volts): ten times the scan's aim, under the same guards; 0 if none fits."""
+    bigger = dataclasses.replace(
+        settings, kappa_step=10 * settings.kappa_step, phase_step_rad=10 * settings.phase_step_rad
+    )
+    trial = _Plan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
+    _choose_step(controller, trial, bigger)
+    return trial.step_volts
+
+
+def _groups(suspects: list[str], plans: dict[str, _Plan]) -> list[list[str]]:
+    """Suspects that no monitor sees in common share a second-look frame."""
+    groups: list[tuple[list[str], set[str]]] = []
+    for aid in suspects:
+        seen = set(plans[aid].seen_by or ())
+        for members, monitors in groups:
+            if seen and not seen & monitors:
+                members.append(aid)
+                monitors |= seen
+                break
+        else:
+            groups.append(([aid], seen))
+    return [members for members, _ in groups]
 
 
 def _check(control: ScanControl) -> None:
@@ -316,6 +378,9 @@ def _judge(
     frames: list[dict[str, float]],
     design: PerturbationDesign | None,
     optical: list[str],
+    second_look: dict[str, dict[str, float]] | None = None,
+    *,
+    blame: bool = True,
 ) -> dict[str, Any]:
     monitors = {m.id: m for m in controller.config.chip.monitors}
     names = list(monitors)
@@ -328,10 +393,12 @@ def _judge(
     # responses (amps per design step) and their standard errors, actuators x monitors
     responses = np.zeros((len(optical), len(names)))
     se = np.ones((len(optical), len(names)))
+    sigma = np.array([noise[m][0] for m in names])
+    short_sigma = _frame_sigma(rest_a, None, None, None, None, list(sigma))  # back-to-back frames: no drift
     if design is not None:
-        responses, _ = estimate_responses(design, frame_a, 1.0)
+        responses, rest_level = estimate_responses(design, frame_a, 1.0)
         factors = np.sqrt(design.variance_factors())
-        sigma = np.array([noise[m][0] for m in names])
+        sigma = _frame_sigma(rest_a, frame_a, design, responses, rest_level, [noise[m][0] for m in names])
         se = np.outer(factors, sigma)
     significant = np.abs(responses) >= settings.k_sigma * se
     samples = rest_a.shape[0]
@@ -364,8 +431,9 @@ def _judge(
             continue
         # frozen needs evidence: an actuator this monitor should see moved another quiet monitor that sees it too
         watchers = [j for j, a in enumerate(optical) if m in (plans[optical[j]].seen_by or ())]
+        # ... by several of this monitor's LSBs (light shared between outputs moves both by similar amounts)
         neighbours = any(
-            significant[j, k]
+            significant[j, k] and abs(responses[j, k]) >= FROZEN_LSBS * noise[m][1]
             for j in watchers
             for k, other in enumerate(names)
             if k != i and quiet[k] and other in (plans[optical[j]].seen_by or ())
@@ -377,7 +445,7 @@ def _judge(
             frame_levels_a=frame_a[:, i] if frames else rest_a[:, i],
             full_scale_a=full_scale[m],
             dark_noise_a=dark_noise,
-            lit_noise_a=noise[m][0],
+            lit_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * float(rest_a[:, i].mean())),
             neighbours_changed=neighbours,
             adc_lsb_a=lsb,
             k_sigma=settings.k_sigma,
@@ -413,6 +481,17 @@ def _judge(
         verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]))
         evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
         reason = verdict.reason
+        look = (second_look or {}).get(aid)
+        if verdict.verdict == "no_response" and look is not None:
+            moved = max(abs(look[names[k]]) / (math.sqrt(2.0) * short_sigma[k]) for k in candidates)
+            evidence["second_look_sigmas"] = moved
+            if moved >= settings.k_sigma:
+                verdict = Verdict(
+                    "ok",
+                    f"no first-order response here (its operating point sits near an extremum of its effect), but a "
+                    f"larger step moved the light by {moved:.3g} sigma: it works",
+                    evidence,
+                )
         if verdict.verdict == "no_response" and topology is None:
             verdict = Verdict(
                 "unobservable",
@@ -423,7 +502,7 @@ def _judge(
         else:
             verdict = Verdict(verdict.verdict, reason, evidence)
         actuator_out[aid] = verdict
-    if topology is not None:
+    if topology is not None and blame:
         _blame_upstream(topology, settings_of, plans, actuator_out)
     return {
         "actuators": {
@@ -434,6 +513,25 @@ def _judge(
         "dark_reference": dark_source,
         "topology": topology is not None,
     }
+
+
+def _frame_sigma(
+    rest_a: Any, frame_a: Any, design: PerturbationDesign | None, responses: Any, rest_level: Any, model: list[float]
+) -> Any:
+    """Per monitor, the rms noise of one frame: the detector model, or more where the frames show more.
+
+    Evidence of more: successive differences of the back-to-back rest frames (var = 2 sigma^2 for white
+    noise), and the residuals of the design's fit where spare columns leave at least 4 degrees of freedom
+    (they also hold the slow drift over the whole design).
+    """
+    sigma = np.asarray(model, dtype=float)
+    if rest_a.shape[0] >= 3:
+        sigma = np.maximum(sigma, np.sqrt(np.mean(np.diff(rest_a, axis=0) ** 2, axis=0) / 2.0))
+    dof = design.frames - 1 - design.actuators if design is not None else 0
+    if design is not None and dof >= 4:
+        fitted = rest_level + design.matrix() @ responses
+        sigma = np.maximum(sigma, np.sqrt(np.sum((frame_a - fitted) ** 2, axis=0) / dof))
+    return sigma
 
 
 def _dark(samples: Any, full_scale_a: float, noise_a: float, settings: ScanSettings) -> Verdict:

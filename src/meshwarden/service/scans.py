@@ -46,6 +46,7 @@ def settings_from_config(controller: Controller) -> ScanSettings:
         kappa_step=c.kappa_step,
         phase_step_rad=c.phase_step_rad,
         rest_frames=c.rest_frames,
+        optical_noise_rel=c.optical_noise_rel,
         sense_noise_volts=c.sense_noise_volts,
         k_sigma=c.k_sigma,
     )
