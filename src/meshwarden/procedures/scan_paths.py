@@ -152,3 +152,26 @@ def upstream_of(
     for between in range(column + 1, later_column):
         modes = _apply(topology, between, modes, settings)
     return bool(modes & {later_top, later_top + 1})
+
+
+def incoherent_powers(topology: LatticeTopology, kappas: Mapping[str, float | None]) -> dict[str, float]:
+    """Power at each tap, relative to one unit in each input mode, if light added in power, not in field.
+
+    A gate sends 1 - kappa of each input straight on and kappa across (unknown kappa: 1/2); losses and the
+    tap fraction are left out (a common factor). Interference moves real powers around this estimate
+    (to zero at a null), so it only says roughly how much light a tap can expect.
+    """
+    power = [0.0] * topology.modes
+    for mode in topology.input_modes:
+        power[mode] = 1.0
+    out = {m: power[mode] for m, (after, mode) in topology.taps.items() if after == -1}
+    for column in range(topology.columns):
+        for gate, (col, top) in topology.gates.items():
+            if col != column:
+                continue
+            kappa = kappas.get(gate)
+            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
+            upper, lower = power[top], power[top + 1]
+            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        out |= {m: power[mode] for m, (after, mode) in topology.taps.items() if after == column}
+    return out

@@ -38,7 +38,7 @@ from meshwarden.errors import MeshwardenError, StoppedRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
 from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
-from meshwarden.procedures.scan_paths import gate_setting, lit_monitors, sight, upstream_of
+from meshwarden.procedures.scan_paths import gate_setting, incoherent_powers, lit_monitors, sight, upstream_of
 from meshwarden.procedures.verdicts import (
     Verdict,
     actuator_verdict,
@@ -49,7 +49,7 @@ from meshwarden.procedures.verdicts import (
 )
 
 FAULTY = ("no_response", "driver_fault", "drifted")
-FROZEN_LSBS = 4.0  # a neighbour's change that a live monitor sharing its light could not hide: common practice
+FROZEN_LSBS = 20.0  # a neighbour's change that a live monitor sharing its light could not hide: common practice
 
 
 @dataclass(frozen=True)
@@ -62,6 +62,7 @@ class ScanSettings:
     phase_step_rad: float = 0.01
     rest_frames: int = 8
     optical_noise_rel: float = 0.01  # lit light wanders this much over the rest frames (drift, laser noise)
+    second_look_factor: float = 10.0  # a suspect's second look steps this many times further, for one frame
     integration_s: float = 1e-3
     temperature_k: float = 300.0
     sense_noise_volts: float = 0.005
@@ -268,19 +269,17 @@ async def run_scan(
                     blame=False,
                 )
                 suspects = [a for a in optical if first["actuators"][a]["verdict"] == "no_response"]
-                before: dict[str, float] | None = None  # one rest frame for every group
                 for group in _groups(suspects, plans):
                     _check(control)
                     big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings) for a in group}
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
-                    if before is None:
-                        before = await frame({}, monitors=True, sense=False) or {}
-                        extra_frames += 1
+                    # a rest frame right before each stepped one: light drifts, and the pair must not see it
+                    before = await frame({}, monitors=True, sense=False) or {}
                     after = await frame(big, monitors=True) or {}
                     await claim.move({a: plans[a].volts0 for a in big}, volts=True, journal=False)
-                    extra_frames += 1
+                    extra_frames += 2
                     for aid in big:
                         second_look[aid] = {m: after[m] - before[m] for m in after}
             if sense_only:
@@ -309,9 +308,10 @@ async def run_scan(
 
 
 def _big_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> float:
-    """The second look's step (volts): ten times the scan's aim, under the same guards; 0 if none fits."""
+    """The second look's step (volts): ``second_look_factor`` times the scan's aim, under the same guards."""
+    factor = settings.second_look_factor
     bigger = dataclasses.replace(
-        settings, kappa_step=10 * settings.kappa_step, phase_step_rad=10 * settings.phase_step_rad
+        settings, kappa_step=factor * settings.kappa_step, phase_step_rad=factor * settings.phase_step_rad
     )
     trial = _Plan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
     _choose_step(controller, trial, bigger)
@@ -355,16 +355,20 @@ def _resolve(controller: Controller, targets: list[str] | None) -> list[str]:
     return out
 
 
-def _gate_settings(controller: Controller, gate_of: dict[str, tuple[str, str]]) -> dict[str, str]:
-    out = {}
+def _kappas(controller: Controller) -> dict[str, float | None]:
+    """Each gate's calibrated coupling at its coupler's present output (None where the calibration has none)."""
+    out: dict[str, float | None] = {}
     for gid, gate in controller.gates.items():
         act = controller.actuators[gate.coupler]
         try:
-            kappa: float | None = act.map.value_at(float(controller.describe(gate.coupler)["volts"]))
+            out[gid] = act.map.value_at(float(controller.describe(gate.coupler)["volts"]))
         except MeshwardenError:
-            kappa = None
-        out[gid] = gate_setting(kappa)
+            out[gid] = None
     return out
+
+
+def _gate_settings(controller: Controller, gate_of: dict[str, tuple[str, str]]) -> dict[str, str]:
+    return {gid: gate_setting(kappa) for gid, kappa in _kappas(controller).items()}
 
 
 def _judge(
@@ -421,10 +425,21 @@ def _judge(
     else:
         dark_ref = np.full(rest_a.shape[0], settings.dark_current_a)
         dark_source = "the configured dark current"
+    weak = _weakly_lit(controller, topology, lit, names, rest_a, dark_ref, noise, settings)
     monitor_out: dict[str, Verdict] = {}
     for i, m in enumerate(names):
         if m in dark_verdicts:
             monitor_out[m] = dark_verdicts[m]
+            continue
+        if m in weak:
+            level = float(rest_a[:, i].mean())
+            monitor_out[m] = dark_monitor_verdict(
+                dark_a=rest_a[:, i],
+                full_scale_a=full_scale[m],
+                dark_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * level),
+                false_alarm=settings.false_alarm,
+                unlit_reason="too little light is expected here (light summed in power) to test it for dead or frozen",
+            )
             continue
         if lit is None and rest_a[:, i].mean() - dark_ref.mean() < settings.k_sigma * noise[m][0]:
             monitor_out[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
@@ -451,7 +466,7 @@ def _judge(
             k_sigma=settings.k_sigma,
             false_alarm=settings.false_alarm,
         )
-    usable = {m for m, v in monitor_out.items() if v.verdict == "ok" and (lit is None or m in lit)}
+    usable = {m for m, v in monitor_out.items() if v.verdict == "ok" and (lit is None or m in lit) and m not in weak}
 
     # actuators
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
@@ -473,7 +488,7 @@ def _judge(
         j = optical.index(aid)
         candidates = [k for k, m in enumerate(names) if m in usable and (plan.seen_by is None or m in plan.seen_by)]
         if not candidates:
-            why = "every monitor that can see it is faulty" if plan.seen_by else "no healthy lit monitor"
+            why = "every monitor that can see it is faulty or dim" if plan.seen_by else "no healthy lit monitor"
             actuator_out[aid] = common(unobservable_reason=why)
             continue
         best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
@@ -513,6 +528,36 @@ def _judge(
         "dark_reference": dark_source,
         "topology": topology is not None,
     }
+
+
+WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to call a monitor dead
+
+
+def _weakly_lit(
+    controller: Controller,
+    topology: LatticeTopology | None,
+    lit: set[str] | None,
+    names: list[str],
+    rest_a: Any,
+    dark_ref: Any,
+    noise: dict[str, tuple[float, float]],
+    settings: ScanSettings,
+) -> set[str]:
+    """Lit monitors whose expected light (power-summed estimate, scaled by what the lit monitors read) is too
+    small to tell a dead detector from a dim tap."""
+    if topology is None or lit is None:
+        return set()
+    expected = incoherent_powers(topology, _kappas(controller))
+    above = rest_a.mean(axis=0) - float(dark_ref.mean())
+    ratios = [
+        above[i] / expected[m]
+        for i, m in enumerate(names)
+        if m in lit and expected.get(m, 0.0) > 0.0 and above[i] > settings.k_sigma * noise[m][0]
+    ]
+    if not ratios:
+        return set(lit)
+    scale = float(np.median(ratios))
+    return {m for m in lit if scale * expected.get(m, 0.0) < WEAK_LIGHT * settings.k_sigma * noise[m][0]}
 
 
 def _frame_sigma(

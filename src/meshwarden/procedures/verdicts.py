@@ -203,8 +203,10 @@ def dark_monitor_verdict(
     dark_noise_a: float,
     saturation_fraction: float = 0.98,
     false_alarm: float = 1e-6,
+    unlit_reason: str = "no light reaches it at this operating point",
 ) -> Verdict:
-    """Verdict for a monitor no light reaches at the operating point: only saturation and noise can be tested.
+    """Verdict for a monitor no (or too little) light reaches at the operating point: only saturation and
+    noise can be tested.
 
     ``ok`` here says so in its reason: a dead detector reads its dark level too.
     """
@@ -222,4 +224,4 @@ def dark_monitor_verdict(
         return Verdict("saturated", f"reads {evidence['max_reading_a']:.4g} A of a {top:.4g} A range", evidence)
     if evidence["dark_std_a"] > limit:
         return Verdict("noisy", "noise above the detector's expected dark noise", evidence)
-    return Verdict("ok", "no light reaches it at this operating point: only saturation and noise were tested", evidence)
+    return Verdict("ok", f"{unlit_reason}: only saturation and noise were tested", evidence)
