@@ -17,6 +17,7 @@ Anything else is reported with the reason it cannot be seen; the scan then calls
 
 from __future__ import annotations
 
+import math
 from collections.abc import Mapping
 from dataclasses import dataclass
 
@@ -175,3 +176,83 @@ def incoherent_powers(topology: LatticeTopology, kappas: Mapping[str, float | No
             power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
         out |= {m: power[mode] for m, (after, mode) in topology.taps.items() if after == column}
     return out
+
+
+def _powers(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], start: dict[int, float], first: int
+) -> dict[int, list[float]]:
+    """Power-summed light per mode after each column from ``first`` on, given the power after ``first - 1``."""
+    power = [start.get(m, 0.0) for m in range(topology.modes)]
+    out = {first - 1: list(power)}
+    for column in range(first, topology.columns):
+        for gate, (col, top) in topology.gates.items():
+            if col != column:
+                continue
+            kappa = kappas.get(gate)
+            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
+            upper, lower = power[top], power[top + 1]
+            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        out[column] = list(power)
+    return out
+
+
+def _transfer(topology: LatticeTopology, kappas: Mapping[str, float | None], after: int, mode: int) -> dict[str, float]:
+    """Fraction of unit power on ``mode`` after column ``after`` that reaches each tap from there on (power-summed)."""
+    powers = _powers(topology, kappas, {mode: 1.0}, after + 1)
+    return {m: powers[a][k] for m, (a, k) in topology.taps.items() if a >= after}
+
+
+def expected_effect(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> dict[str, float]:
+    """A generous estimate of |d(tap power)/d(value)| at each tap, per unit of input power in each input mode.
+
+    From the coupler and Mach-Zehnder algebra with powers summed (phases unknown): a coupler with inputs P_a,
+    P_b moves at most |P_b - P_a| + |1 - 2 kappa| sqrt(P_a P_b / (kappa (1 - kappa))) per unit kappa; a phase
+    whose arm P_a meets P_b in a coupler of ratio kappa moves at most 2 sqrt(kappa (1 - kappa) P_a P_b) per
+    radian; each then reaches a tap by the larger of the two outputs' power-summed transfer. Where this is below
+    what a scan can detect, a missing response says nothing about the actuator.
+    """
+    if gate not in topology.gates:
+        return {}
+    column, top = topology.gates[gate]
+    base = _powers(topology, kappas, {m: 1.0 for m in topology.input_modes}, 0)
+    if attribute == "kappa":
+        pa, pb = base[column - 1][top], base[column - 1][top + 1]
+        k = min(max(kappas.get(gate) or 0.5, 0.01), 0.99)
+        slope = abs(pb - pa) + abs(1 - 2 * k) * math.sqrt(pa * pb / (k * (1 - k)))
+        mixer_column, mixer_top = column, top
+    else:
+        found = _mixer(topology, kappas, column, top)
+        if found is None:
+            return {}
+        mixer_column, mixer_top, phased = found
+        pa = sum(base[mixer_column - 1][m] for m in phased & {mixer_top, mixer_top + 1})
+        pb = sum(base[mixer_column - 1][m] for m in {mixer_top, mixer_top + 1} - phased)
+        mixer = topology.gate_at(mixer_column, mixer_top)
+        k = min(max(kappas.get(mixer or "") or 0.5, 0.0), 1.0)
+        slope = 2 * math.sqrt(k * (1 - k) * pa * pb)
+    upper = _transfer(topology, kappas, mixer_column, mixer_top)
+    lower = _transfer(topology, kappas, mixer_column, mixer_top + 1)
+    return {m: slope * max(upper.get(m, 0.0), lower.get(m, 0.0)) for m in upper}
+
+
+def _mixer(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], column: int, top: int
+) -> tuple[int, int, set[int]] | None:
+    """The first later coupler where the phase-shifted arm (mode ``top`` after ``column``) meets other light."""
+    settings = {g: gate_setting(k) for g, k in kappas.items()}
+    lit = lit_modes(topology, settings)
+    phased = {top}
+    for later in range(column + 1, topology.columns):
+        for other, (col, other_top) in topology.gates.items():
+            pair = {other_top, other_top + 1}
+            if (
+                col == later
+                and pair & phased
+                and settings.get(other, "split") == "split"
+                and (pair - phased) & lit[later - 1]
+            ):
+                return later, other_top, set(phased)
+        phased = _apply(topology, later, phased, settings)
+    return None

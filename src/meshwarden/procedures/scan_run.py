@@ -38,7 +38,14 @@ from meshwarden.errors import MeshwardenError, StoppedRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
 from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
-from meshwarden.procedures.scan_paths import gate_setting, incoherent_powers, lit_monitors, sight, upstream_of
+from meshwarden.procedures.scan_paths import (
+    expected_effect,
+    gate_setting,
+    incoherent_powers,
+    lit_monitors,
+    sight,
+    upstream_of,
+)
 from meshwarden.procedures.verdicts import (
     Verdict,
     actuator_verdict,
@@ -221,6 +228,7 @@ async def run_scan(
 
     final_codes: dict[str, int] = {}
     second_look: dict[str, dict[str, float]] = {}
+    big_value: dict[str, float] = {}
     extra_frames = 0
     stopped: str | None = None
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
@@ -282,6 +290,8 @@ async def run_scan(
                     extra_frames += 2
                     for aid in big:
                         second_look[aid] = {m: after[m] - before[m] for m in after}
+                        act = controller.actuators[aid]
+                        big_value[aid] = act.map.value_at(big[aid]) - act.map.value_at(plans[aid].volts0)
             if sense_only:
                 _check(control)
                 await frame({a: plans[a].volts0 + plans[a].step_volts for a in sense_only}, monitors=False)
@@ -297,7 +307,18 @@ async def run_scan(
         raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
     report = _judge(
-        controller, settings, topology, settings_of, plans, untested, rest, frames, design, optical, second_look
+        controller,
+        settings,
+        topology,
+        settings_of,
+        plans,
+        untested,
+        rest,
+        frames,
+        design,
+        optical,
+        second_look,
+        big_value,
     )
     report["frames"] = len(rest) + len(frames) + extra_frames
     report["outputs_restored"] = restored
@@ -383,6 +404,7 @@ def _judge(
     design: PerturbationDesign | None,
     optical: list[str],
     second_look: dict[str, dict[str, float]] | None = None,
+    big_value_step: dict[str, float] | None = None,
     *,
     blame: bool = True,
 ) -> dict[str, Any]:
@@ -425,7 +447,8 @@ def _judge(
     else:
         dark_ref = np.full(rest_a.shape[0], settings.dark_current_a)
         dark_source = "the configured dark current"
-    weak = _weakly_lit(controller, topology, lit, names, rest_a, dark_ref, noise, settings)
+    weak, scale = _weakly_lit(controller, topology, lit, names, rest_a, dark_ref, noise, settings)
+    kappas = _kappas(controller)
     monitor_out: dict[str, Verdict] = {}
     for i, m in enumerate(names):
         if m in dark_verdicts:
@@ -495,8 +518,8 @@ def _judge(
         seen_at[aid] = names[best]
         verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]))
         evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
-        reason = verdict.reason
         look = (second_look or {}).get(aid)
+        verdict = Verdict(verdict.verdict, verdict.reason, evidence)
         if verdict.verdict == "no_response" and look is not None:
             moved = max(abs(look[names[k]]) / (math.sqrt(2.0) * short_sigma[k]) for k in candidates)
             evidence["second_look_sigmas"] = moved
@@ -514,8 +537,25 @@ def _judge(
                 "monitor sees",
                 evidence,
             )
-        else:
-            verdict = Verdict(verdict.verdict, reason, evidence)
+        elif verdict.verdict == "no_response" and topology is not None and scale is not None:
+            # would a working actuator have shown? (generous, power-summed estimate of its effect)
+            effect = expected_effect(topology, kappas, str(plan.gate), plan.attribute)
+            big = abs((big_value_step or {}).get(aid, 0.0))
+            visible = max(
+                max(
+                    scale * effect.get(names[k], 0.0) * abs(plan.value_step) / se[j, k],
+                    scale * effect.get(names[k], 0.0) * big / (math.sqrt(2.0) * short_sigma[k]),
+                )
+                for k in candidates
+            )
+            evidence["expected_sigmas"] = visible
+            if visible < DETECTABLE * settings.k_sigma:
+                verdict = Verdict(
+                    "unobservable",
+                    f"a working actuator would show at most {visible:.3g} sigma here: too little light meets it to "
+                    "tell",
+                    evidence,
+                )
         actuator_out[aid] = verdict
     if topology is not None and blame:
         _blame_upstream(topology, settings_of, plans, actuator_out)
@@ -530,6 +570,7 @@ def _judge(
     }
 
 
+DETECTABLE = 2.0  # a no_response needs a working actuator's expected effect at this many detection limits
 WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to call a monitor dead
 
 
@@ -542,11 +583,11 @@ def _weakly_lit(
     dark_ref: Any,
     noise: dict[str, tuple[float, float]],
     settings: ScanSettings,
-) -> set[str]:
+) -> tuple[set[str], float | None]:
     """Lit monitors whose expected light (power-summed estimate, scaled by what the lit monitors read) is too
-    small to tell a dead detector from a dim tap."""
+    small to tell a dead detector from a dim tap; and that scale (amps per unit of input light)."""
     if topology is None or lit is None:
-        return set()
+        return set(), None
     expected = incoherent_powers(topology, _kappas(controller))
     above = rest_a.mean(axis=0) - float(dark_ref.mean())
     ratios = [
@@ -555,9 +596,9 @@ def _weakly_lit(
         if m in lit and expected.get(m, 0.0) > 0.0 and above[i] > settings.k_sigma * noise[m][0]
     ]
     if not ratios:
-        return set(lit)
+        return set(lit), None
     scale = float(np.median(ratios))
-    return {m for m in lit if scale * expected.get(m, 0.0) < WEAK_LIGHT * settings.k_sigma * noise[m][0]}
+    return {m for m in lit if scale * expected.get(m, 0.0) < WEAK_LIGHT * settings.k_sigma * noise[m][0]}, scale
 
 
 def _frame_sigma(
