@@ -10,9 +10,12 @@ One scan, under a held motion claim on the actuators it tests:
    toward zero when it sits high enough, else up, never above ``test_volts`` (so no output
    exceeds the larger of its operating voltage and the test voltage). N actuators cost the
    smallest power of two above N frames, plus the rest frames;
-3. the actuators no monitor can see are stepped once together for the driver check (sense only,
+3. a second look, with a step ``second_look_factor`` times larger, at each actuator that showed no
+   response (an operating point at an extremum of its effect gives no first-order response, but a
+   clear second-order one; a stuck actuator gives neither);
+4. the actuators no monitor can see are stepped once together for the driver check (sense only,
    no monitor frame);
-4. every output goes back to its initial code, and the codes are compared.
+5. every output goes back to its initial code, and the codes are compared.
 
 Steps are not journaled (the journal keeps the operating point, which is where the scan ends).
 Verdicts: monitors first (:func:`.verdicts.monitor_verdict`, :func:`.verdicts.dark_monitor_verdict`),
@@ -283,13 +286,13 @@ async def run_scan(
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
-                    # a rest frame right before each stepped one: light drifts, and the pair must not see it
+                    # rest, stepped, rest again: the light drifts meanwhile, and a straight drift cancels
                     before = await frame({}, monitors=True, sense=False) or {}
                     after = await frame(big, monitors=True) or {}
-                    await claim.move({a: plans[a].volts0 for a in big}, volts=True, journal=False)
-                    extra_frames += 2
+                    back = await frame({a: plans[a].volts0 for a in big}, monitors=True, sense=False) or {}
+                    extra_frames += 3
                     for aid in big:
-                        second_look[aid] = {m: after[m] - before[m] for m in after}
+                        second_look[aid] = {m: after[m] - (before[m] + back[m]) / 2 for m in after}
                         act = controller.actuators[aid]
                         big_value[aid] = act.map.value_at(big[aid]) - act.map.value_at(plans[aid].volts0)
             if sense_only:
@@ -521,7 +524,7 @@ def _judge(
         look = (second_look or {}).get(aid)
         verdict = Verdict(verdict.verdict, verdict.reason, evidence)
         if verdict.verdict == "no_response" and look is not None:
-            moved = max(abs(look[names[k]]) / (math.sqrt(2.0) * short_sigma[k]) for k in candidates)
+            moved = max(abs(look[names[k]]) / (math.sqrt(1.5) * short_sigma[k]) for k in candidates)
             evidence["second_look_sigmas"] = moved
             if moved >= settings.k_sigma:
                 verdict = Verdict(
@@ -544,7 +547,7 @@ def _judge(
             visible = max(
                 max(
                     scale * effect.get(names[k], 0.0) * abs(plan.value_step) / se[j, k],
-                    scale * effect.get(names[k], 0.0) * big / (math.sqrt(2.0) * short_sigma[k]),
+                    scale * effect.get(names[k], 0.0) * big / (math.sqrt(1.5) * short_sigma[k]),
                 )
                 for k in candidates
             )
@@ -570,7 +573,7 @@ def _judge(
     }
 
 
-DETECTABLE = 2.0  # a no_response needs a working actuator's expected effect at this many detection limits
+DETECTABLE = 10.0  # a no_response needs a working actuator's expected effect at this many detection limits
 WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to call a monitor dead
 
 
