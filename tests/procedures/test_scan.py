@@ -3,6 +3,7 @@
 from __future__ import annotations
 
 import asyncio
+import copy
 import math
 from pathlib import Path
 from typing import Any
@@ -233,3 +234,36 @@ def test_expected_phase_effect_is_the_interferometer_fringe_slope() -> None:
     assert effect["o0t"] == pytest.approx(steepest, rel=1e-6)  # the tap right after the coupler: transfer 1
     assert effect["o1t"] == 0.0  # another interferometer's tap
     assert expected_effect(topology, kappas, "b0", "phase") == {}  # after the last coupler: nothing to see
+
+
+def test_a_response_far_from_the_previous_scan_at_the_same_point_is_drifted(tmp_path: Path) -> None:
+    """Against an earlier report at the same codes, an actuator that responds as before stays ok, one whose
+    response is now half of what it was is drifted; at other codes no comparison is made."""
+
+    async def scenario() -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+                first = await run_scan(ctl, owner="scan:t", topology=bench_topology())
+                doctored = copy.deepcopy(first)
+                doctored["actuators"]["a2p"]["evidence"]["response"] *= 2.0  # as if it once moved twice as much
+                again = await run_scan(ctl, owner="scan:t", topology=bench_topology(), reference=doctored)
+                await ctl.set({"a3.kappa": 0.35})
+                elsewhere = await run_scan(ctl, owner="scan:t", topology=bench_topology(), reference=doctored)
+                return first, again, elsewhere
+        finally:
+            inprocess.remove(rack)
+
+    first, again, elsewhere = asyncio.run(scenario())
+    assert again["compared_with_reference"] is True
+    assert again["actuators"]["a2p"]["verdict"] == "drifted"
+    assert again["actuators"]["a2p"]["evidence"]["predicted"] == pytest.approx(
+        2.0 * first["actuators"]["a2p"]["evidence"]["response"]
+    )
+    others = {a: v["verdict"] for a, v in again["actuators"].items() if a != "a2p"}
+    assert others == {a: v["verdict"] for a, v in first["actuators"].items() if a != "a2p"}
+    assert elsewhere["compared_with_reference"] is False
+    assert elsewhere["actuators"]["a2p"]["verdict"] == "ok"

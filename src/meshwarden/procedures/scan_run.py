@@ -187,9 +187,15 @@ async def run_scan(
     control: ScanControl | None = None,
     progress: Callable[[int, int], None] | None = None,
     on_claim: Callable[[Any], None] | None = None,
+    reference: dict[str, Any] | None = None,
 ) -> dict[str, Any]:
-    """Scan ``targets`` (actuator or gate ids; default every actuator) and return the report."""
+    """Scan ``targets`` (actuator or gate ids; default every actuator) and return the report.
+
+    ``reference`` is an earlier report: where it was taken at the same codes on every output, an actuator
+    that was ``ok`` then is expected to respond as it did then (``drifted`` if it does not)."""
     settings = settings or ScanSettings()
+    operating_codes = {a: int(controller.describe(a)["code"]) for a in controller.actuators}
+    same_point = reference is not None and reference.get("operating_codes") == operating_codes
     control = control or ScanControl()
     ids = _resolve(controller, targets)
     sense0 = await controller.read_sense()
@@ -309,6 +315,7 @@ async def run_scan(
     if stopped is not None:
         raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
+    earlier = (reference or {}).get("actuators", {}) if same_point else {}
     report = _judge(
         controller,
         settings,
@@ -322,12 +329,15 @@ async def run_scan(
         optical,
         second_look,
         big_value,
+        earlier,
     )
     report["frames"] = len(rest) + len(frames) + extra_frames
     report["outputs_restored"] = restored
     report["actuators_tested"] = len(tested)
     report["layout"] = topology.as_dict() if topology is not None else None
     report["gates"] = {g: {"coupler": gate.coupler, "phase": gate.phase} for g, gate in controller.gates.items()}
+    report["operating_codes"] = operating_codes
+    report["compared_with_reference"] = bool(earlier)
     return report
 
 
@@ -408,6 +418,7 @@ def _judge(
     optical: list[str],
     second_look: dict[str, dict[str, float]] | None = None,
     big_value_step: dict[str, float] | None = None,
+    earlier: dict[str, Any] | None = None,
     *,
     blame: bool = True,
 ) -> dict[str, Any]:
@@ -518,8 +529,15 @@ def _judge(
             actuator_out[aid] = common(unobservable_reason=why)
             continue
         best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
+        before = (earlier or {}).get(aid, {})
+        predicted = None
+        if before.get("verdict") == "ok" and before.get("monitor") in names:
+            same_step = abs(before["evidence"].get("step_volts", math.nan) - plan.step_volts) < 1e-9
+            if same_step and names.index(before["monitor"]) in candidates and "response" in before["evidence"]:
+                best = names.index(before["monitor"])  # judged where it was seen last time, against what it did
+                predicted = float(before["evidence"]["response"])
         seen_at[aid] = names[best]
-        verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]))
+        verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]), predicted=predicted)
         evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
         look = (second_look or {}).get(aid)
         verdict = Verdict(verdict.verdict, verdict.reason, evidence)

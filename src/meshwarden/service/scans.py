@@ -179,6 +179,7 @@ class ScanService:
         started = self.clock()
         stamp = datetime.datetime.fromtimestamp(started, datetime.UTC).strftime("%Y%m%dT%H%M%SZ")
         scan_id = f"scan-{stamp}-{job_id}"
+        previous = await asyncio.to_thread(self.store.latest)
         result = await run_scan(
             self.controller,
             targets,
@@ -187,8 +188,8 @@ class ScanService:
             topology=topology_from_config(self.controller),
             control=control,
             progress=self._progress(job_id),
+            reference=previous,
         )
-        previous = self.store.latest()
         changed = changes(previous, result)
         report = {
             "id": scan_id,
