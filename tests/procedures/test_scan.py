@@ -267,3 +267,26 @@ def test_a_response_far_from_the_previous_scan_at_the_same_point_is_drifted(tmp_
     assert others == {a: v["verdict"] for a, v in first["actuators"].items() if a != "a2p"}
     assert elsewhere["compared_with_reference"] is False
     assert elsewhere["actuators"]["a2p"]["verdict"] == "ok"
+
+
+def test_actuators_on_a_board_that_cannot_be_used_are_untested(tmp_path: Path) -> None:
+    """An actuator whose board is faulted is reported untested, never ok, and nothing is written to it."""
+
+    async def scenario() -> tuple[dict[str, Any], int]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+                writes = len(inprocess.get(rack).board("b0").write_log)
+                ctl.boards["b0"].faulted = True  # as the heartbeat marks a board whose link failed
+                report = await run_scan(ctl, owner="scan:t", topology=bench_topology())
+                return report, len(inprocess.get(rack).board("b0").write_log) - writes
+        finally:
+            inprocess.remove(rack)
+
+    report, writes = asyncio.run(scenario())
+    assert {v["verdict"] for v in report["actuators"].values()} == {"untested"}
+    assert report["actuators"]["a0c"]["reason"] == "its board cannot be read"
+    assert writes == 0

@@ -37,7 +37,7 @@ from typing import Any
 import numpy as np
 
 from meshwarden.controller import Controller
-from meshwarden.errors import MeshwardenError, StoppedRefused
+from meshwarden.errors import MeshwardenError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
 from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
@@ -83,10 +83,10 @@ class ScanSettings:
 
 @dataclass
 class ScanControl:
-    """A cooperative stop for a running scan: it returns the outputs, then ends ``stopped``."""
+    """A cooperative stop for a running scan: checked between frames; the scan then returns the outputs
+    and ends ``stopped`` (its claim is not stopped, so that it can still move them back)."""
 
     reason: str | None = None
-    on_stop: list[Callable[[str], None]] = field(default_factory=list)
 
     def stop(self, reason: str) -> None:
         if self.reason is None:
@@ -210,7 +210,7 @@ async def run_scan(
         if attribute == "coupler":
             attribute = "kappa"
         plans[aid] = _Plan(aid, gate, attribute, code0, _volts(controller, aid, code0))
-    settings_of = _gate_settings(controller, gate_of)
+    settings_of = _gate_settings(controller)
     for plan in plans.values():
         if plan.gate is None:
             plan.reason = "it belongs to no gate"
@@ -241,7 +241,6 @@ async def run_scan(
     extra_frames = 0
     stopped: str | None = None
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
-        control.on_stop.append(claim.request_stop)
         if on_claim is not None:
             on_claim(claim)
 
@@ -308,7 +307,7 @@ async def run_scan(
         except StoppedRefused as exc:
             stopped = exc.message
         finally:
-            if not claim.ended:
+            if not claim.ended and not claim.stopping:  # disarm and estop take the outputs over
                 await claim.move(home, volts=True, journal=False)
             final_codes = {a: int(controller.describe(a)["code"]) for a in tested}
             tick()
@@ -382,8 +381,6 @@ def _resolve(controller: Controller, targets: list[str] | None) -> list[str]:
         elif target in controller.gates:
             ids = [controller.gates[target].coupler, controller.gates[target].phase]
         else:
-            from meshwarden.errors import UnknownTargetRefused
-
             raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
         out += [a for a in ids if a not in out]
     return out
@@ -401,7 +398,7 @@ def _kappas(controller: Controller) -> dict[str, float | None]:
     return out
 
 
-def _gate_settings(controller: Controller, gate_of: dict[str, tuple[str, str]]) -> dict[str, str]:
+def _gate_settings(controller: Controller) -> dict[str, str]:
     return {gid: gate_setting(kappa) for gid, kappa in _kappas(controller).items()}
 
 
