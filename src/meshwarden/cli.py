@@ -206,6 +206,9 @@ def build_parser() -> argparse.ArgumentParser:
     sweep.add_argument("--average", type=int, default=1, help="reads to average per point (default 1)")
     sweep.add_argument("--integration", type=float, default=1e-3, help="seconds per read (default 0.001)")
     sweep.add_argument("--volts", action="store_true", help="the ranges are volts")
+    from meshwarden import cli_scan
+
+    cli_scan.add_parsers(sub)
     return parser
 
 

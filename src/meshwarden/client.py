@@ -37,7 +37,7 @@ from meshwarden import errors
 from meshwarden.errors import BusError, MeshwardenError, UnreachableError
 from meshwarden.service.keyfiles import check_secret_key_file
 
-LONG_OPS = {"set", "disarm", "restore", "calibrate"}
+LONG_OPS = {"set", "disarm", "restore", "calibrate", "scan"}
 DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
 
 
@@ -288,6 +288,22 @@ class Client:
                 yield raw_topic.decode(), message
         finally:
             sub.close(0)
+
+    # ------------------------------------------------------------------ fault scans
+
+    def scan(self, targets: list[str] | None = None, wait: bool = True) -> dict[str, Any]:
+        """Run a fault scan of ``targets`` (actuator or gate ids; None: every actuator). With ``wait`` the
+        result holds the report under ``"scan"``; without, the job id to follow on the ``job`` topic."""
+        args: dict[str, Any] = {"wait": wait}
+        if targets:
+            args["targets"] = list(targets)
+        result: dict[str, Any] = self.request("scan", **args)
+        return result
+
+    def scans(self, limit: int = 100) -> list[dict[str, Any]]:
+        """Past scans, newest first, each with its counts of findings."""
+        result: list[dict[str, Any]] = self.request("scans", limit=limit)
+        return result
 
 
     # ------------------------------------------------------------------ calibration

@@ -11,6 +11,7 @@ from meshwarden.procedures.verdicts import (
     MONITOR_VERDICTS,
     actuator_verdict,
     dac_lsb_volts,
+    dark_monitor_verdict,
     detector_noise_a,
     feedback_resistor_noise_a,
     monitor_verdict,
@@ -125,7 +126,7 @@ def _monitor(**changes: object) -> dict[str, object]:
         ({}, "ok"),
         ({"lit_a": np.full(64, 1e-6)}, "saturated"),
         ({"lit_a": 5e-9 + np.random.default_rng(3).normal(0, 1e-9, 64)}, "dead"),
-        ({"dark_a": np.full(64, 7e-8), "lit_a": np.full(64, 7e-8), "frame_levels_a": np.full(16, 7e-8)}, "frozen"),
+        ({"lit_a": np.full(64, 7e-8), "frame_levels_a": np.full(16, 7e-8)}, "frozen"),
         ({"lit_a": 200e-9 + np.random.default_rng(4).normal(0, 4e-9, 64)}, "noisy"),
         ({"dark_a": 5e-9 + np.random.default_rng(4).normal(0, 4e-9, 64)}, "noisy"),
     ],
@@ -142,6 +143,28 @@ def test_constant_readings_without_changing_neighbours_are_not_called_frozen() -
     """Frozen needs evidence that the light around the monitor changed; without it a flat monitor is dead."""
     flat = {"dark_a": np.full(64, 7e-8), "lit_a": np.full(64, 7e-8), "frame_levels_a": np.full(16, 7e-8)}
     assert monitor_verdict(**_monitor(**flat, neighbours_changed=False)).verdict == "dead"  # type: ignore[arg-type]
+
+
+def test_a_monitor_at_its_dark_level_is_dead_not_frozen() -> None:
+    """A detector that reads only the dark level is dead even while its neighbours' light changes."""
+    flat = {"lit_a": np.full(64, 5e-9), "frame_levels_a": np.full(16, 5e-9)}
+    assert monitor_verdict(**_monitor(**flat)).verdict == "dead"  # type: ignore[arg-type]
+
+
+@pytest.mark.parametrize(
+    ("dark", "verdict"),
+    [
+        (5e-9 + np.random.default_rng(5).normal(0, 1e-9, 8), "ok"),
+        (5e-9 + np.random.default_rng(6).normal(0, 5e-9, 8), "noisy"),
+        (np.full(8, 1e-6), "saturated"),
+    ],
+)
+def test_dark_monitor_rules(dark: object, verdict: str) -> None:
+    """A monitor no light reaches is tested for saturation and noise only, and ok says so."""
+    result = dark_monitor_verdict(dark_a=dark, full_scale_a=1e-6, dark_noise_a=1e-9)
+    assert result.verdict == verdict, result
+    if verdict == "ok":
+        assert "only saturation and noise" in result.reason
 
 
 def test_verdict_as_dict_is_plain() -> None:

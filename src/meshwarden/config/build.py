@@ -6,6 +6,7 @@ afterwards by :mod:`meshwarden.config.checks`, once every section has been read.
 
 from __future__ import annotations
 
+import re
 from pathlib import Path
 from typing import Any
 
@@ -26,14 +27,15 @@ from meshwarden.config.model import (
     MonitorConfig,
     RackConfig,
     SafetyConfig,
+    ScansConfig,
     ScpiOptions,
     ServiceConfig,
     WatchdogConfig,
 )
 from meshwarden.config.source import PathKey
-from meshwarden.units import AMPS_PER_WATT, HERTZ, OHMS, SECONDS, VOLTS
+from meshwarden.units import AMPS_PER_WATT, HERTZ, OHMS, RADIANS, SECONDS, VOLTS
 
-TOP_KEYS = ("rack", "chip", "calibration", "safety", "service", "journal", "simulator")
+TOP_KEYS = ("rack", "chip", "calibration", "safety", "service", "journal", "simulator", "scans")
 BOARD_KEYS = (
     "id",
     "url",
@@ -276,6 +278,62 @@ def _service(p: f.Problems, raw: Any) -> ServiceConfig:
     )
 
 
+SCAN_KEYS = (
+    "every_s",
+    "at",
+    "targets",
+    "directory",
+    "test_volts",
+    "max_step_volts",
+    "kappa_step",
+    "phase_step_rad",
+    "rest_frames",
+    "optical_noise_rel",
+    "sense_noise_volts",
+    "k_sigma",
+)
+
+
+def _time_of_day(value: Any) -> str:
+    if not isinstance(value, str) or not re.fullmatch(r"([01]\d|2[0-3]):[0-5]\d", value):
+        raise ValueError(f"expected a time of day HH:MM such as \"02:30\", got {value!r}")
+    return value
+
+
+def _sigmas(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 1.0 <= float(value) <= 100.0:
+        raise ValueError(f"expected a number of standard deviations from 1 to 100, got {value!r}")
+    return float(value)
+
+
+def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
+    s = f.Section(p, raw, ("scans",), SCAN_KEYS)
+    d = ScansConfig()
+    if s.value.get("every_s") is not None and s.value.get("at") is not None:
+        p.add(("scans",), "give 'every_s' (a period) or 'at' (a time of day), not both")
+    targets = []
+    for path, item in s.items("targets"):
+        if not isinstance(item, str) or item not in known:
+            p.add(path, f"{item!r} is not an actuator or gate of the chip")
+        else:
+            targets.append(item)
+    directory = s.get("directory", f.path_in(p.directory(("scans", "directory"))), None)
+    return ScansConfig(
+        every_s=s.get("every_s", f.quantity(SECONDS), None),
+        at=s.get("at", _time_of_day, None),
+        targets=tuple(targets),
+        directory=directory,
+        test_volts=s.get("test_volts", f.quantity(VOLTS), d.test_volts),
+        max_step_volts=s.get("max_step_volts", f.quantity(VOLTS), d.max_step_volts),
+        kappa_step=s.get("kappa_step", f.fraction, d.kappa_step),
+        phase_step_rad=s.get("phase_step_rad", f.quantity(RADIANS), d.phase_step_rad),
+        rest_frames=s.get("rest_frames", f.integer(3, 1000), d.rest_frames),
+        optical_noise_rel=s.get("optical_noise_rel", f.fraction, d.optical_noise_rel),
+        sense_noise_volts=s.get("sense_noise_volts", f.quantity(VOLTS), d.sense_noise_volts),
+        k_sigma=s.get("k_sigma", _sigmas, d.k_sigma),
+    )
+
+
 def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
     """Read every section; return the config, or None when a problem was recorded."""
     top = f.Section(p, raw, (), TOP_KEYS, what="configuration")
@@ -311,6 +369,8 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
     journal = top.sub("journal", ("path",))
     journal_path = journal.get("path", f.path_in(p.directory(("journal", "path"))))
     service = _service(p, top.value.get("service"))
+    known_targets = {a.id for a in actuators} | {g.id for g in gates}
+    scans = _scans(p, top.value.get("scans"), known_targets)
     if "simulator" in top.value and not isinstance(top.value["simulator"], dict):
         p.add(("simulator",), "expected a mapping (read only by the simulator)")
 
@@ -322,5 +382,6 @@ def build_config(p: f.Problems, raw: Any, source: Path) -> Config | None:
         journal=JournalConfig(journal_path),
         safety=SafetyConfig(margin, override, poll_s),
         service=service,
+        scans=scans,
         source=source,
     )

@@ -249,6 +249,28 @@ class JournalConfig:
 
 
 @dataclass(frozen=True)
+class ScansConfig:
+    """Fault scans: when the daemon runs one by itself, on what, and how hard each scan pushes.
+
+    ``every_s`` (a period) or ``at`` ("HH:MM", the host's local time of day) schedules automatic
+    scans; neither means scans run only on request. ``directory`` keeps the report files
+    (default: a ``scans`` folder beside the journal)."""
+
+    every_s: float | None = None
+    at: str | None = None
+    targets: tuple[str, ...] = ()
+    directory: Path | None = None
+    test_volts: float = 10.0
+    max_step_volts: float = 2.0
+    kappa_step: float = 0.005
+    phase_step_rad: float = 0.01
+    rest_frames: int = 8
+    optical_noise_rel: float = 0.01
+    sense_noise_volts: float = 0.005
+    k_sigma: float = 5.0
+
+
+@dataclass(frozen=True)
 class Config:
     """The whole validated configuration. ``source`` is informative and not part of equality."""
 
@@ -257,6 +279,7 @@ class Config:
     journal: JournalConfig
     safety: SafetyConfig = SafetyConfig()
     service: ServiceConfig = ServiceConfig()
+    scans: ScansConfig = ScansConfig()
     source: Path | None = field(default=None, compare=False)
 
     def hard_limit_volts(self, actuator: ActuatorConfig) -> float:

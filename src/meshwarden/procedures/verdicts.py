@@ -17,11 +17,11 @@ gives no first-order response to test), ``no_response`` (optical response below 
 noise while the drive is fine), ``drifted`` (response off the calibrated prediction by more than k
 sigma and a relative tolerance), else ``ok``.
 
-Monitor rules, first match wins: ``saturated`` (readings at the top of the range), ``frozen``
-(every reading - dark, lit, each scan frame - within one ADC LSB while neighbouring monitors' light
-changed: a live detector always shows its noise), ``dead`` (no response to known light),
-``noisy``, else ``ok``. Where the detector noise is below one ADC LSB, frozen and dead differ only
-by ``neighbours_changed``.
+Monitor rules, first match wins: ``saturated`` (readings at the top of the range), ``dead`` (no
+response to known light: it reads the dark level), ``frozen`` (it reads light, but every reading -
+lit and each scan frame - stays within one ADC LSB while neighbouring monitors' light changed),
+``noisy``, else ``ok``. A monitor that no light reaches at the operating point can only be checked
+for saturation and noise (:func:`dark_monitor_verdict`).
 """
 
 from __future__ import annotations
@@ -171,7 +171,7 @@ def monitor_verdict(
     noise_floor = positive("dark_noise_a", dark_noise_a)
     dark_limit = noise_threshold(noise_floor, dark.size, false_alarm)
     lit_limit = noise_threshold(positive("lit_noise_a", lit_noise_a), lit.size, false_alarm)
-    everything = np.concatenate([dark, lit, levels])
+    everything = np.concatenate([lit, levels])  # its own readings (the dark level may come from elsewhere)
     spread = float(everything.max() - everything.min())
     evidence = {
         "dark_mean_a": float(dark.mean()),
@@ -187,10 +187,41 @@ def monitor_verdict(
     }
     if evidence["max_reading_a"] >= saturation_fraction * top:
         return Verdict("saturated", f"reads {evidence['max_reading_a']:.4g} A of a {top:.4g} A range", evidence)
-    if neighbours_changed and spread <= non_negative("adc_lsb_a", adc_lsb_a):
-        return Verdict("frozen", "its readings do not change while its neighbours' light does", evidence)
     if response < positive("k_sigma", k_sigma) * noise_floor:
         return Verdict("dead", f"known light moves it by {response:.3g} A (need {k_sigma * noise_floor:.3g})", evidence)
+    if neighbours_changed and spread <= non_negative("adc_lsb_a", adc_lsb_a):
+        return Verdict("frozen", "its readings do not change while its neighbours' light does", evidence)
     if evidence["dark_std_a"] > dark_limit or evidence["lit_std_a"] > lit_limit:
         return Verdict("noisy", "noise above the detector's expected shot and thermal noise", evidence)
     return Verdict("ok", "", evidence)
+
+
+def dark_monitor_verdict(
+    *,
+    dark_a: Any,
+    full_scale_a: float,
+    dark_noise_a: float,
+    saturation_fraction: float = 0.98,
+    false_alarm: float = 1e-6,
+    unlit_reason: str = "no light reaches it at this operating point",
+) -> Verdict:
+    """Verdict for a monitor no (or too little) light reaches at the operating point: only saturation and
+    noise can be tested.
+
+    ``ok`` here says so in its reason: a dead detector reads its dark level too.
+    """
+    dark = float_vector("dark_a", dark_a, min_length=2)
+    top = positive("full_scale_a", full_scale_a)
+    limit = noise_threshold(positive("dark_noise_a", dark_noise_a), dark.size, false_alarm)
+    evidence = {
+        "dark_mean_a": float(dark.mean()),
+        "max_reading_a": float(dark.max()),
+        "full_scale_a": top,
+        "dark_std_a": float(dark.std(ddof=1)),
+        "dark_std_limit_a": limit,
+    }
+    if evidence["max_reading_a"] >= saturation_fraction * top:
+        return Verdict("saturated", f"reads {evidence['max_reading_a']:.4g} A of a {top:.4g} A range", evidence)
+    if evidence["dark_std_a"] > limit:
+        return Verdict("noisy", "noise above the detector's expected dark noise", evidence)
+    return Verdict("ok", f"{unlit_reason}: only saturation and noise were tested", evidence)

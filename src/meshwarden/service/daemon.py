@@ -14,6 +14,7 @@ above zero, the highest voltage, and what each board's watchdog will do and when
 from __future__ import annotations
 
 import asyncio
+import contextlib
 import os
 import signal
 from collections.abc import Callable
@@ -116,14 +117,18 @@ async def serve(
             loop.add_signal_handler(signal.SIGHUP, lambda: log.info("keys reloaded", count=bus.reload_keys()))
         if ready is not None:
             ready(bus)
+        schedule = asyncio.ensure_future(bus.dispatcher.scans.run_schedule())  # automatic fault scans
         try:
             await stop.wait()
         finally:
+            schedule.cancel()
             log.info("stopping")
             if signals:
                 for sig in (signal.SIGTERM, signal.SIGINT, signal.SIGHUP):
                     loop.remove_signal_handler(sig)
             bus.dispatcher.jobs.cancel_all()
+            with contextlib.suppress(asyncio.CancelledError):
+                await schedule
             await bus.close()
             if shutdown == "ramp_to_zero" and not controller.estopped:
                 await controller.disarm(client="shutdown")

@@ -23,6 +23,7 @@ from meshwarden.errors import BusError, ForbiddenRefused, MeshwardenError, Refus
 from meshwarden.service.identity import Sender
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
+from meshwarden.service.scans import ScanService
 from meshwarden.service.schema import MAX_REASON_CHARS, OPS, READ_ONLY, ROLES, Request
 from meshwarden.service.telemetry import Telemetry
 from meshwarden.service.views import get_view
@@ -34,6 +35,7 @@ class Dispatcher:
         self.telemetry = telemetry
         self.leases = Leases(controller.claims)
         self.jobs = Jobs(telemetry.publish)
+        self.scans = ScanService(controller, self.jobs, telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
         self.run_token: str | None = None  # set by `serve --run-token`: lets a launcher know its own daemon
         controller.listeners.append(self._on_event)
@@ -308,3 +310,24 @@ class Dispatcher:
 
     async def _op_recover(self, request: Request, who: str) -> Any:
         return await self.controller.recover(request.args["board"], client=who)
+
+    # ------------------------------------------------------------------ fault scans
+
+    async def _op_scan(self, request: Request, who: str) -> Any:
+        targets = request.args.get("targets") or None
+        if targets:
+            self.leases.check(who, self._actuators_of(targets))
+        job = self.scans.start(targets, who)
+        if not request.args.get("wait", True):
+            return {"job": job.id, "state": "running"}
+        try:
+            report = await asyncio.shield(job.task)
+        except asyncio.CancelledError:
+            if job.task.cancelled():
+                raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
+            raise
+        return {"job": job.id, "state": "done", "scan": report}
+
+    async def _op_scans(self, request: Request, who: str) -> Any:
+        limit = int(request.args.get("limit", 100))  # 1..1000, checked by the schema
+        return await asyncio.to_thread(self.scans.store.history, limit)

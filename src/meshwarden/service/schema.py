@@ -61,6 +61,8 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "calibrations": ("observer", {}),
     "calibration_show": ("observer", {"version": ((str,), True)}),
     "calibration_activate": ("admin", {"version": ((str,), True)}),
+    "scan": ("operator", {"targets": ((list,), False), "wait": ((bool,), False)}),
+    "scans": ("observer", {"limit": ((int,), False)}),
 }
 # (op, argument) -> (lowest, highest, unit) allowed, both inclusive
 ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
@@ -70,6 +72,7 @@ ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
     ("events", "limit"): (1, 1000, "events"),
     ("lease", "ttl_s"): (MIN_TTL_S, MAX_TTL_S, "s"),
     ("calibrate", "points"): (12, 64, "points per sweep"),
+    ("scans", "limit"): (1, 1000, "scans"),
 }
 MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links are shared
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
@@ -79,7 +82,9 @@ MAX_NAME_CHARS = 100  # an actuator, gate attribute, board or job id; longer nam
 MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
-READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs", "job", "calibrations", "calibration_show"}
+READ_ONLY = {
+    "status", "get", "snapshot", "monitors", "events", "jobs", "job", "calibrations", "calibration_show", "scans",
+}
 
 
 @dataclass(frozen=True)
@@ -192,6 +197,10 @@ def parse_request(data: bytes) -> Request:
     if op in ("lease", "release"):
         if not all(isinstance(t, str) for t in args["targets"]):
             raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
+        _check_names(op, "targets", args["targets"])
+    if op == "scan" and "targets" in args:
+        if not all(isinstance(t, str) for t in args["targets"]):
+            raise BusError("bad_request", "scan: 'targets' must be a list of ids")
         _check_names(op, "targets", args["targets"])
     if op in ("cancel", "recover"):
         _check_names(op, "job" if op == "cancel" else "board", [args["job" if op == "cancel" else "board"]])

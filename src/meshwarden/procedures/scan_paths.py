@@ -1,0 +1,258 @@
+"""Which monitors can see which actuator at an operating point: the scan's observability rules.
+
+Light is followed as a set of lit modes through the lattice (:class:`.lattice.LatticeTopology`),
+each gate set to bar, cross or split by its coupler's calibrated ratio. The first-order rules a
+scan relies on (standard directional-coupler and Mach-Zehnder algebra):
+
+* a coupler changes the power split of its two outputs, so it is seen by any monitor its outputs
+  reach, provided light enters it;
+* a phase shifter changes only the phase of its arm, so its effect appears in power only where
+  that arm's light meets *other* coherent light in a later coupler that splits; it is seen by the
+  monitors that coupler's outputs reach. A phase after the last splitting coupler on its path is
+  invisible to every power monitor.
+
+Anything else is reported with the reason it cannot be seen; the scan then calls the actuator
+``unobservable`` rather than ``ok``.
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Mapping
+from dataclasses import dataclass
+
+from meshwarden.procedures.inputs import ProcedureInputError
+from meshwarden.procedures.lattice import LatticeTopology
+
+BAR_CROSS_TOLERANCE = 0.02  # kappa within this of 0 (or 1) counts as bar (or cross): common practice
+
+
+def gate_setting(kappa: float | None, tolerance: float = BAR_CROSS_TOLERANCE) -> str:
+    """ "bar", "cross" or "split" for a coupler's power coupling (None: unknown, taken as split)."""
+    if kappa is None:
+        return "split"
+    if kappa <= tolerance:
+        return "bar"
+    if kappa >= 1.0 - tolerance:
+        return "cross"
+    return "split"
+
+
+@dataclass(frozen=True)
+class Sight:
+    """The monitors that can see one actuator, or why none can."""
+
+    monitors: frozenset[str]
+    reason: str = ""
+
+
+def _apply(topology: LatticeTopology, column: int, lit: set[int], settings: Mapping[str, str]) -> set[int]:
+    out = set(lit)
+    for gate, (col, top) in topology.gates.items():
+        if col != column:
+            continue
+        a, b = top in lit, top + 1 in lit
+        setting = settings.get(gate, "split")
+        out.discard(top)
+        out.discard(top + 1)
+        if setting == "cross":
+            a, b = b, a
+        elif setting == "split":
+            a = b = a or b
+        if a:
+            out.add(top)
+        if b:
+            out.add(top + 1)
+    return out
+
+
+def lit_modes(topology: LatticeTopology, settings: Mapping[str, str]) -> dict[int, set[int]]:
+    """Lit modes after each column (-1: at the input)."""
+    lit = {-1: set(topology.input_modes)}
+    for column in range(topology.columns):
+        lit[column] = _apply(topology, column, lit[column - 1], settings)
+    return lit
+
+
+def lit_monitors(topology: LatticeTopology, settings: Mapping[str, str]) -> set[str]:
+    """Monitors whose tapped mode carries light at this operating point."""
+    lit = lit_modes(topology, settings)
+    return {m for m, (after, mode) in topology.taps.items() if mode in lit[after]}
+
+
+def reached_monitors(
+    topology: LatticeTopology, settings: Mapping[str, str], after_column: int, modes: set[int]
+) -> set[str]:
+    """Monitors that light on ``modes`` after ``after_column`` reaches (taps from that column on)."""
+    reached: set[str] = set()
+    current = set(modes)
+    for column in range(after_column, topology.columns):
+        if column > after_column:
+            current = _apply(topology, column, current, settings)
+        reached |= {m for m, (after, mode) in topology.taps.items() if after == column and mode in current}
+    return reached
+
+
+def sight(topology: LatticeTopology, settings: Mapping[str, str], gate: str, attribute: str) -> Sight:
+    """Who can see the ``attribute`` ("kappa" or "phase") of ``gate`` at these gate settings."""
+    if gate not in topology.gates:
+        return Sight(frozenset(), f"gate {gate} is not in the lattice topology")
+    if attribute not in ("kappa", "phase"):
+        raise ProcedureInputError(f"attribute must be 'kappa' or 'phase', got {attribute!r}")
+    column, top = topology.gates[gate]
+    lit = lit_modes(topology, settings)
+    if not {top, top + 1} & lit[column - 1]:
+        return Sight(frozenset(), f"no light reaches gate {gate} at this operating point")
+    if attribute == "kappa":
+        seen = reached_monitors(topology, settings, column, {top, top + 1})
+        if not seen:
+            return Sight(frozenset(), f"no monitor is downstream of gate {gate}")
+        return Sight(frozenset(seen))
+    if top not in lit[column]:
+        return Sight(frozenset(), f"no light leaves gate {gate} on its phase-shifted arm")
+    phased = {top}
+    for later in range(column + 1, topology.columns):
+        mixed: set[str] = set()
+        for other, (col, other_top) in topology.gates.items():
+            if col != later or not {other_top, other_top + 1} & phased:
+                continue
+            pair = {other_top, other_top + 1}
+            unmixed = pair - phased
+            if settings.get(other, "split") == "split" and unmixed & lit[later - 1]:
+                mixed |= reached_monitors(topology, settings, later, pair)
+        if mixed:
+            return Sight(frozenset(mixed))
+        phased = _apply(topology, later, phased, settings)
+    return Sight(
+        frozenset(),
+        f"the phase of {gate} meets no other light in a splitting coupler before a monitor (first-order invisible)",
+    )
+
+
+def upstream_of(
+    topology: LatticeTopology,
+    settings: Mapping[str, str],
+    gate: str,
+    attribute: str,
+    later_gate: str,
+    later_attribute: str,
+) -> bool:
+    """Whether light passing ``gate``'s ``attribute`` goes on to ``later_gate``'s ``later_attribute``.
+
+    Within one gate the coupler comes before the phase shifter.
+    """
+    if gate not in topology.gates or later_gate not in topology.gates:
+        return False
+    if gate == later_gate:
+        return attribute == "kappa" and later_attribute == "phase"
+    column, top = topology.gates[gate]
+    later_column, later_top = topology.gates[later_gate]
+    if later_column <= column:
+        return False
+    modes = {top, top + 1}
+    for between in range(column + 1, later_column):
+        modes = _apply(topology, between, modes, settings)
+    return bool(modes & {later_top, later_top + 1})
+
+
+def incoherent_powers(topology: LatticeTopology, kappas: Mapping[str, float | None]) -> dict[str, float]:
+    """Power at each tap, relative to one unit in each input mode, if light added in power, not in field.
+
+    A gate sends 1 - kappa of each input straight on and kappa across (unknown kappa: 1/2); losses and the
+    tap fraction are left out (a common factor). Interference moves real powers around this estimate
+    (to zero at a null), so it only says roughly how much light a tap can expect.
+    """
+    power = [0.0] * topology.modes
+    for mode in topology.input_modes:
+        power[mode] = 1.0
+    out = {m: power[mode] for m, (after, mode) in topology.taps.items() if after == -1}
+    for column in range(topology.columns):
+        for gate, (col, top) in topology.gates.items():
+            if col != column:
+                continue
+            kappa = kappas.get(gate)
+            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
+            upper, lower = power[top], power[top + 1]
+            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        out |= {m: power[mode] for m, (after, mode) in topology.taps.items() if after == column}
+    return out
+
+
+def _powers(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], start: dict[int, float], first: int
+) -> dict[int, list[float]]:
+    """Power-summed light per mode after each column from ``first`` on, given the power after ``first - 1``."""
+    power = [start.get(m, 0.0) for m in range(topology.modes)]
+    out = {first - 1: list(power)}
+    for column in range(first, topology.columns):
+        for gate, (col, top) in topology.gates.items():
+            if col != column:
+                continue
+            kappa = kappas.get(gate)
+            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
+            upper, lower = power[top], power[top + 1]
+            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        out[column] = list(power)
+    return out
+
+
+def _transfer(topology: LatticeTopology, kappas: Mapping[str, float | None], after: int, mode: int) -> dict[str, float]:
+    """Fraction of unit power on ``mode`` after column ``after`` that reaches each tap from there on (power-summed)."""
+    powers = _powers(topology, kappas, {mode: 1.0}, after + 1)
+    return {m: powers[a][k] for m, (a, k) in topology.taps.items() if a >= after}
+
+
+def expected_effect(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> dict[str, float]:
+    """A generous estimate of |d(tap power)/d(value)| at each tap, per unit of input power in each input mode.
+
+    From the coupler and Mach-Zehnder algebra with powers summed (phases unknown): a coupler with inputs P_a,
+    P_b moves at most |P_b - P_a| + |1 - 2 kappa| sqrt(P_a P_b / (kappa (1 - kappa))) per unit kappa; a phase
+    whose arm P_a meets P_b in a coupler of ratio kappa moves at most 2 sqrt(kappa (1 - kappa) P_a P_b) per
+    radian; each then reaches a tap by the larger of the two outputs' power-summed transfer. Where this is below
+    what a scan can detect, a missing response says nothing about the actuator.
+    """
+    if gate not in topology.gates:
+        return {}
+    column, top = topology.gates[gate]
+    base = _powers(topology, kappas, {m: 1.0 for m in topology.input_modes}, 0)
+    if attribute == "kappa":
+        pa, pb = base[column - 1][top], base[column - 1][top + 1]
+        k = min(max(kappas.get(gate) or 0.5, 0.01), 0.99)
+        slope = abs(pb - pa) + abs(1 - 2 * k) * math.sqrt(pa * pb / (k * (1 - k)))
+        mixer_column, mixer_top = column, top
+    else:
+        found = _mixer(topology, kappas, column, top)
+        if found is None:
+            return {}
+        mixer_column, mixer_top, phased = found
+        pa = sum(base[mixer_column - 1][m] for m in phased & {mixer_top, mixer_top + 1})
+        pb = sum(base[mixer_column - 1][m] for m in {mixer_top, mixer_top + 1} - phased)
+        mixer = topology.gate_at(mixer_column, mixer_top)
+        k = min(max(kappas.get(mixer or "") or 0.5, 0.0), 1.0)
+        slope = 2 * math.sqrt(k * (1 - k) * pa * pb)
+    upper = _transfer(topology, kappas, mixer_column, mixer_top)
+    lower = _transfer(topology, kappas, mixer_column, mixer_top + 1)
+    return {m: slope * max(upper.get(m, 0.0), lower.get(m, 0.0)) for m in upper}
+
+
+def _mixer(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], column: int, top: int
+) -> tuple[int, int, set[int]] | None:
+    """The first later coupler where the phase-shifted arm (mode ``top`` after ``column``) meets other light."""
+    settings = {g: gate_setting(k) for g, k in kappas.items()}
+    lit = lit_modes(topology, settings)
+    phased = {top}
+    for later in range(column + 1, topology.columns):
+        for other, (col, other_top) in topology.gates.items():
+            pair = {other_top, other_top + 1}
+            if (
+                col == later
+                and pair & phased
+                and settings.get(other, "split") == "split"
+                and (pair - phased) & lit[later - 1]
+            ):
+                return later, other_top, set(phased)
+        phased = _apply(topology, later, phased, settings)
+    return None

@@ -1,0 +1,292 @@
+"""The fault scan on the simulated bench: faults found and classed, outputs left where they were."""
+
+from __future__ import annotations
+
+import asyncio
+import copy
+import math
+from pathlib import Path
+from typing import Any
+
+import numpy as np
+import pytest
+
+from meshsim import inprocess
+from meshsim.faults import Fault
+from meshwarden.api import open_controller
+from meshwarden.config import load_config
+from meshwarden.errors import StoppedRefused
+from meshwarden.procedures.scan_paths import (
+    expected_effect,
+    gate_setting,
+    incoherent_powers,
+    lit_monitors,
+    sight,
+    upstream_of,
+)
+from meshwarden.procedures.scan_run import ScanControl, ScanSettings, run_scan
+from meshwarden.writelog import check_board_log
+from tests.procedures.scan_bench import BLOCKS, OPERATING_POINT, bench_topology, write_scan_bench
+from tests.procedures.scan_draws import Draw, problems, run_draws, scan_one
+
+# Exact SI values (2019 redefinition): Source: BIPM, The International System of Units, 9th ed.
+ELEMENTARY_CHARGE_C = 1.602176634e-19
+BOLTZMANN_J_PER_K = 1.380649e-23
+
+
+def _scan(tmp_path: Path, faults: list[Fault] | None = None, **kwargs: Any) -> tuple[dict[str, Any], list[str]]:
+    return asyncio.run(scan_one(tmp_path, Draw(faults or [])) if not kwargs else _custom(tmp_path, faults, **kwargs))
+
+
+async def _custom(tmp_path: Path, faults: list[Fault] | None, **kwargs: Any) -> tuple[dict[str, Any], list[str]]:
+    path, rack = write_scan_bench(tmp_path)
+    config = load_config(path)
+    try:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set(OPERATING_POINT)
+            for fault in faults or []:
+                inprocess.get(rack).inject(fault)
+            report = await run_scan(ctl, owner="scan:test", **kwargs)
+            log = list(inprocess.get(rack).board("b0").write_log)
+            return report, [str(v) for v in check_board_log(config, "b0", log).violations]
+    finally:
+        inprocess.remove(rack)
+
+
+def test_random_faults_are_found_and_classed_right() -> None:
+    """Over random draws of actuator and monitor faults, every judgeable fault gets its class and no healthy part
+    is flagged, within rules 1-3, outputs back where they began, in at most 1.65 monitor frames per actuator (1.2 for
+    the design and its rest frames, plus three per group of suspects for a second look where a response is
+    missing)."""
+    # a seed picked once and never adjusted; the longer run is `python -m tests.procedures.scan_draws`
+    result = run_draws(8, seed=31337)
+    assert result["failures"] == []
+    assert result["found"] > result["draws"]  # most injected faults were judgeable, and found
+    assert result["frames_per_actuator"] <= 1.65
+
+
+def test_healthy_bench_is_all_ok_except_the_invisible_phases(tmp_path: Path) -> None:
+    """A healthy chip: every actuator ok but the phases after the last coupler (unobservable, with a reason)."""
+    report, issues = _scan(tmp_path)
+    assert issues == []
+    for aid, verdict in report["actuators"].items():
+        wanted = "unobservable" if aid.startswith("b") and aid.endswith("p") else "ok"
+        assert verdict["verdict"] == wanted, (aid, verdict)
+    assert report["actuators"]["b0p"]["reason"].startswith("the phase of b0 meets no other light")
+    assert {v["verdict"] for v in report["monitors"].values()} == {"ok"}
+    assert report["outputs_restored"] is True
+    # 15 observable actuators: an S-matrix of order 15 plus its rest frame (Harwit & Sloane 1979), + 8 rest frames
+    assert report["frames"] == 16 + 8
+
+
+def test_noise_limit_is_the_detector_noise_of_the_formulas(tmp_path: Path) -> None:
+    """The noise limit a lit monitor is judged by equals sigma sqrt(chi2_{1-a}(n-1)/(n-1)) with sigma from shot,
+    feedback-resistor and ADC quantisation noise and the allowance for wandering light, recomputed here from the
+    published formulas."""
+    report, _ = _scan(tmp_path)
+    evidence = report["monitors"]["o0b"]["evidence"]
+    level = evidence["lit_mean_a"]
+    bandwidth = 1.0 / (2 * 1e-3)  # integrate-and-dump over T: B = 1/(2T) (standard)
+    lsb = 2.5 / 2**16 / 100e3  # the simulated ADC's 2.5 V full scale, 16 bits, 100 kOhm
+    shot = 2 * ELEMENTARY_CHARGE_C * level * bandwidth  # Source: Schottky shot noise 2qIB
+    johnson = 4 * BOLTZMANN_J_PER_K * 300.0 * bandwidth / 100e3  # Source: Johnson 1928; Nyquist 1928
+    quantisation = lsb**2 / 12  # Source: Kester, Analog Devices MT-001
+    wander = (0.01 * level) ** 2  # scans.optical_noise_rel: 1 % of the light (drift, laser noise; common practice)
+    sigma = math.sqrt(shot + johnson + quantisation + wander)
+    # 8 rest frames: chi-square with 7 degrees of freedom, whose tail for odd nu is
+    # Q(x) = erfc(sqrt(x/2)) + sqrt(2/pi) e^(-x/2) (x^(1/2) + x^(3/2)/3 + x^(5/2)/15) (Abramowitz & Stegun 26.4.5);
+    # solve Q(x) = 1e-6 by bisection
+    low, high = 0.0, 200.0
+    for _ in range(200):
+        mid = (low + high) / 2
+        series = math.sqrt(mid) + mid**1.5 / 3 + mid**2.5 / 15
+        tail = math.erfc(math.sqrt(mid / 2)) + math.sqrt(2 / math.pi) * math.exp(-mid / 2) * series
+        low, high = (mid, high) if tail > 1e-6 else (low, mid)
+    assert evidence["lit_std_limit_a"] == pytest.approx(sigma * math.sqrt(low / 7), rel=1e-6)
+    # the dark taps are judged by the detector alone (no light to wander): shot of nothing but thermal and ADC
+    dark = report["monitors"]["d0"]["evidence"]
+    dark_sigma = math.sqrt(2 * ELEMENTARY_CHARGE_C * dark["dark_mean_a"] * bandwidth + johnson + quantisation)
+    assert dark["dark_std_limit_a"] == pytest.approx(dark_sigma * math.sqrt(low / 7), rel=1e-6)
+
+
+def test_without_topology_a_stuck_actuator_is_unobservable_never_ok(tmp_path: Path) -> None:
+    """Without the lattice topology the scan cannot tell stuck from unseen, and says so instead of ok."""
+    report, issues = _scan(tmp_path, [Fault("stuck", "a1p")], topology=None)
+    assert issues == []
+    verdict = report["actuators"]["a1p"]
+    assert verdict["verdict"] == "unobservable"
+    assert "without the lattice topology" in verdict["reason"]
+    assert report["actuators"]["a1c"]["verdict"] == "ok"  # it responds: the drive and the optics work
+
+
+def test_driver_faults_are_found_on_unobservable_actuators_too(tmp_path: Path) -> None:
+    """The sense check covers actuators no monitor sees: a dead output stage there is a driver fault."""
+    report, _ = _scan(tmp_path, [Fault("dead_channel", "b0:7")], topology=bench_topology())
+    assert report["actuators"]["b1p"]["verdict"] == "driver_fault"
+
+
+def test_a_stopped_scan_returns_the_outputs(tmp_path: Path) -> None:
+    """A stop between frames ends the scan with a stopped refusal after every output went back."""
+    control = ScanControl()
+
+    def progress(done: int, total: int) -> None:
+        if done == 12:  # within the design frames: outputs have moved
+            control.stop("cancelled by a client")
+
+    async def scenario() -> tuple[dict[str, int], dict[str, int], int]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+                before = {a: int(ctl.describe(a)["code"]) for a in ctl.actuators}
+                writes = len(inprocess.get(rack).board("b0").write_log)
+                with pytest.raises(StoppedRefused, match="returned"):
+                    await run_scan(ctl, owner="scan:t", topology=bench_topology(), control=control, progress=progress)
+                board = inprocess.get(rack).board("b0")
+                after = {a: int(board.codes[ctl.actuators[a].config.output.index]) for a in ctl.actuators}
+                return before, after, len(board.write_log) - writes
+        finally:
+            inprocess.remove(rack)
+
+    before, after, writes = asyncio.run(scenario())
+    assert writes > 0
+    assert after == before
+
+
+def test_steps_stay_below_the_test_voltage(tmp_path: Path) -> None:
+    """From an operating point of 0 V a step goes up, never past the configured test voltage."""
+
+    async def scenario() -> list[Any]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await run_scan(ctl, ["a0"], owner="scan:t", settings=ScanSettings(test_volts=1.0))
+                return list(inprocess.get(rack).board("b0").write_log)
+        finally:
+            inprocess.remove(rack)
+
+    log = asyncio.run(scenario())
+    lsb = 60.0 / 2**16
+    writes = [v for _, kind, _, values in log if kind == "write" for v in values]
+    assert writes and max(writes) * lsb <= 1.0
+
+
+@pytest.mark.parametrize(
+    ("kappa", "setting"), [(None, "split"), (0.0, "bar"), (0.01, "bar"), (0.5, "split"), (0.995, "cross")]
+)
+def test_gate_settings(kappa: float | None, setting: str) -> None:
+    """A coupler near 0 passes light straight, near 1 swaps it, else splits (unknown: split)."""
+    assert gate_setting(kappa) == setting
+
+
+def test_observability_rules_on_the_bench() -> None:
+    """Couplers are seen by the monitors after them, a phase only before a splitting coupler; dark taps are unlit."""
+    topology = bench_topology()
+    split = {g: "split" for g in topology.gates}
+    assert sight(topology, split, "a0", "kappa").monitors == {"o0t", "o0b"}
+    assert sight(topology, split, "a0", "phase").monitors == {"o0t", "o0b"}
+    assert sight(topology, split, "b0", "phase").monitors == frozenset()
+    # gate b set to bar: the phase of a no longer meets other light in a splitting coupler
+    assert sight(topology, split | {"b0": "bar"}, "a0", "phase").reason.startswith("the phase of a0")
+    # gate a set to bar: only mode 0 is lit, gate b still splits it, so its coupler is seen
+    assert sight(topology, split | {"a0": "bar"}, "b0", "kappa").monitors == {"o0t", "o0b"}
+    assert lit_monitors(topology, split) == {f"o{i}{s}" for i in range(BLOCKS) for s in "tb"}
+    assert upstream_of(topology, split, "a0", "kappa", "a0", "phase")
+    assert upstream_of(topology, split, "a0", "phase", "b0", "kappa")
+    assert not upstream_of(topology, split, "a1", "kappa", "b0", "kappa")
+
+
+def test_problems_notices_a_missed_fault() -> None:
+    """The draw checker itself fails a report that calls a stuck actuator ok (so the random test can fail)."""
+    d = Draw([Fault("stuck", "a0c")], actuator_faults={"a0c": "stuck"})
+    report = {"actuators": {"a0c": {"verdict": "ok", "reason": ""}}, "monitors": {}}
+    assert problems(d, report) == ["a0c (stuck): ok (), wanted ['no_response']"]
+
+
+def test_power_summed_light_follows_the_coupler_rule() -> None:
+    """Light summed in power: a coupler of ratio kappa sends 1 - kappa straight and kappa across (the standard
+    directional-coupler power split), so after kappa_a = 0.3 and kappa_b = 0.6 a unit input on the top mode
+    gives 0.7 x 0.4 + 0.3 x 0.6 = 0.46 on top and 0.54 below; the unlit mode's input tap reads nothing."""
+    topology = bench_topology()
+    kappas: dict[str, float | None] = {f"a{i}": 0.3 for i in range(BLOCKS)} | {f"b{i}": 0.6 for i in range(BLOCKS)}
+    powers = incoherent_powers(topology, kappas)
+    assert powers["o0t"] == pytest.approx(0.46)
+    assert powers["o0b"] == pytest.approx(0.54)
+    assert powers["d0"] == 0.0
+
+
+def test_expected_phase_effect_is_the_interferometer_fringe_slope() -> None:
+    """A Mach-Zehnder's output P(phi) = P_a (1-k) + P_b k - 2 sqrt(k (1-k) P_a P_b) cos(phi) (standard two-beam
+    interference) has a largest slope 2 sqrt(k (1-k) P_a P_b); the estimate for the phase of gate a0 is that slope
+    (with P_a = 0.7, P_b = 0.3 after a 0.3 coupler, k = 0.6) times the power-summed transfer to the tap."""
+    topology = bench_topology()
+    kappas: dict[str, float | None] = {f"a{i}": 0.3 for i in range(BLOCKS)} | {f"b{i}": 0.6 for i in range(BLOCKS)}
+    pa, pb, k = 0.7, 0.3, 0.6
+    phis = np.linspace(0.0, 2 * np.pi, 20001)
+    fringe = pa * (1 - k) + pb * k - 2 * np.sqrt(k * (1 - k) * pa * pb) * np.cos(phis)
+    steepest = float(np.max(np.abs(np.gradient(fringe, phis))))
+    effect = expected_effect(topology, kappas, "a0", "phase")
+    assert effect["o0t"] == pytest.approx(steepest, rel=1e-6)  # the tap right after the coupler: transfer 1
+    assert effect["o1t"] == 0.0  # another interferometer's tap
+    assert expected_effect(topology, kappas, "b0", "phase") == {}  # after the last coupler: nothing to see
+
+
+def test_a_response_far_from_the_previous_scan_at_the_same_point_is_drifted(tmp_path: Path) -> None:
+    """Against an earlier report at the same codes, an actuator that responds as before stays ok, one whose
+    response is now half of what it was is drifted; at other codes no comparison is made."""
+
+    async def scenario() -> tuple[dict[str, Any], dict[str, Any], dict[str, Any]]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+                first = await run_scan(ctl, owner="scan:t", topology=bench_topology())
+                doctored = copy.deepcopy(first)
+                doctored["actuators"]["a2p"]["evidence"]["response"] *= 2.0  # as if it once moved twice as much
+                again = await run_scan(ctl, owner="scan:t", topology=bench_topology(), reference=doctored)
+                await ctl.set({"a3.kappa": 0.35})
+                elsewhere = await run_scan(ctl, owner="scan:t", topology=bench_topology(), reference=doctored)
+                return first, again, elsewhere
+        finally:
+            inprocess.remove(rack)
+
+    first, again, elsewhere = asyncio.run(scenario())
+    assert again["compared_with_reference"] is True
+    assert again["actuators"]["a2p"]["verdict"] == "drifted"
+    assert again["actuators"]["a2p"]["evidence"]["predicted"] == pytest.approx(
+        2.0 * first["actuators"]["a2p"]["evidence"]["response"]
+    )
+    others = {a: v["verdict"] for a, v in again["actuators"].items() if a != "a2p"}
+    assert others == {a: v["verdict"] for a, v in first["actuators"].items() if a != "a2p"}
+    assert elsewhere["compared_with_reference"] is False
+    assert elsewhere["actuators"]["a2p"]["verdict"] == "ok"
+
+
+def test_actuators_on_a_board_that_cannot_be_used_are_untested(tmp_path: Path) -> None:
+    """An actuator whose board is faulted is reported untested, never ok, and nothing is written to it."""
+
+    async def scenario() -> tuple[dict[str, Any], int]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+                writes = len(inprocess.get(rack).board("b0").write_log)
+                ctl.boards["b0"].faulted = True  # as the heartbeat marks a board whose link failed
+                report = await run_scan(ctl, owner="scan:t", topology=bench_topology())
+                return report, len(inprocess.get(rack).board("b0").write_log) - writes
+        finally:
+            inprocess.remove(rack)
+
+    report, writes = asyncio.run(scenario())
+    assert {v["verdict"] for v in report["actuators"].values()} == {"untested"}
+    assert report["actuators"]["a0c"]["reason"] == "its board cannot be read"
+    assert writes == 0
