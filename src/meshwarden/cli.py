@@ -212,6 +212,9 @@ def build_parser() -> argparse.ArgumentParser:
         if name == "recover":
             cmd.add_argument("board", help="the board id")
         cmd.set_defaults(run=_cmd_client)
+    from meshwarden import cli_lock
+
+    cli_lock.add_parsers(sub)
     return parser
 
 

@@ -20,6 +20,8 @@ from typing import Any
 from meshwarden import __version__
 from meshwarden.controller import Controller
 from meshwarden.errors import ForbiddenRefused, MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.procedures.lock_law import parse_hold
+from meshwarden.procedures.locks import LockEngine, LockSpec
 from meshwarden.service.identity import Sender
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
@@ -33,6 +35,7 @@ class Dispatcher:
         self.telemetry = telemetry
         self.leases = Leases(controller.claims)
         self.jobs = Jobs(telemetry.publish)
+        self.locks = LockEngine(controller, telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
         controller.listeners.append(self._on_event)
 
@@ -236,3 +239,24 @@ class Dispatcher:
 
     async def _op_recover(self, request: Request, who: str) -> Any:
         return await self.controller.recover(request.args["board"], client=who)
+
+    # ------------------------------------------------------------------ locks
+
+    async def _op_lock_start(self, request: Request, who: str) -> Any:
+        args = request.args
+        spec = LockSpec(
+            name=args["name"],
+            actuator=args["actuator"],
+            monitor=args["monitor"],
+            hold=parse_hold(args["hold"]),
+            against=args.get("against"),
+            dither=float(args["dither"]) if "dither" in args else None,
+            bandwidth_hz=float(args["bandwidth_hz"]) if "bandwidth_hz" in args else None,
+        )
+        return {spec.name: await self.locks.start(spec, client=who)}
+
+    async def _op_locks(self, request: Request, who: str) -> Any:
+        return self.locks.table()
+
+    async def _op_lock_stop(self, request: Request, who: str) -> Any:
+        return {"stopped": await self.locks.stop(request.args.get("name"))}

@@ -48,6 +48,21 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "arm": ("admin", {}),
     "restore": ("admin", {}),
     "recover": ("admin", {"board": ((str,), True)}),
+    # closed-loop locks (docs/procedures.md)
+    "lock_start": (
+        "operator",
+        {
+            "name": ((str,), True),
+            "actuator": ((str,), True),
+            "monitor": ((str,), True),
+            "hold": ((str,), True),
+            "against": ((str,), False),
+            "dither": ((int, float), False),
+            "bandwidth_hz": ((int, float), False),
+        },
+    ),
+    "locks": ("observer", {}),
+    "lock_stop": ("operator", {"name": ((str,), False)}),
 }
 # (op, argument) -> (lowest, highest, unit) allowed, both inclusive
 ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
@@ -56,6 +71,8 @@ ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
     ("events", "since"): (0, 2**63 - 1, "(event id)"),
     ("events", "limit"): (1, 1000, "events"),
     ("lease", "ttl_s"): (MIN_TTL_S, MAX_TTL_S, "s"),
+    ("lock_start", "dither"): (1e-6, 1.0, "(rad or power coupling)"),
+    ("lock_start", "bandwidth_hz"): (1e-3, 1000.0, "Hz"),
 }
 MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links are shared
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
@@ -65,7 +82,7 @@ MAX_NAME_CHARS = 100  # an actuator, gate attribute, board or job id; longer nam
 MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
-READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs"}
+READ_ONLY = {"status", "get", "snapshot", "monitors", "events", "jobs", "locks"}
 
 
 @dataclass(frozen=True)
@@ -179,6 +196,10 @@ def parse_request(data: bytes) -> Request:
         if not all(isinstance(t, str) for t in args["targets"]):
             raise BusError("bad_request", f"{op}: 'targets' must be a list of ids")
         _check_names(op, "targets", args["targets"])
+    if op in ("lock_start", "lock_stop"):
+        _check_names(
+            op, "names", [v for k, v in args.items() if k in ("name", "actuator", "monitor", "against", "hold")]
+        )
     if op in ("cancel", "recover"):
         _check_names(op, "job" if op == "cancel" else "board", [args["job" if op == "cancel" else "board"]])
     return Request(raw["id"], raw["client"], op, args)

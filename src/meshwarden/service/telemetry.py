@@ -1,7 +1,8 @@
 """Telemetry on the PUB socket: every message carries one global sequence number.
 
 Topics: ``state`` (arm/estop/board state changes), ``monitors`` (samples at the configured rate),
-``event`` (faults, refusals, estop, resets), ``job`` (progress), ``heartbeat`` (once a second).
+``event`` (faults, refusals, estop, resets), ``job`` (progress), ``heartbeat`` (once a second),
+``lock`` (each lock's state, error, residual and value: at every change of state, else at most 5 a second).
 A subscriber detects loss (PUB drops at its high-water mark) by a gap in ``seq``; a late joiner
 subscribes first, then asks for ``snapshot`` (which carries the current ``seq``) and discards
 updates older than it.
@@ -17,7 +18,7 @@ from typing import Any
 import zmq
 import zmq.asyncio
 
-TOPICS = ("state", "monitors", "event", "job", "heartbeat")
+TOPICS = ("state", "monitors", "event", "job", "heartbeat", "lock")
 
 
 class Telemetry:
