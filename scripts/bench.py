@@ -471,13 +471,47 @@ def bench_jobs(counts: tuple[int, int] = (1_000, 10_000)) -> dict[str, float]:
     }
 
 
+def bench_locks(seconds: float, time_scale: float = 1.0) -> dict[str, object]:
+    """Locks on the drifting eight-MZI bench (tests/procedures/lockbench.py): the loop rate achieved with
+    one lock and with eight (sample period, window, corrections per second), and the residuals of eight
+    locks held for ``seconds`` of simulated time with a 0.5 rad temperature step midway (figures as in
+    tests/procedures/lockrun.py). At ``time_scale`` 1 the loop runs at its real rate; a larger scale
+    makes drift X times faster against the loop (a harder test, not a faster one of the same)."""
+    import tempfile
+
+    _repo_on_path()
+    from tests.procedures.lockrun import run_locks
+
+    holds = ["max", "min", "fraction=0.3", "max", "min", "fraction=0.7", "max", "max"]
+    out: dict[str, object] = {}
+    with tempfile.TemporaryDirectory() as folder:
+        start = time.monotonic()
+        one = run_locks(Path(folder) / "one", ["max"], 4.0)
+        out["one_lock"] = {k: v for k, v in one.as_dict().items() if k != "locks"}
+        eight = run_locks(
+            Path(folder) / "eight", holds, seconds, kick_at_s=seconds / 2, time_scale=time_scale, recover_s=1.0
+        )
+        out["eight_locks"] = eight.as_dict()
+        out["simulated_s"] = seconds
+        out["time_scale"] = time_scale
+        out["wall_s"] = time.monotonic() - start
+    return out
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, required=True)
     parser.add_argument("--repeats", type=int, default=500)
     parser.add_argument(
-        "--only", choices=("all", "hardening"), default="all", help="hardening: the hostile-bus figures only"
+        "--only",
+        choices=("all", "hardening", "lock"),
+        default="all",
+        help="hardening: the hostile-bus figures only; lock: the lock figures only",
     )
+    parser.add_argument(
+        "--lock-seconds", type=float, default=20.0, help="simulated seconds the eight locks hold (600: ten minutes)"
+    )
+    parser.add_argument("--lock-time-scale", type=float, default=1.0, help="simulated time per wall second")
     parser.add_argument("--hostile", type=int, default=100_000, help="hostile messages to send (default 100,000)")
     args = parser.parse_args()
     results: dict[str, object] = {
@@ -491,7 +525,10 @@ def main() -> None:
     if args.only == "all":
         results["simulator"] = bench_simulator(args.repeats)
         results["bus"] = bench_bus(min(args.repeats, 300))
-    results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
+    if args.only in ("all", "lock"):
+        results["locks"] = bench_locks(args.lock_seconds, args.lock_time_scale)
+    if args.only in ("all", "hardening"):
+        results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
     text = json.dumps(results, indent=2)
     args.out.write_text(text + "\n", encoding="utf-8")
     print(text)

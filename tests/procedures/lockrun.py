@@ -33,7 +33,7 @@ from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.procedures.lock_law import parse_hold
 from meshwarden.procedures.locks import LockEngine, LockSpec
-from meshwarden.writelog import check_board_log
+from meshwarden.writelog import BoardLogChecker
 from tests.procedures.lockbench import MZIS, write_lock_bench
 
 
@@ -144,14 +144,16 @@ async def _run(
             against = f"m{other:02d}" if hold.kind == "fraction" else None
             spec = LockSpec(f"L{i}", f"p{i}", f"m{main:02d}", hold, against=against, integral_gain=integral_gain)
             await engine.start(spec)
+        # the board's log is drained into the checker as it grows (it keeps only the last 200,000 writes)
+        log, checker = sim.board("b0").write_log, BoardLogChecker(config, "b0")
         wall_end = time.monotonic() + duration_s / sim.clock.time_scale
         while time.monotonic() < wall_end:
             await asyncio.sleep(0.05)
+            checker.feed([log.popleft() for _ in range(len(log))])
         states = {name: lock.state for name, lock in engine.locks.items()}
         window_s = float(np.mean([lock.window_s for lock in engine.locks.values()]))
         await engine.close()
-        log = list(sim.board("b0").write_log)
-    check = check_board_log(config, "b0", log)
+    check = checker.feed([log.popleft() for _ in range(len(log))])
     figures = [
         _figures(
             i,
