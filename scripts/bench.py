@@ -498,6 +498,55 @@ def bench_locks(seconds: float, time_scale: float = 1.0) -> dict[str, object]:
     return out
 
 
+def bench_lock_scaling(counts: tuple[int, ...] = (1, 8, 30, 60), seconds: float = 3.0) -> dict[str, object]:
+    """The loop rate with every phase shifter of the demo chip locked (two boards, 48 monitors): the
+    sample period (one guarded move per lock, all at once, and one read of every monitor) and the
+    window for 1 to 60 locks, each on monitor m{i mod 48} (so pairs share one and get distinct cycles).
+    Only the rate is measured here: with one lit input most taps see little light."""
+    import asyncio
+    import dataclasses
+    import tempfile
+
+    import meshsim.urlhandler.protocol_meshsim  # noqa: F401
+    from meshsim import inprocess
+    from meshwarden.api import open_controller
+    from meshwarden.config import load_config
+    from meshwarden.procedures.lock_law import parse_hold
+    from meshwarden.procedures.locks import LockEngine, LockSpec
+
+    out: dict[str, object] = {}
+    for count in counts:
+        with tempfile.TemporaryDirectory() as folder:
+            config = load_config(REPO / "config" / "demo.yaml")
+            journal = dataclasses.replace(config.journal, path=Path(folder) / "journal.sqlite")
+            config = dataclasses.replace(config, journal=journal)
+
+            async def run(config: Any = config, count: int = count) -> dict[str, float]:
+                async with open_controller(config) as ctl:
+                    await ctl.arm()
+                    engine = LockEngine(ctl)
+                    for i in range(count):
+                        spec = LockSpec(f"L{i}", f"p{i:02d}", f"m{i % 48:02d}", parse_hold("max"))
+                        await engine.start(spec)
+                    windows = engine.windows
+                    await asyncio.sleep(seconds)
+                    figures = {
+                        "sample_period_ms": engine.sample_period_s * 1e3,
+                        "window_samples": round(next(iter(engine.locks.values())).window_s / engine.sample_period_s),
+                        "window_ms": next(iter(engine.locks.values())).window_s * 1e3,
+                        "windows_in_run": engine.windows - windows,
+                    }
+                    await engine.close()
+                    await ctl.disarm()
+                    return figures
+
+            try:
+                out[f"{count}_locks"] = asyncio.run(run())
+            finally:
+                inprocess.remove("demo")
+    return out
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, required=True)
@@ -527,6 +576,7 @@ def main() -> None:
         results["bus"] = bench_bus(min(args.repeats, 300))
     if args.only in ("all", "lock"):
         results["locks"] = bench_locks(args.lock_seconds, args.lock_time_scale)
+        results["lock_scaling_demo_chip"] = bench_lock_scaling()
     if args.only in ("all", "hardening"):
         results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
     text = json.dumps(results, indent=2)

@@ -17,6 +17,7 @@ from pathlib import Path
 import pytest
 
 from meshsim import inprocess
+from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.errors import BusyRefused, NotArmedRefused, UnknownTargetRefused
@@ -216,6 +217,39 @@ def test_bad_lock_requests_are_refused_and_change_nothing(tmp_path: Path) -> Non
             with pytest.raises(UnknownTargetRefused, match="no lock named"):
                 await engine.stop("zz")
             assert math.isfinite(engine.table()["a"]["value"])
+            await engine.close()
+
+    try:
+        asyncio.run(scenario())
+    finally:
+        inprocess.remove(rack)
+
+
+def test_a_lock_whose_light_goes_dark_waits_and_relocks(tmp_path: Path) -> None:
+    """While its monitor reads only its dark level the lock reports lost and holds its centre still (no
+    chasing of noise); when the light is back it locks again."""
+    config, rack = _bench(tmp_path)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:  # type: ignore[arg-type]
+            await ctl.arm()
+            await ctl.set({"s0.kappa": 0.5, "k0.kappa": 0.5})
+            engine = LockEngine(ctl)
+            await engine.start(LockSpec("dark", "p0", "m00", parse_hold("max")))
+            await asyncio.sleep(0.8)
+            lock = engine.locks["dark"]
+            assert lock.state == "locked"
+            sim = inprocess.get(rack)
+            sim.inject(Fault("dead_monitor", "m00"))
+            await asyncio.sleep(0.3)
+            assert lock.state == "lost"
+            held = lock.centre_volts
+            await asyncio.sleep(0.2)
+            assert lock.centre_volts == held
+            with sim.lock:  # the fault is repaired (m00 is input 0 of b0)
+                sim.board("b0").faults.dead_inputs.discard(0)
+            await asyncio.sleep(0.8)
+            assert lock.state == "locked"
             await engine.close()
 
     try:

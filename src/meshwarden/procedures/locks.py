@@ -73,6 +73,8 @@ VALUE_PER_FRINGE_RAD = {"phase": 1.0, "coupler": 0.25}  # a coupler's kappa move
 INTEGRATION_S = 1e-4  # per monitor read
 PUBLISH_INTERVAL_S = 0.2  # a lock's telemetry at most this often (and at every change of state)
 KEEP_STOPPED = 200
+# a fringe amplitude outside these shares of the locked one: the light is gone or jumped, the lock waits
+FADED, JUMPED = 0.2, 3.0
 NAME = re.compile(r"^[A-Za-z0-9_.:-]{1,64}$")
 TWO_PI = 2.0 * math.pi
 
@@ -121,6 +123,7 @@ class Lock:
     wraps_done: int = 0
     reason: str | None = None
     errors: deque[float] = field(default_factory=lambda: deque(maxlen=64))
+    fringe: float = 0.0  # the demodulated fringe amplitude hypot(slope, curvature) while locked (smoothed)
     ended: asyncio.Event = field(default_factory=asyncio.Event)
     published_at: float = -math.inf
 
@@ -170,6 +173,7 @@ class LockEngine:
         self.samples = 0
         self.sample_period_s = 0.0
         self._task: asyncio.Task[None] | None = None
+        self._starting: set[str] = set()  # names and actuators of starts still waiting for their claim
         self._background: set[asyncio.Task[Any]] = set()
         self.log = get_logger(component="locks")
 
@@ -186,8 +190,10 @@ class LockEngine:
         if not isinstance(spec.name, str) or not NAME.match(spec.name):
             raise ProcedureInputError(f"lock name must be 1-64 letters, digits or _.:-, got {spec.name!r}")
         running = self.locks.get(spec.name)
-        if running is not None and not running.ended.is_set():
+        if (running is not None and not running.ended.is_set()) or spec.name in self._starting:
             raise LockRefused(f"lock '{spec.name}' is running; stop it first", lock=spec.name)
+        if spec.actuator in self._starting:
+            raise LockRefused(f"{spec.actuator} is being taken by another lock", actuator=spec.actuator)
         if spec.actuator not in self.controller.actuators:
             raise UnknownTargetRefused(f"unknown actuator '{spec.actuator}'", target=spec.actuator)
         monitors = {m.id for m in self.controller.config.chip.monitors}
@@ -224,6 +230,14 @@ class LockEngine:
     async def start(self, spec: LockSpec, client: str = "local") -> dict[str, Any]:
         """Check ``spec``, hold its actuator and add it to the running locks (refused whole, or started)."""
         kind = self._check(spec)
+        reserved = {spec.name, spec.actuator}
+        self._starting |= reserved
+        try:
+            return await self._start(spec, kind, client)
+        finally:
+            self._starting -= reserved
+
+    async def _start(self, spec: LockSpec, kind: str, client: str) -> dict[str, Any]:
         state = self.controller.actuators[spec.actuator]
         amap = state.map
         low, high = _usable_band(amap, kind)
@@ -370,6 +384,16 @@ class LockEngine:
             self.log.warning("lock window unusable", lock=spec.name, error=exc.message)
             return
         lock.window_s = window_s
+        amplitude = math.hypot(result.slope[0], result.curvature[0])
+        if lock.fringe > 0.0 and not FADED * lock.fringe <= amplitude <= JUMPED * lock.fringe:
+            # the light is gone (or the monitor blind), or it changed within the window (a step is no
+            # fringe): hold still rather than chase it
+            lock.error = error
+            lock.errors.clear()  # locked again only after LOCK_WINDOWS good windows from here
+            self._set_state(lock, "lost")
+            return
+        if lock.state == "locked":
+            lock.fringe = amplitude if lock.fringe == 0.0 else 0.9 * lock.fringe + 0.1 * amplitude
         if spec.integral_gain is not None:
             lock.gain = spec.integral_gain
         else:
