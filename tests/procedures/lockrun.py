@@ -42,6 +42,7 @@ class LockFigures:
     hold: str
     state: str
     centre_rms_rad: float = math.nan
+    centre_rms_with_kick_rad: float = math.nan  # the same, the kick's recovery included
     centre_max_rad: float = math.nan
     held_kind_ok: bool = True
     extinction_db: float = math.nan
@@ -200,6 +201,8 @@ def _figures(
     error = _extremum_distance(phase)
     if hold.extremum:
         out.centre_rms_rad = float(np.sqrt(np.mean(error[centre] ** 2)))
+        everything = (t > settle_s) & (n == 0)
+        out.centre_rms_with_kick_rad = float(np.sqrt(np.mean(error[everything] ** 2)))
         out.centre_max_rad = float(np.max(np.abs(error[centre])))
         share = pa[centre] / (pa[centre] + pb[centre])
         out.held_kind_ok = bool(np.all(share > 0.5)) if hold.kind == "max" else bool(np.all(share < 0.5))

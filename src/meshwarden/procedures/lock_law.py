@@ -22,8 +22,9 @@ If the calibration's phase slope is r times the true one, the fringe in the lock
 
 Fraction holds. The window's mean of ``x = P_a / (P_a + P_b)`` less its dither bias
 ``a^2 c_x / 4`` is the held quantity; the error is that less the target, and its slope is the
-dither's measured slope of ``x`` (kept from collapsing at an extremum of ``x`` by a floor of a
-fifth of the fringe amplitude ``hypot(s_x, c_x)``).
+dither's measured slope of ``x`` (smoothed over windows by the runner; kept from collapsing near an
+extremum of ``x`` by a floor of 0.05 per value unit). The 2f estimate of ``x`` is too noisy on the
+slope (``8 / a^2`` times the noise) to normalise by; it only corrects the mean's small bias.
 
 Loop. One correction per window, ``dx = -(K e) / e'`` (:func:`pi_step`, integral form): a
 standard first-order discrete loop, error ``(1 - K)^n``, stable for ``0 < K < 2``. ``K`` follows
@@ -51,6 +52,9 @@ LOST_ERROR = {"extremum": 1.0, "fraction": 0.1}  # |error| above this once locke
 LOCK_WINDOWS = 3
 RESIDUAL_WINDOWS = 10  # the residual is the rms error over this many windows
 MIN_WINDOW = 8
+# x per value unit: an MZI's x = (1 + cos phi) / 2 has slope 0.5 sin(phi), so this floor only acts within
+# about 0.1 rad of x's extremum, where the slope says little
+MIN_FRACTION_SLOPE = 0.05
 
 
 @dataclass(frozen=True)
@@ -103,14 +107,13 @@ def fraction_samples(power_a: Sequence[float], power_b: Sequence[float]) -> np.n
     return np.asarray(np.where(total > 0.0, a / safe, 0.5))
 
 
-def fraction_error(mean: float, slope: float, curvature: float, target: float, amplitude: float) -> tuple[float, float]:
-    """(error, error slope) of a fraction hold from the window's demodulated x (see module doc)."""
+def fraction_error(
+    mean: float, slope: float, curvature: float, target: float, amplitude: float, min_slope: float = MIN_FRACTION_SLOPE
+) -> tuple[float, float]:
+    """(error, error slope) of a fraction hold from the window's demodulated x (see module doc); the
+    slope is kept at least ``min_slope`` in size, with its sign."""
     held = mean - amplitude**2 * curvature / 4.0  # y = f(x0 + a sin wt): <y> = f(x0) + a^2 f''/4 (Taylor)
-    floor = 0.2 * math.hypot(slope, curvature)
-    if abs(slope) >= floor and slope != 0.0:
-        used = slope
-    else:
-        used = math.copysign(max(floor, 1e-12), slope if slope != 0.0 else 1.0)
+    used = slope if abs(slope) >= min_slope else math.copysign(min_slope, slope if slope != 0.0 else 1.0)
     return held - target, used
 
 

@@ -123,7 +123,8 @@ class Lock:
     wraps_done: int = 0
     reason: str | None = None
     errors: deque[float] = field(default_factory=lambda: deque(maxlen=64))
-    fringe: float = 0.0  # the demodulated fringe amplitude hypot(slope, curvature) while locked (smoothed)
+    slope: float = 0.0  # a fraction lock's measured slope of x, smoothed over windows
+    fringe: float = 0.0  # while locked, smoothed: hypot(slope, curvature) (max, min); P_a + P_b (fraction)
     ended: asyncio.Event = field(default_factory=asyncio.Event)
     published_at: float = -math.inf
 
@@ -377,14 +378,19 @@ class LockEngine:
                 assert spec.against is not None and spec.hold.fraction is not None
                 x = fraction_samples(primary, [r[spec.against]["watts"] for r in readings])
                 result = demodulate(x, [lock.cycles], a)
+                lock.slope = result.slope[0] if lock.slope == 0.0 else 0.7 * lock.slope + 0.3 * result.slope[0]
                 error, error_slope = fraction_error(
-                    result.mean, result.slope[0], result.curvature[0], spec.hold.fraction, lock.dither
+                    result.mean, lock.slope, result.curvature[0], spec.hold.fraction, lock.dither
                 )
         except ProcedureInputError as exc:
             self.log.warning("lock window unusable", lock=spec.name, error=exc.message)
             return
         lock.window_s = window_s
-        amplitude = math.hypot(result.slope[0], result.curvature[0])
+        if spec.hold.extremum:  # the fringe's amplitude: large at an extremum, steady along it
+            amplitude = math.hypot(result.slope[0], result.curvature[0])
+        else:  # x's curvature is small on the slope and its estimate noisy: the light of both taps
+            assert spec.against is not None
+            amplitude = float(np.mean(primary) + np.mean([r[spec.against]["watts"] for r in readings]))
         if lock.fringe > 0.0 and not FADED * lock.fringe <= amplitude <= JUMPED * lock.fringe:
             # the light is gone (or the monitor blind), or it changed within the window (a step is no
             # fringe): hold still rather than chase it
