@@ -37,11 +37,12 @@ from __future__ import annotations
 import math
 from collections.abc import Sequence
 from dataclasses import dataclass
+from typing import Any
 
 import numpy as np
 
-from meshwarden.procedures.dither import dither_cycles
-from meshwarden.procedures.inputs import ProcedureInputError
+from meshwarden.procedures.dither import Demodulated, dither_cycles
+from meshwarden.procedures.inputs import ProcedureInputError, float_vector
 
 NOMINAL_GAIN = 0.5
 MAX_GAIN = 1.0
@@ -96,6 +97,34 @@ def extremum_error(slope: float, curvature: float, kind: str) -> float:
     if kind == "min":
         return math.atan2(slope, curvature)
     raise ProcedureInputError(f"extremum_error holds 'max' or 'min', not {kind!r}")
+
+
+def demodulate_detrended(samples: Any, cycles: Any, amplitudes: Any) -> Demodulated:
+    """Like :func:`~meshwarden.procedures.dither.demodulate`, with a straight line fitted jointly.
+
+    Over a window the drift is close to a ramp, and a ramp is not orthogonal to the dither's bins
+    (``sum n sin(2 pi k n / N) = -N / (2 tan(pi k / N))``, ``sum n cos(4 pi k n / N) = -N / 2``): away
+    from an extremum, where the monitor moves with the drift at first order, it swamps the small
+    2f term (``a^2 f'' / 4``). Least squares on ``[1, n, sin(k), cos(2k) per lock]`` removes it;
+    without a ramp the estimates equal the plain projections (the regressors are then orthogonal
+    but for ``n``, whose coefficient is zero)."""
+    y = float_vector("samples", samples, min_length=8)
+    k = float_vector("cycles", cycles)
+    a = float_vector("amplitudes", amplitudes)
+    if k.shape != a.shape or np.any(a <= 0) or np.any(k < 1) or np.any(2 * k >= y.size / 2):
+        raise ProcedureInputError("cycles and amplitudes must match, amplitudes > 0, 1 <= k and 2 k below N/2")
+    n = np.arange(y.size, dtype=float)
+    phase = 2.0 * math.pi * k[:, None] * n[None, :] / y.size
+    design = np.vstack([np.ones_like(n), n - n.mean(), np.sin(phase), np.cos(2.0 * phase)]).T
+    coefficients, *_ = np.linalg.lstsq(design, y, rcond=None)
+    locks = k.size
+    first = coefficients[2 : 2 + locks]  # y ~ ... + (a f') sin(wt) + (-a^2 f'' / 4) cos(2wt)
+    second = coefficients[2 + locks :]
+    return Demodulated(
+        slope=tuple(float(v) for v in first / a),
+        curvature=tuple(float(v) for v in -4.0 * second / a**2),
+        mean=float(np.mean(y)),
+    )
 
 
 def fraction_samples(power_a: Sequence[float], power_b: Sequence[float]) -> np.ndarray:

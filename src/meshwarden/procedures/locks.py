@@ -51,13 +51,14 @@ from meshwarden.errors import (
     UnknownTargetRefused,
 )
 from meshwarden.logsetup import get_logger
-from meshwarden.procedures.dither import demodulate, pi_step
+from meshwarden.procedures.dither import pi_step
 from meshwarden.procedures.inputs import ProcedureInputError
 from meshwarden.procedures.lock_law import (
     MAX_GAIN,
     MAX_STEP_RAD,
     Hold,
     bandwidth_of,
+    demodulate_detrended,
     extremum_error,
     fraction_error,
     fraction_samples,
@@ -368,7 +369,7 @@ class LockEngine:
         primary = [r[spec.monitor]["watts"] for r in readings]
         try:
             if spec.hold.extremum:
-                result = demodulate(primary, [lock.cycles], a)
+                result = demodulate_detrended(primary, [lock.cycles], a)
                 error = (
                     extremum_error(result.slope[0], result.curvature[0], spec.hold.kind)
                     * VALUE_PER_FRINGE_RAD[lock.kind]
@@ -377,7 +378,7 @@ class LockEngine:
             else:
                 assert spec.against is not None and spec.hold.fraction is not None
                 x = fraction_samples(primary, [r[spec.against]["watts"] for r in readings])
-                result = demodulate(x, [lock.cycles], a)
+                result = demodulate_detrended(x, [lock.cycles], a)
                 lock.slope = result.slope[0] if lock.slope == 0.0 else 0.7 * lock.slope + 0.3 * result.slope[0]
                 error, error_slope = fraction_error(
                     result.mean, lock.slope, result.curvature[0], spec.hold.fraction, lock.dither
