@@ -50,6 +50,7 @@ class LockFigures:
     fraction_max: float = math.nan
     dither_penalty: float = math.nan
     recovery_windows: float = math.nan
+    wraps: int = 0
 
 
 @dataclass
@@ -152,6 +153,7 @@ async def _run(
             await asyncio.sleep(0.05)
             checker.feed([log.popleft() for _ in range(len(log))])
         states = {name: lock.state for name, lock in engine.locks.items()}
+        wraps = {name: lock.wraps_done for name, lock in engine.locks.items()}
         window_s = float(np.mean([lock.window_s for lock in engine.locks.values()]))
         await engine.close()
     check = checker.feed([log.popleft() for _ in range(len(log))])
@@ -170,6 +172,8 @@ async def _run(
         )
         for i, text in enumerate(holds)
     ]
+    for i, one in enumerate(figures):
+        one.wraps = wraps[f"L{i}"]
     return RunFigures(
         figures, engine.sample_period_s, window_s, engine.windows, check.writes, [str(v) for v in check.violations]
     )

@@ -254,8 +254,11 @@ class LockEngine:
         )
         try:
             volts = float(self.controller.describe(spec.actuator)["volts"])
-            centre = min(max(volts, low), high)
-            if centre != volts:  # bring it into the band first: a guarded, journaled ramp
+            centre = volts
+            if not low <= volts <= high:  # into the band's middle first (room both ways): a guarded, journaled ramp
+                middle = _volts_at(amap, 0.5 * (amap.value_at(low) + amap.value_at(high)), low, high)
+                centre = middle if middle is not None else 0.5 * (low + high)
+            if centre != volts:
                 await claim.move({spec.actuator: centre}, volts=True, journal=True)
         except BaseException:
             await stack.aclose()
