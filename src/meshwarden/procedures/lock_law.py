@@ -16,6 +16,11 @@ from anywhere but the opposite one. Normalising the gradient by the measured cur
 idea of Newton-based extremum seeking (Ghaffari, Krstic & Nesic, Automatica 48:1759, 2012; from
 memory); the arctangent keeps it bounded where the curvature passes zero.
 
+Away from the extremum the monitor follows the drift at first order and the small 2f term drowns
+in it within a window; once locked, a lock therefore passes the fringe amplitude it learnt at the
+extremum and only the curvature's sign is read (:func:`extremum_error`). The window's estimates
+come from a least-squares fit with a straight line (:func:`demodulate_detrended`).
+
 If the calibration's phase slope is r times the true one, the fringe in the lock's value units is
 ``cos(r x)``: ``s = -rB sin(r dx)``, ``c = -r^2 B cos(r dx)`` and atan2 gives ``dx`` near the lock
 (first order), whatever r: the loop gain near the lock does not depend on the calibration.
@@ -88,10 +93,18 @@ def parse_hold(text: str) -> Hold:
     raise ProcedureInputError(f"hold must be 'max', 'min' or 'fraction=X', got {text!r}")
 
 
-def extremum_error(slope: float, curvature: float, kind: str) -> float:
-    """Fringe phase from the held extremum, in (-pi, pi]: atan2(-s, -c) for max, atan2(s, c) for min."""
-    if not (math.isfinite(slope) and math.isfinite(curvature)):
-        raise ProcedureInputError("slope and curvature must be finite")
+def extremum_error(slope: float, curvature: float, kind: str, fringe: float = 0.0) -> float:
+    """Fringe phase from the held extremum, in (-pi, pi]: atan2(-s, -c) for max, atan2(s, c) for min.
+
+    ``fringe`` > 0 (the amplitude hypot(s, c) learnt at the lock, where the curvature is large and
+    its estimate good): the curvature's size is taken as sqrt(fringe^2 - s^2) and only its sign is
+    read from the window. Away from the extremum the monitor follows the drift at first order, and
+    within a window that noise swamps the small 2f term; the 1f term is a times larger and stays
+    good, so the phase then comes from s / fringe and the side from the sign of c."""
+    if not (math.isfinite(slope) and math.isfinite(curvature) and math.isfinite(fringe)):
+        raise ProcedureInputError("slope, curvature and fringe must be finite")
+    if fringe > 0.0:
+        curvature = math.copysign(math.sqrt(max(fringe * fringe - slope * slope, 0.0)), curvature)
     if kind == "max":
         return math.atan2(-slope, -curvature)
     if kind == "min":

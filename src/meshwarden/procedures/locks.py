@@ -74,8 +74,9 @@ VALUE_PER_FRINGE_RAD = {"phase": 1.0, "coupler": 0.25}  # a coupler's kappa move
 INTEGRATION_S = 1e-4  # per monitor read
 PUBLISH_INTERVAL_S = 0.2  # a lock's telemetry at most this often (and at every change of state)
 KEEP_STOPPED = 200
-# a fringe amplitude outside these shares of the locked one: the light is gone or jumped, the lock waits
-FADED, JUMPED = 0.2, 3.0
+# a fringe amplitude outside these shares of the locked one: the light is gone or jumped within the
+# window, and the lock waits (the upper bound is wide: far from the extremum the 2f estimate is noisy)
+FADED, JUMPED = 0.2, 10.0
 NAME = re.compile(r"^[A-Za-z0-9_.:-]{1,64}$")
 TWO_PI = 2.0 * math.pi
 
@@ -374,7 +375,7 @@ class LockEngine:
             if spec.hold.extremum:
                 result = demodulate_detrended(primary, [lock.cycles], a)
                 error = (
-                    extremum_error(result.slope[0], result.curvature[0], spec.hold.kind)
+                    extremum_error(result.slope[0], result.curvature[0], spec.hold.kind, lock.fringe)
                     * VALUE_PER_FRINGE_RAD[lock.kind]
                 )
                 error_slope = 1.0
