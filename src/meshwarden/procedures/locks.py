@@ -53,6 +53,7 @@ from meshwarden.errors import (
 from meshwarden.logsetup import get_logger
 from meshwarden.procedures.dither import pi_step
 from meshwarden.procedures.inputs import ProcedureInputError
+from meshwarden.procedures.lock_band import calibrated_slope, usable_band, volts_at
 from meshwarden.procedures.lock_law import (
     MAX_GAIN,
     MAX_STEP_RAD,
@@ -243,8 +244,12 @@ class LockEngine:
     async def _start(self, spec: LockSpec, kind: str, client: str) -> dict[str, Any]:
         state = self.controller.actuators[spec.actuator]
         amap = state.map
-        low, high = _usable_band(amap, kind)
-        margin = 3.0 * (DEFAULT_DITHER[kind] if spec.dither is None else spec.dither) / max(_slope(amap, high), 1e-9)
+        low, high = usable_band(amap, kind)
+        margin = (
+            3.0
+            * (DEFAULT_DITHER[kind] if spec.dither is None else spec.dither)
+            / max(calibrated_slope(amap, high), 1e-9)
+        )
         high = min(high, amap.top_volts - margin)
         if not high > low:
             raise LockRefused(f"{spec.actuator} has no usable range to dither in (its table or limit is too short)")
@@ -257,7 +262,7 @@ class LockEngine:
             volts = float(self.controller.describe(spec.actuator)["volts"])
             centre = volts
             if not low <= volts <= high:  # into the band's middle first (room both ways): a guarded, journaled ramp
-                middle = _volts_at(amap, 0.5 * (amap.value_at(low) + amap.value_at(high)), low, high)
+                middle = volts_at(amap, 0.5 * (amap.value_at(low) + amap.value_at(high)), low, high)
                 centre = middle if middle is not None else 0.5 * (low + high)
             if centre != volts:
                 await claim.move({spec.actuator: centre}, volts=True, journal=True)
@@ -329,7 +334,7 @@ class LockEngine:
         window, cycles = plan_dithers(self._monitor_sets(locks))
         for lock, k in zip(locks, cycles, strict=True):
             lock.cycles = k
-            slope = _slope(self.controller.actuators[lock.spec.actuator].map, lock.centre_volts)
+            slope = calibrated_slope(self.controller.actuators[lock.spec.actuator].map, lock.centre_volts)
             step_limit = self.controller.actuators[lock.spec.actuator].limit.step_limit_volts
             lock.amplitude_volts = min(lock.dither / max(slope, 1e-9), step_limit / 2.0)
         phase = 2.0 * math.pi * np.arange(window) / window
@@ -414,7 +419,7 @@ class LockEngine:
                 lock.gain = MAX_GAIN  # more locks made the window longer than the asked bandwidth allows
         max_step = MAX_STEP_RAD * VALUE_PER_FRINGE_RAD[lock.kind]
         step_value = pi_step(error, error_slope, integral_gain=lock.gain, max_step=max_step)
-        slope = _slope(amap, lock.centre_volts)
+        slope = calibrated_slope(amap, lock.centre_volts)
         centre = lock.centre_volts + step_value / max(slope, 1e-9)
         lock.error = error
         lock.errors.append(error)
@@ -435,7 +440,7 @@ class LockEngine:
         if lock.wraps:
             value = amap.value_at(edge)
             target_value = value - TWO_PI if edge == lock.high_volts else value + TWO_PI
-            target = _volts_at(amap, target_value, lock.low_volts, lock.high_volts)
+            target = volts_at(amap, target_value, lock.low_volts, lock.high_volts)
             if target is not None:
                 self._journal(lock, "wrap", from_volts=round(edge, 4), to_volts=round(target, 4))
                 try:
@@ -508,39 +513,3 @@ def _why(exc: BaseException, lock: Lock) -> str:
     if isinstance(exc, MeshwardenError):
         return f"{exc.code}: {exc.message}"
     return f"error: {exc!r}"
-
-
-def _slope(amap: Any, volts: float) -> float:
-    """The calibrated value per volt at ``volts`` (central difference within the table)."""
-    top = float(amap.table.volts[-1])
-    h = 0.01
-    lo, hi = max(volts - h, 0.0), min(volts + h, top)
-    if hi <= lo:
-        return 0.0
-    return float((amap.value_at(hi) - amap.value_at(lo)) / (hi - lo))
-
-
-def _usable_band(amap: Any, kind: str) -> tuple[float, float]:
-    """Volts between which the table's slope is at least a quarter of its steepest (phase), or the
-    whole table within the limit (coupler)."""
-    top = float(amap.top_volts)
-    if kind != "phase":
-        return 0.02 * top, top
-    grid = np.linspace(0.0, top, 201)
-    slopes = np.array([_slope(amap, float(v)) for v in grid])
-    usable = np.nonzero(slopes >= 0.25 * slopes.max())[0]
-    return float(grid[usable[0]]), top
-
-
-def _volts_at(amap: Any, value: float, low: float, high: float) -> float | None:
-    """Volts within [low, high] where the (rising) table reaches ``value``, by bisection; None if outside."""
-    if not amap.value_at(low) <= value <= amap.value_at(high):
-        return None
-    a, b = low, high
-    for _ in range(60):
-        mid = 0.5 * (a + b)
-        if amap.value_at(mid) < value:
-            a = mid
-        else:
-            b = mid
-    return 0.5 * (a + b)
