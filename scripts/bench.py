@@ -673,16 +673,100 @@ def bench_jobs(counts: tuple[int, int] = (1_000, 10_000)) -> dict[str, float]:
     }
 
 
+def bench_locks(seconds: float, time_scale: float = 1.0) -> dict[str, object]:
+    """Locks on the drifting eight-MZI bench (tests/procedures/lockbench.py): the loop rate achieved with
+    one lock and with eight (sample period, window, corrections per second), and the residuals of eight
+    locks held for ``seconds`` of simulated time with a 0.5 rad temperature step midway (figures as in
+    tests/procedures/lockrun.py). At ``time_scale`` 1 the loop runs at its real rate; a larger scale
+    makes drift X times faster against the loop (a harder test, not a faster one of the same)."""
+    import tempfile
+
+    _repo_on_path()
+    from tests.procedures.lockrun import run_locks
+
+    holds = ["max", "min", "fraction=0.3", "max", "min", "fraction=0.7", "max", "max"]
+    out: dict[str, object] = {}
+    with tempfile.TemporaryDirectory() as folder:
+        start = time.monotonic()
+        one = run_locks(Path(folder) / "one", ["max"], 4.0)
+        out["one_lock"] = {k: v for k, v in one.as_dict().items() if k != "locks"}
+        eight = run_locks(
+            Path(folder) / "eight", holds, seconds, kick_at_s=seconds / 2, time_scale=time_scale, recover_s=1.0
+        )
+        out["eight_locks"] = eight.as_dict()
+        out["simulated_s"] = seconds
+        out["time_scale"] = time_scale
+        out["wall_s"] = time.monotonic() - start
+    return out
+
+
+def bench_lock_scaling(counts: tuple[int, ...] = (1, 8, 30, 60), seconds: float = 3.0) -> dict[str, object]:
+    """The loop rate with every phase shifter of the demo chip locked (two boards, 48 monitors): the
+    sample period (one guarded move per lock, all at once, and one read of every monitor) and the
+    window for 1 to 60 locks, each on monitor m{i mod 48} (so pairs share one and get distinct cycles).
+    Only the rate is measured here: with one lit input most taps see little light."""
+    import asyncio
+    import dataclasses
+    import tempfile
+
+    import meshsim.urlhandler.protocol_meshsim  # noqa: F401
+    from meshsim import inprocess
+    from meshwarden.api import open_controller
+    from meshwarden.config import load_config
+    from meshwarden.procedures.lock_law import parse_hold
+    from meshwarden.procedures.locks import LockEngine, LockSpec
+
+    out: dict[str, object] = {}
+    for count in counts:
+        with tempfile.TemporaryDirectory() as folder:
+            config = load_config(REPO / "config" / "demo.yaml")
+            journal = dataclasses.replace(config.journal, path=Path(folder) / "journal.sqlite")
+            config = dataclasses.replace(config, journal=journal)
+
+            async def run(config: Any = config, count: int = count) -> dict[str, float]:
+                async with open_controller(config) as ctl:
+                    await ctl.arm()
+                    engine = LockEngine(ctl)
+                    for i in range(count):
+                        spec = LockSpec(f"L{i}", f"p{i:02d}", f"m{i % 48:02d}", parse_hold("max"))
+                        await engine.start(spec)
+                    windows = engine.windows
+                    await asyncio.sleep(seconds)
+                    figures = {
+                        "sample_period_ms": engine.sample_period_s * 1e3,
+                        "window_samples": round(next(iter(engine.locks.values())).window_s / engine.sample_period_s),
+                        "window_ms": next(iter(engine.locks.values())).window_s * 1e3,
+                        "windows_in_run": engine.windows - windows,
+                    }
+                    await engine.close()
+                    await ctl.disarm()
+                    return figures
+
+            try:
+                out[f"{count}_locks"] = asyncio.run(run())
+            finally:
+                inprocess.remove("demo")
+    return out
+
+
 def main() -> None:
     parser = argparse.ArgumentParser(description=__doc__)
     parser.add_argument("--out", type=Path, required=True)
     parser.add_argument("--repeats", type=int, default=500)
     parser.add_argument(
         "--only",
-        choices=("all", "simulator", "bus", "interlock", "hardening"),
+        choices=("all", "simulator", "bus", "interlock", "hardening", "lock"),
         default="all",
         help="one section of the figures (default: all)",
     )
+    parser.add_argument(
+        "--lock-seconds", type=float, default=20.0, help="simulated seconds the eight locks hold (600: ten minutes)"
+    )
+    parser.add_argument("--lock-time-scale", type=float, default=1.0, help="simulated time per wall second")
+    parser.add_argument(
+        "--lock-seconds", type=float, default=20.0, help="simulated seconds the eight locks hold (600: ten minutes)"
+    )
+    parser.add_argument("--lock-time-scale", type=float, default=1.0, help="simulated time per wall second")
     parser.add_argument("--hostile", type=int, default=100_000, help="hostile messages to send (default 100,000)")
     args = parser.parse_args()
     results: dict[str, object] = {
@@ -699,6 +783,9 @@ def main() -> None:
         results["bus"] = bench_bus(min(args.repeats, 300))
     if args.only in ("all", "interlock"):
         results["interlock"] = bench_interlock(min(args.repeats, 10))
+    if args.only in ("all", "lock"):
+        results["locks"] = bench_locks(args.lock_seconds, args.lock_time_scale)
+        results["lock_scaling_demo_chip"] = bench_lock_scaling()
     if args.only in ("all", "hardening"):
         results["hardening"] = {**bench_hostile_messages(args.hostile), **bench_reply_flood(), **bench_jobs()}
     text = json.dumps(results, indent=2)

@@ -209,6 +209,9 @@ def build_parser() -> argparse.ArgumentParser:
     from meshwarden import cli_scan
 
     cli_scan.add_parsers(sub)
+    from meshwarden import cli_lock
+
+    cli_lock.add_parsers(sub)
     return parser
 
 

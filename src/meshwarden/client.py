@@ -37,7 +37,7 @@ from meshwarden import errors
 from meshwarden.errors import BusError, MeshwardenError, UnreachableError
 from meshwarden.service.keyfiles import check_secret_key_file
 
-LONG_OPS = {"set", "disarm", "restore", "calibrate", "scan"}
+LONG_OPS = {"set", "disarm", "restore", "calibrate", "scan", "lock_start", "lock_stop"}
 DEFAULT_MAX_MESSAGE_BYTES = 1 << 20  # the daemon's default service.max_message_bytes
 
 
@@ -341,6 +341,38 @@ class Client:
         """One job's state, progress and, once finished, its result."""
         result: dict[str, Any] = self.request("job", job=job)
         return result
+
+    # ------------------------------------------------------------------ locks
+
+    def lock_start(
+        self,
+        name: str,
+        actuator: str,
+        monitor: str,
+        hold: str,
+        against: str | None = None,
+        dither: float | None = None,
+        bandwidth_hz: float | None = None,
+    ) -> dict[str, Any]:
+        """Start a lock holding ``hold`` ("max", "min" or "fraction=X" with ``against``) at ``monitor``
+        by moving ``actuator``; returns ``{name: description}``."""
+        args: dict[str, Any] = {"name": name, "actuator": actuator, "monitor": monitor, "hold": hold}
+        for key, value in (("against", against), ("dither", dither), ("bandwidth_hz", bandwidth_hz)):
+            if value is not None:
+                args[key] = value
+        result: dict[str, Any] = self.request("lock_start", **args)
+        return result
+
+    def locks(self) -> dict[str, dict[str, Any]]:
+        """Every lock, running or stopped: ``{name: {"state", "actuator", "monitor", "hold", "residual",
+        "value", ...}}``."""
+        result: dict[str, dict[str, Any]] = self.request("locks")
+        return result
+
+    def lock_stop(self, name: str | None = None) -> list[str]:
+        """Stop the lock ``name``, or every running lock; returns the names stopped."""
+        result = self.request("lock_stop", **({} if name is None else {"name": name}))
+        return list(result["stopped"])
 
 
 def _next_port(endpoint: str) -> str:

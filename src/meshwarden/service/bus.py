@@ -151,6 +151,7 @@ class Bus:
         return len(self.roles.allowed)
 
     async def close(self) -> None:
+        await self.dispatcher.locks.close()  # every lock stops (and lets go of its claim) first
         self.telemetry.close()
         if self.dispatcher._on_event in self.controller.listeners:
             self.controller.listeners.remove(self.dispatcher._on_event)

@@ -20,6 +20,8 @@ from typing import Any
 from meshwarden import __version__
 from meshwarden.controller import Controller
 from meshwarden.errors import BusError, ForbiddenRefused, MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.procedures.lock_law import parse_hold
+from meshwarden.procedures.locks import LockEngine, LockSpec
 from meshwarden.service.identity import Sender
 from meshwarden.service.jobs import Jobs
 from meshwarden.service.leases import DEFAULT_TTL_S, Leases
@@ -36,6 +38,7 @@ class Dispatcher:
         self.leases = Leases(controller.claims)
         self.jobs = Jobs(telemetry.publish)
         self.scans = ScanService(controller, self.jobs, telemetry.publish)
+        self.locks = LockEngine(controller, telemetry.publish)
         self._background: set[asyncio.Task[Any]] = set()
         self.run_token: str | None = None  # set by `serve --run-token`: lets a launcher know its own daemon
         controller.listeners.append(self._on_event)
@@ -331,3 +334,24 @@ class Dispatcher:
     async def _op_scans(self, request: Request, who: str) -> Any:
         limit = int(request.args.get("limit", 100))  # 1..1000, checked by the schema
         return await asyncio.to_thread(self.scans.store.history, limit)
+
+    # ------------------------------------------------------------------ locks
+
+    async def _op_lock_start(self, request: Request, who: str) -> Any:
+        args = request.args
+        spec = LockSpec(
+            name=args["name"],
+            actuator=args["actuator"],
+            monitor=args["monitor"],
+            hold=parse_hold(args["hold"]),
+            against=args.get("against"),
+            dither=float(args["dither"]) if "dither" in args else None,
+            bandwidth_hz=float(args["bandwidth_hz"]) if "bandwidth_hz" in args else None,
+        )
+        return {spec.name: await self.locks.start(spec, client=who)}
+
+    async def _op_locks(self, request: Request, who: str) -> Any:
+        return self.locks.table()
+
+    async def _op_lock_stop(self, request: Request, who: str) -> Any:
+        return {"stopped": await self.locks.stop(request.args.get("name"))}

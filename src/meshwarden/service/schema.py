@@ -63,6 +63,21 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
     "calibration_activate": ("admin", {"version": ((str,), True)}),
     "scan": ("operator", {"targets": ((list,), False), "wait": ((bool,), False)}),
     "scans": ("observer", {"limit": ((int,), False)}),
+    # closed-loop locks (docs/procedures.md)
+    "lock_start": (
+        "operator",
+        {
+            "name": ((str,), True),
+            "actuator": ((str,), True),
+            "monitor": ((str,), True),
+            "hold": ((str,), True),
+            "against": ((str,), False),
+            "dither": ((int, float), False),
+            "bandwidth_hz": ((int, float), False),
+        },
+    ),
+    "locks": ("observer", {}),
+    "lock_stop": ("operator", {"name": ((str,), False)}),
 }
 # (op, argument) -> (lowest, highest, unit) allowed, both inclusive
 ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
@@ -73,6 +88,8 @@ ARG_RANGES: dict[tuple[str, str], tuple[float, float, str]] = {
     ("lease", "ttl_s"): (MIN_TTL_S, MAX_TTL_S, "s"),
     ("calibrate", "points"): (12, 64, "points per sweep"),
     ("scans", "limit"): (1, 1000, "scans"),
+    ("lock_start", "dither"): (1e-6, 1.0, "(rad or power coupling)"),
+    ("lock_start", "bandwidth_hz"): (1e-3, 1000.0, "Hz"),
 }
 MAX_ACQUISITION_S = 10.0  # monitors: average x integration_s; the boards' links are shared
 # A set value (volts, rad or power coupling) beyond this cannot mean anything on this hardware;
@@ -84,6 +101,7 @@ MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itsel
 ROLES = ("observer", "operator", "admin")
 READ_ONLY = {
     "status", "get", "snapshot", "monitors", "events", "jobs", "job", "calibrations", "calibration_show", "scans",
+    "locks",
 }
 
 
@@ -202,6 +220,10 @@ def parse_request(data: bytes) -> Request:
         if not all(isinstance(t, str) for t in args["targets"]):
             raise BusError("bad_request", "scan: 'targets' must be a list of ids")
         _check_names(op, "targets", args["targets"])
+    if op in ("lock_start", "lock_stop"):
+        _check_names(
+            op, "names", [v for k, v in args.items() if k in ("name", "actuator", "monitor", "against", "hold")]
+        )
     if op in ("cancel", "recover"):
         _check_names(op, "job" if op == "cancel" else "board", [args["job" if op == "cancel" else "board"]])
     return Request(raw["id"], raw["client"], op, args)

@@ -2,7 +2,8 @@
 
 Topics: ``state`` (arm/estop/board state changes), ``monitors`` (samples at the configured rate),
 ``event`` (faults, refusals, estop, resets), ``job`` (progress), ``heartbeat`` (once a second),
-``scan`` (each fault scan's summary, and scheduled scans skipped).
+``scan`` (each fault scan's summary, and scheduled scans skipped),
+``lock`` (each lock's state, error, residual and value: at every change of state, else at most 5 a second).
 A subscriber detects loss (PUB drops at its high-water mark) by a gap in ``seq``; a late joiner
 subscribes first, then asks for ``snapshot`` (which carries the current ``seq``) and discards
 updates older than it.
@@ -18,7 +19,7 @@ from typing import Any
 import zmq
 import zmq.asyncio
 
-TOPICS = ("state", "monitors", "event", "job", "heartbeat", "scan")
+TOPICS = ("state", "monitors", "event", "job", "heartbeat", "scan", "lock")
 
 
 class Telemetry:
