@@ -45,7 +45,10 @@ def _cmd_serve(args: argparse.Namespace) -> int:
         server.write_ports_file(args.ports_file)
         ports = ", ".join(f"{b}={u}" for b, u in server.ports().items())
         print(
-            f"meshsim: serving {len(server.links)} boards over {args.transport}: {ports}", file=sys.stderr, flush=True
+            f"meshsim: serving {len(server.links)} board{'s' if len(server.links) != 1 else ''} over "
+            f"{args.transport}: {ports}",
+            file=sys.stderr,
+            flush=True,
         )
         while not stop.wait(0.2):
             pass
