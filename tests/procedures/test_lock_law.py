@@ -50,17 +50,19 @@ def test_phase_detector_gives_the_distance_from_the_held_extremum(kind: str) -> 
 
 
 def test_detector_with_the_learnt_fringe_reads_the_phase_from_the_first_harmonic() -> None:
-    """With the fringe amplitude B known, a curvature estimate wrong by up to 5 B in size (but of the right
-    sign) still gives the exact phase: |c| is taken as sqrt(B^2 - s^2) (s = -B sin delta, c = -B cos delta,
-    the sinusoidal fringe of the module doc); without B the same noise spoils it."""
+    """With the fringe amplitude B known, the curvature estimate is not used at all (here: wrong in size and
+    sign): within pi/2 of the held extremum the reading is the phase exactly, beyond it pi - |delta| with the
+    right sign (s = -B sin delta, the sinusoidal fringe of the module doc); without B the bad curvature
+    spoils it."""
     rng = np.random.default_rng(7)
     b = 4.0
     for delta in np.linspace(-3.0, 3.0, 41):
         s, c = -b * math.sin(delta), -b * math.cos(delta)
-        noisy = c * rng.uniform(0.2, 5.0)  # size wrong, sign right
-        assert extremum_error(s, noisy, "max", fringe=b) == pytest.approx(delta, abs=1e-9)
-        assert extremum_error(-s, -noisy, "min", fringe=b) == pytest.approx(delta, abs=1e-9)
-    assert abs(extremum_error(-b * math.sin(1.2), -5 * b * math.cos(1.2), "max") - 1.2) > 0.5
+        noisy = c * rng.uniform(-5.0, 5.0)
+        expected = delta if abs(delta) <= math.pi / 2 else math.copysign(math.pi - abs(delta), delta)
+        assert extremum_error(s, noisy, "max", fringe=b) == pytest.approx(expected, abs=1e-9)
+        assert extremum_error(-s, -noisy, "min", fringe=b) == pytest.approx(expected, abs=1e-9)
+    assert abs(extremum_error(-b * math.sin(1.2), 5 * b * math.cos(1.2), "max") - 1.2) > 0.5
 
 
 def test_detector_gain_near_the_lock_does_not_depend_on_the_calibration_slope() -> None:

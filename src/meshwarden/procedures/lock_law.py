@@ -18,7 +18,7 @@ memory); the arctangent keeps it bounded where the curvature passes zero.
 
 Away from the extremum the monitor follows the drift at first order and the small 2f term drowns
 in it within a window; once locked, a lock therefore passes the fringe amplitude it learnt at the
-extremum and only the curvature's sign is read (:func:`extremum_error`). The window's estimates
+extremum and reads the phase from the 1f term alone (:func:`extremum_error`). The window's estimates
 come from a least-squares fit with a straight line (:func:`demodulate_detrended`).
 
 If the calibration's phase slope is r times the true one, the fringe in the lock's value units is
@@ -94,22 +94,22 @@ def parse_hold(text: str) -> Hold:
 
 
 def extremum_error(slope: float, curvature: float, kind: str, fringe: float = 0.0) -> float:
-    """Fringe phase from the held extremum, in (-pi, pi]: atan2(-s, -c) for max, atan2(s, c) for min.
+    """Fringe phase from the held extremum: atan2(-s, -c) for max, atan2(s, c) for min, in (-pi, pi].
 
     ``fringe`` > 0 (the amplitude hypot(s, c) learnt at the lock, where the curvature is large and
-    its estimate good): the curvature's size is taken as sqrt(fringe^2 - s^2) and only its sign is
-    read from the window. Away from the extremum the monitor follows the drift at first order, and
-    within a window that noise swamps the small 2f term; the 1f term is a times larger and stays
-    good, so the phase then comes from s / fringe and the side from the sign of c."""
+    its estimate good): asin(-s / fringe) for max (asin(s / fringe) for min), in [-pi/2, pi/2].
+    Away from the extremum the monitor follows the drift at first order, and within a window that
+    noise swamps the small 2f term, even its sign; the 1f term is a times larger and stays good.
+    Its sign is the sign of the phase over the whole fringe (s = -B sin delta), so the lock still
+    always moves towards the held extremum; beyond pi/2 it reads pi - |delta| and moves slower."""
     if not (math.isfinite(slope) and math.isfinite(curvature) and math.isfinite(fringe)):
         raise ProcedureInputError("slope, curvature and fringe must be finite")
+    if kind not in ("max", "min"):
+        raise ProcedureInputError(f"extremum_error holds 'max' or 'min', not {kind!r}")
+    sign = -1.0 if kind == "max" else 1.0
     if fringe > 0.0:
-        curvature = math.copysign(math.sqrt(max(fringe * fringe - slope * slope, 0.0)), curvature)
-    if kind == "max":
-        return math.atan2(-slope, -curvature)
-    if kind == "min":
-        return math.atan2(slope, curvature)
-    raise ProcedureInputError(f"extremum_error holds 'max' or 'min', not {kind!r}")
+        return math.asin(max(-1.0, min(1.0, sign * slope / fringe)))
+    return math.atan2(sign * slope, sign * curvature)
 
 
 def demodulate_detrended(samples: Any, cycles: Any, amplitudes: Any) -> Demodulated:

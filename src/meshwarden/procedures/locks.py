@@ -75,9 +75,9 @@ VALUE_PER_FRINGE_RAD = {"phase": 1.0, "coupler": 0.25}  # a coupler's kappa move
 INTEGRATION_S = 1e-4  # per monitor read
 PUBLISH_INTERVAL_S = 0.2  # a lock's telemetry at most this often (and at every change of state)
 KEEP_STOPPED = 200
-# a fringe amplitude outside these shares of the locked one: the light is gone or jumped within the
-# window, and the lock waits (the upper bound is wide: far from the extremum the 2f estimate is noisy)
-FADED, JUMPED = 0.2, 10.0
+# a fringe amplitude below FADED of the locked one (the light is gone), or a 1f slope above JUMPED of it
+# (the light stepped within the window): the lock waits
+FADED, JUMPED = 0.2, 3.0
 NAME = re.compile(r"^[A-Za-z0-9_.:-]{1,64}$")
 TWO_PI = 2.0 * math.pi
 
@@ -396,19 +396,23 @@ class LockEngine:
             self.log.warning("lock window unusable", lock=spec.name, error=exc.message)
             return
         lock.window_s = window_s
+        jumped = False
         if spec.hold.extremum:  # the fringe's amplitude: large at an extremum, steady along it
             amplitude = math.hypot(result.slope[0], result.curvature[0])
+            # |s| <= the fringe amplitude on any fringe; the 2f estimate is too noisy to judge by
+            jumped = lock.fringe > 0.0 and abs(result.slope[0]) > JUMPED * lock.fringe
         else:  # x's curvature is small on the slope and its estimate noisy: the light of both taps
             assert spec.against is not None
             amplitude = float(np.mean(primary) + np.mean([r[spec.against]["watts"] for r in readings]))
-        if lock.fringe > 0.0 and not FADED * lock.fringe <= amplitude <= JUMPED * lock.fringe:
+        if lock.fringe > 0.0 and (amplitude < FADED * lock.fringe or jumped):
             # the light is gone (or the monitor blind), or it changed within the window (a step is no
             # fringe): hold still rather than chase it
             lock.error = error
             lock.errors.clear()  # locked again only after LOCK_WINDOWS good windows from here
             self._set_state(lock, "lost")
             return
-        if lock.state == "locked":
+        if lock.state == "locked" and (lock.fringe == 0.0 or 0.5 * lock.fringe <= amplitude <= 2.0 * lock.fringe):
+            # learnt at the lock only, and never from a window that looks unlike the fringe so far
             lock.fringe = amplitude if lock.fringe == 0.0 else 0.9 * lock.fringe + 0.1 * amplitude
         if spec.integral_gain is not None:
             lock.gain = spec.integral_gain
