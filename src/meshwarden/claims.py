@@ -109,6 +109,7 @@ class ClaimRegistry:
         self._held: dict[str, Claim] = {}  # actuator -> held claim
         self._moving: dict[str, Claim] = {}  # actuator -> transient claim
         self._changed: asyncio.Event | None = None
+        self.closing = 0  # > 0 while a disarm or an emergency stop runs: no new held claims
 
     def _event(self) -> asyncio.Event:
         if self._changed is None:
@@ -127,6 +128,10 @@ class ClaimRegistry:
             self._drop(claim, "lease expired")
             return None
         return claim
+
+    def _refuse_while_closing(self, held: bool) -> None:
+        if held and self.closing:
+            raise StoppedRefused("a disarm or an emergency stop is in progress: no new claims until it ends")
 
     def check(self, owner: str, actuators: Iterable[str]) -> None:
         """Refuse if another owner holds any of ``actuators``."""
@@ -155,17 +160,20 @@ class ClaimRegistry:
         motion on them to end when ``wait_for_motion`` (a held claim for a lease does not wait)."""
         wanted = frozenset(actuators)
         while True:
+            self._refuse_while_closing(held)
             self.check(owner, wanted)
             busy = [a for a in wanted if a in self._moving]
             if not busy or not wait_for_motion:
                 break
             await self._event().wait()
+        self._refuse_while_closing(held)
         return self._register(owner, wanted, held, ttl_s, purpose, mover)
 
     def hold_now(self, owner: str, actuators: Iterable[str], *, ttl_s: float, purpose: str = LEASE) -> Claim:
         """A held claim taken at once, without waiting for motion in progress (a client's lease:
         the ramp already running finishes; later motion by others is refused)."""
         wanted = frozenset(actuators)
+        self._refuse_while_closing(True)
         self.check(owner, wanted)
         return self._register(owner, wanted, True, ttl_s, purpose, None)
 

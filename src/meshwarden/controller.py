@@ -63,6 +63,7 @@ class Controller:
         self.journal = journal
         self.log = self._state.log
         self.claims = ClaimRegistry()
+        self._stops = 0  # counts estops and disarms: an arm that saw one begin meanwhile must not finish
         self._motion = Motion(self._state)
         self._supervisor = Supervisor(self._state, self._motion, self.estop)
         self._interlocks = InterlockWatch(self._state, self.estop)
@@ -148,6 +149,7 @@ class Controller:
 
     async def arm(self, client: str | None = None) -> None:
         """Allow outputs to change; clears a latched emergency stop and the boards' fault flags."""
+        stops_before = self._stops
         # Look first: a reset or a tripped watchdog must be noticed before clearing the flags
         # that show it, even if arming is then refused.
         await self.heartbeat_once()
@@ -171,6 +173,9 @@ class Controller:
         doubtful = [b for b, s in self.boards.items() if s.doubt is not None]
         if doubtful:
             raise FaultedRefused(f"cannot arm: outputs of board(s) {', '.join(doubtful)} could not be read")
+        if self._stops != stops_before:
+            self._emit("refused", client=client, op="arm", reason="an emergency stop or disarm came during arm")
+            raise NotArmedRefused("an emergency stop or disarm came while arming: not armed; arm again")
         self._state.estopped = False
         self._state.armed = True
         self._emit("arm", client=client)
@@ -179,9 +184,16 @@ class Controller:
         """Stop all motion (cooperatively), end every claim, ramp every output to zero within
         the guard's steps, then stay disarmed."""
         self._state.armed = False
-        self.claims.end_all("disarm")
-        await self.claims.idle()
-        claim = await self.claims.acquire("disarm", self.actuators, held=False, mover=self)
+        self._stops += 1
+        self.claims.closing += 1  # no new held claim (lease, procedure) until the ramp down is done
+        try:
+            self.claims.end_all("disarm")
+            await self.claims.idle()
+            self.claims.end_all("disarm")  # anything held that got in while motion wound down
+            claim = await self.claims.acquire("disarm", self.actuators, held=False, mover=self)
+        except BaseException:
+            self.claims.closing -= 1
+            raise
         try:
             targets = {aid: 0 for aid in self.actuators}
 
@@ -194,6 +206,7 @@ class Controller:
                 act.value = None  # the logical value is what the outputs mean now: unknown at 0 V
         finally:
             self.claims.release(claim)
+            self.claims.closing -= 1
             self._emit("disarm", client=client)
 
     async def estop(self, client: str | None = None, reason: str = "") -> dict[str, str]:
@@ -201,8 +214,13 @@ class Controller:
         queued work. Never raises. A board that cannot confirm is retried at every heartbeat."""
         self._state.estopped = True
         self._state.armed = False
-        self.claims.end_all("emergency stop")
-        results = await self._state.rack.each(lambda d: d.emergency_zero(), priority=EMERGENCY)
+        self._stops += 1
+        self.claims.closing += 1  # no new held claim while the boards are being zeroed
+        try:
+            self.claims.end_all("emergency stop")
+            results = await self._state.rack.each(lambda d: d.emergency_zero(), priority=EMERGENCY)
+        finally:
+            self.claims.closing -= 1
         outcome = {}
         for board_id, result in results.items():
             board = self.boards[board_id]

@@ -219,3 +219,85 @@ def test_a_held_claim_refuses_other_owners_and_ends_at_disarm(make_bench: Bench)
 
     run(scenario())
     assert_rules_held(config, name)
+
+
+@pytest.mark.parametrize("what", ["estop", "disarm"])
+def test_an_estop_or_disarm_during_arm_is_not_undone_by_it(make_bench: Bench, what: str) -> None:
+    """Replies 20 ms late keep arm() waiting on the board; an estop (or disarm) issued meanwhile
+    wins: the arm is refused when it finishes, the daemon stays unarmed, and nothing is written
+    after the zero (found by an adversarial review)."""
+    config, name = make_bench(dwell="10 ms")
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(name)
+            rack.inject(Fault("delay", "b0", 1.0, 0.02))
+            arming = asyncio.create_task(ctl.arm())
+            await asyncio.sleep(0.02)
+            await (ctl.estop(reason="test") if what == "estop" else ctl.disarm())
+            with pytest.raises(RefusedError, match="while arming"):
+                await arming
+            assert not ctl.armed
+            rack.links["b0"].rates.clear()
+            with pytest.raises(RefusedError):
+                await ctl.set({"c0": 8.0}, volts=True)
+            assert [e for e in rack.board("b0").write_log if e[1] == "write"] == []
+
+    run(scenario())
+
+
+def test_disarm_wins_over_claims_that_arrive_while_it_winds_motion_down(make_bench: Bench) -> None:
+    """A procedure's claim that was waiting for a running set, and a lease asked for during the
+    disarm, cannot stop the disarm: the claim is ended, the lease refused, every output reaches
+    zero (found by an adversarial review)."""
+    config, name = make_bench(dwell="20 ms")
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            ramp = asyncio.create_task(ctl.set({"c1": 12.0, "p0": 20.0}, volts=True))
+            await asyncio.sleep(0.05)
+
+            async def procedure() -> None:
+                async with ctl.claim(["c1"], owner="lock:x", purpose="lock"):
+                    await asyncio.sleep(2)
+
+            holder = asyncio.create_task(procedure())
+            await asyncio.sleep(0)
+            disarming = asyncio.create_task(ctl.disarm())
+            await asyncio.sleep(0.01)
+            with pytest.raises(StoppedRefused, match="disarm or an emergency stop is in progress"):
+                ctl.claims.hold_now("alice", ["p1"], ttl_s=30)  # what a bus lease does
+            await disarming
+            assert ctl.claims.table() == {}
+            for task in (ramp, holder):
+                task.cancel()
+            await asyncio.gather(ramp, holder, return_exceptions=True)
+            assert not inprocess.get(name).board("b0").codes.any()
+
+    run(scenario())
+    assert_rules_held(config, name)
+
+
+def test_a_scan_never_undoes_a_set_it_waited_for(make_bench: Bench) -> None:
+    """A scan started while a set ramps its actuator waits for the ramp; it then refuses (the
+    outputs moved since it planned) instead of putting back the codes from before the set (found
+    by an adversarial review)."""
+    from meshwarden.procedures.scan_run import run_scan
+
+    config, name = make_bench(dwell="20 ms")
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"p0": 10.0}, volts=True)
+            ramp = asyncio.create_task(ctl.set({"p0": 30.0}, volts=True))
+            await asyncio.sleep(0.02)
+            scan = asyncio.create_task(run_scan(ctl, ["p0"], owner="scan:1"))
+            applied = await ramp
+            with pytest.raises(RefusedError, match="moved while the scan waited"):
+                await scan
+            assert int(inprocess.get(name).board("b0").codes[1]) == applied["p0"]["code"]
+
+    run(scenario())
+    assert_rules_held(config, name)

@@ -37,7 +37,7 @@ from typing import Any
 import numpy as np
 
 from meshwarden.controller import Controller
-from meshwarden.errors import MeshwardenError, StoppedRefused, UnknownTargetRefused
+from meshwarden.errors import MeshwardenError, RefusedError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
 from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
@@ -243,6 +243,14 @@ async def run_scan(
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
         if on_claim is not None:
             on_claim(claim)
+        # The claim may have waited for a request that moved these outputs: the codes planned from
+        # (and to be restored at the end) would be stale. Refuse rather than undo that request.
+        moved = [a for a in tested if int(controller.describe(a)["code"]) != plans[a].code0]
+        if moved:
+            raise RefusedError(
+                f"scan: {', '.join(sorted(moved)[:8])} moved while the scan waited for its claim; scan again",
+                actuators=sorted(moved),
+            )
 
         async def frame(moves: dict[str, float], *, monitors: bool, sense: bool = True) -> dict[str, float] | None:
             if moves:
