@@ -23,7 +23,6 @@ from __future__ import annotations
 import asyncio
 import time
 from collections.abc import Awaitable, Callable
-from typing import Any
 
 from meshwarden.claims import Claim
 from meshwarden.drivers.base import BoardDriver
@@ -212,7 +211,3 @@ def _step_writer(
 
     return write
 
-
-def describe_end(state: RackState, actuator_ids: list[str]) -> dict[str, Any]:
-    """Where outputs ended, for a stopped or failed motion."""
-    return {aid: state.describe(aid)["volts"] for aid in actuator_ids}

@@ -12,7 +12,6 @@ updates them only from verified acknowledgements, in the order the board execute
 
 from __future__ import annotations
 
-import math
 import time
 from collections.abc import Callable
 from dataclasses import dataclass, field
@@ -192,5 +191,3 @@ class RackState:
                 highest = max(highest, code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits))
         return count, highest
 
-
-NEVER = -math.inf

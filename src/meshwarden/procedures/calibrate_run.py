@@ -36,6 +36,7 @@ import numpy as np
 from meshwarden.calibration import CalibrationTable
 from meshwarden.claims import Claim
 from meshwarden.errors import MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures.coupler_fit import coupler_gate, fit_coupler_table
 from meshwarden.procedures.fringe import fit_fringe
 from meshwarden.procedures.interferometer import fringe_reference
@@ -120,6 +121,7 @@ class Calibrator:
         self.progress = progress
         self.run = CalibrationRun(version)
         self.new: dict[str, CalibrationTable] = {}
+        self.maps: dict[str, ActuatorMap] = {}
         self.topology = topology_of(controller)
         self.gate_of = {g.coupler: gid for gid, g in controller.gates.items()}
         self.gate_of.update({g.phase: gid for gid, g in controller.gates.items()})
@@ -127,33 +129,29 @@ class Calibrator:
 
     # ---------------------------------------------------------------- tables in force for this run
 
-    def _volts_for(self, actuator: str, value: float) -> float:
-        """Volts for a logical value, by this run's new table if there is one, else the active one."""
+    def _take(self, actuator: str, table: CalibrationTable) -> None:
+        """Use a table this run measured (and its map, built once) for the rest of the run."""
         act = self.ctl.actuators[actuator]
-        table = self.new.get(actuator)
-        if table is None:
-            return float(act.map.volts_for(value))
-        from meshwarden.mapping import ActuatorMap
+        self.new[actuator] = table
+        self.maps[actuator] = ActuatorMap(actuator, act.config.kind, table, act.limit.hard_limit_volts)
 
-        return float(ActuatorMap(actuator, act.config.kind, table, act.limit.hard_limit_volts).volts_for(value))
+    def _map(self, actuator: str) -> ActuatorMap:
+        """This run's map of an actuator if it measured one, else the one in force."""
+        return self.maps.get(actuator) or self.ctl.actuators[actuator].map
+
+    def _volts_for(self, actuator: str, value: float) -> float:
+        return float(self._map(actuator).volts_for(value))
 
     def _value_at(self, actuator: str, volts: float) -> float:
-        """The logical value at ``volts``: this run's table, the active one if calibrated, else 0 at 0 V."""
-        act = self.ctl.actuators[actuator]
-        table = self.new.get(actuator)
-        if table is not None:
-            from meshwarden.mapping import ActuatorMap
-
-            return float(ActuatorMap(actuator, act.config.kind, table, act.limit.hard_limit_volts).value_at(volts))
-        if act.calibration_origin == "measured":
-            return float(act.map.value_at(volts))
-        return 0.0 if volts == 0.0 else float(act.map.value_at(volts))
+        """The logical value at ``volts``: this run's table, the active one if measured, else 0 at 0 V
+        (the gauge of a phase shifter never calibrated)."""
+        if actuator in self.maps or self.ctl.actuators[actuator].calibration_origin == "measured":
+            return float(self._map(actuator).value_at(volts))
+        return 0.0 if volts == 0.0 else float(self._map(actuator).value_at(volts))
 
     def _coupler_volts(self, gate: str, how: str) -> float:
         coupler = self.ctl.gates[gate].coupler
-        act = self.ctl.actuators[coupler]
-        table = self.new.get(coupler)
-        low, high = (table.values[0], table.values[-1]) if table else act.map.reachable()
+        low, high = self._map(coupler).reachable()
         if how == "bar":
             return 0.0 if low <= 0.05 else self._volts_for(coupler, low)
         if how == "cross":
@@ -312,7 +310,7 @@ class Calibrator:
             return
         outcome.table = fit.to_calibration(actuator, self.run.version, note="measured in place: bar/cross sweep")
         outcome.status, outcome.reason = "ok", ""
-        self.new[actuator] = outcome.table
+        self._take(actuator, outcome.table)
 
     async def _phase(self, step: CalibrationStep, actuator: str) -> None:
         routing = self._routing(step)
@@ -338,7 +336,7 @@ class Calibrator:
             return
         outcome.table = table.to_calibration(actuator, self.run.version, note="measured in place: fringe sweep")
         outcome.status, outcome.reason = "ok", ""
-        self.new[actuator] = outcome.table
+        self._take(actuator, outcome.table)
 
 
 async def calibrate(

@@ -251,15 +251,20 @@ class Dispatcher:
             ),
             job_id=job_id,
         )
+        return await self._reply_for(job, request, "applied")
+
+    async def _reply_for(self, job: Any, request: Request, key: str) -> dict[str, Any]:
+        """The reply to a request that started a job: at once with ``wait: false``, else when the
+        job ends (``{"job", "state": "done", key: result}``); a cancelled job is a refusal."""
         if not request.args.get("wait", True):
             return {"job": job.id, "state": "running"}
         try:
-            applied = await asyncio.shield(job.task)
+            result = await asyncio.shield(job.task)
         except asyncio.CancelledError:
             if job.task.cancelled():
                 raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
             raise
-        return {"job": job.id, "state": "done", "applied": applied}
+        return {"job": job.id, "state": "done", key: result}
 
     def _progress(self, job_id: str) -> Callable[[int, int], None]:
         """Publish a job's progress on telemetry, at most ten times a second (and at its end)."""
@@ -321,15 +326,7 @@ class Dispatcher:
         if targets:
             self.leases.check(who, self._actuators_of(targets))
         job = self.scans.start(targets, who)
-        if not request.args.get("wait", True):
-            return {"job": job.id, "state": "running"}
-        try:
-            report = await asyncio.shield(job.task)
-        except asyncio.CancelledError:
-            if job.task.cancelled():
-                raise RefusedError(f"{job.id} was cancelled", job=job.id) from None
-            raise
-        return {"job": job.id, "state": "done", "scan": report}
+        return await self._reply_for(job, request, "scan")
 
     async def _op_scans(self, request: Request, who: str) -> Any:
         limit = int(request.args.get("limit", 100))  # 1..1000, checked by the schema
