@@ -110,7 +110,7 @@ class Controller:
     async def start(self) -> None:
         """Bring every board up and adopt its outputs without writing any."""
         await self._supervisor.start()
-        self._interlocks.start()
+        await self._interlocks.start()
         for aid in self.over_limit():
             self._emit("above_limit", actuator=aid, code=self._state.code_of(aid))
             self.log.error("output found above its hard limit; disarm to ramp it down", actuator=aid)

@@ -38,9 +38,16 @@ class InterlockWatch:
         self.boards = [b.id for b in state.config.rack.boards if b.interlock]
         self._task: asyncio.Task[None] | None = None
 
-    def start(self) -> None:
-        if self.boards and self._task is None:
-            self._task = asyncio.create_task(self._loop(), name="interlocks")
+    async def start(self) -> None:
+        """Read every interlock once before the daemon answers (so its first ``status`` already
+        says whether each is closed), then keep polling in the background."""
+        if not self.boards or self._task is not None:
+            return
+        try:
+            await self.poll()
+        except Exception as exc:  # a failed first read is reported; the loop keeps trying
+            self.state.log.error("interlock poll failed", error=repr(exc))
+        self._task = asyncio.create_task(self._loop(), name="interlocks")
 
     async def stop(self) -> None:
         if self._task is not None:
@@ -50,11 +57,11 @@ class InterlockWatch:
 
     async def _loop(self) -> None:
         while True:
+            await asyncio.sleep(self.state.config.safety.interlock_poll_s)
             try:
                 await self.poll()
             except Exception as exc:  # the watch must outlive any one bad pass
                 self.state.log.error("interlock poll failed", error=repr(exc))
-            await asyncio.sleep(self.state.config.safety.interlock_poll_s)
 
     async def poll(self) -> dict[str, str]:
         """Read every configured interlock once; stop the rack if one has opened."""
