@@ -132,8 +132,8 @@ def main() -> int:
             print("armed")
             before = outputs(mw)
             show("outputs with every gate in bar state (all actuators at 0 V):", before, 0)
-            request = {f"{g}.kappa": 0.99 for g in path}
-            print(f"\nswitching {', '.join(path)} to cross (kappa 0.99, or the highest each reaches) ...")
+            request = {f"{g}.kappa": 1.0 for g in path}
+            print(f"\nswitching {', '.join(path)} to cross (kappa 1, or the highest each reaches) ...")
             applied = set_reaching(mw, request)
             for aid, a in sorted(applied.items()):
                 print(f"  {aid}: {a['volts']:.3f} V (code {a['code']}, limit {a['limit_v']:g} V)")

@@ -55,3 +55,18 @@ def test_monitor_watts_are_refused_until_the_board_reports_its_adc_full_scale(tm
     with pytest.raises(FaultedRefused, match="b0: the board has not identified itself") as err:
         asyncio.run(acquire_monitors(_UnusedRack(), config, {}, 1, 1e-3))
     assert err.value.details == {"boards": ["b0"]}
+
+
+def test_reading_converts_counts_and_takes_out_the_dark_current() -> None:
+    """counts / 2^N x full scale / R_f is the photocurrent; (I - I_dark) / responsivity the optical
+    power (Source: the photodiode relation I = R P + I_dark, e.g. Saleh & Teich, *Fundamentals of
+    Photonics*, photodetector chapter - from memory). 12 bits, 2.5 V, 100 kohm, 0.9 A/W, 5 nA dark:
+    2048 counts are 1.25 V, 12.5 uA, (12.5 uA - 5 nA) / 0.9 A/W = 13.8833 uW."""
+    from meshwarden.config.model import MonitorConfig, Terminal
+    from meshwarden.monitors import reading
+
+    mon = MonitorConfig("m0", Terminal("b0", 0), 0.9, 100_000.0, dark_current_a=5e-9)
+    out = reading(2048, mon, 12, 2.5)
+    assert out["amps"] == pytest.approx(12.5e-6, rel=1e-12)
+    assert out["watts"] == pytest.approx(13.883333e-6, rel=1e-6)
+    assert reading(0, mon, 12, 2.5)["watts"] == pytest.approx(-5e-9 / 0.9, rel=1e-12)  # noise is never clipped

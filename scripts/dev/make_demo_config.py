@@ -106,7 +106,11 @@ def main() -> None:
     chip.append("gates:")
     for g in range(n_gates):
         chip.append(f"  - {{id: g{g:02d}, coupler: c{g:02d}, phase: p{g:02d}}}")
-    chip += ["monitor_defaults: {all: {responsivity_a_per_w: 0.9, transimpedance_ohms: 100 kohm}}", "monitors:"]
+    chip += [
+        "# dark_current_a: the detectors' datasheet dark current (demo value), taken out of every reading's watts",
+        "monitor_defaults: {all: {responsivity_a_per_w: 0.9, transimpedance_ohms: 100 kohm, dark_current_a: 5 nA}}",
+        "monitors:",
+    ]
     taps = []
     for i, (after, mode) in enumerate((a, m) for a in TAP_AFTER for m in range(MODES)):
         board, index = ("b0", i) if i < 32 else ("b1", i - 32)

@@ -41,6 +41,7 @@ OHMS = Dimension(
         "V/A": 1.0,
     },
 )
+AMPERES = Dimension("current", "A", {"A": 1.0, "mA": 1e-3, "uA": 1e-6, "µA": 1e-6, "nA": 1e-9, "pA": 1e-12})
 AMPS_PER_WATT = Dimension("responsivity", "A/W", {"A/W": 1.0, "mA/W": 1e-3, "mA/mW": 1.0})
 HERTZ = Dimension("frequency", "Hz", {"Hz": 1.0, "kHz": 1e3, "MHz": 1e6})
 METRES = Dimension("length", "m", {"m": 1.0, "mm": 1e-3, "um": 1e-6, "µm": 1e-6, "nm": 1e-9})

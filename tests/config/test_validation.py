@@ -559,3 +559,17 @@ def test_scpi_options_must_be_a_mapping(tmp_path: Path) -> None:
     assert problems(text, tmp_path) == [
         "config.yaml:7: rack.boards[0].options: expected a mapping for this driver's options, got a list"
     ]
+
+
+def test_dark_current_is_read_with_its_unit_and_defaults_to_none(tmp_path: Path) -> None:
+    """A monitor's dark current takes a unit ("5 nA" is 5e-9 A); without one nothing is subtracted."""
+    assert load_config(write_config(tmp_path)).chip.monitors[0].dark_current_a == 0.0
+    text = replace_line("transimpedance_ohms: 100000}", "transimpedance_ohms: 100000, dark_current_a: 5 nA}")
+    config = load_config(write_config(tmp_path, text))
+    assert config.chip.monitors[0].dark_current_a == pytest.approx(5e-9, rel=1e-12)
+
+
+def test_negative_dark_current_is_refused(tmp_path: Path) -> None:
+    """A dark current below zero is a located error."""
+    text = replace_line("transimpedance_ohms: 100000}", "transimpedance_ohms: 100000, dark_current_a: -2 nA}")
+    assert problems(text, tmp_path) == ["config.yaml:13: chip.monitors[0].dark_current_a: must be at least 0 A, got -2e-09"]

@@ -9,7 +9,14 @@ from scipy.optimize import isotonic_regression
 from meshwarden.calibration import table_from_dict
 from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures import ProcedureInputError
-from meshwarden.procedures.coupler_fit import coupler_gate, coupling_ratio, fit_coupler_table, isotonic_increasing
+from meshwarden.procedures.coupler_fit import (
+    coupler_gate,
+    coupling_ratio,
+    fit_coupler_angle_table,
+    fit_coupler_table,
+    isotonic_increasing,
+    unfold_coupling_angle,
+)
 
 
 def _coupler_out(kappa: float) -> tuple[float, float]:
@@ -100,3 +107,55 @@ def test_bad_sweeps_are_refused(volts: list[float], bar: list[float], cross: lis
     """Malformed or lightless sweeps raise ProcedureInputError naming the problem."""
     with pytest.raises(ProcedureInputError, match=message):
         fit_coupler_table(volts, bar, cross)
+
+
+# ---------------------------------------------------------------- the fit in angle space
+
+THETA_FULL_V = 30.0 * np.sqrt(np.log((np.pi / 2) / 0.06) / 3.3)  # where 0.06 exp(3.3 (V/30)^2) = pi/2
+
+
+def test_unfolded_angle_is_the_coupled_mode_angle_on_both_sides_of_full_transfer() -> None:
+    """kappa = sin^2(C L) (Yariv, IEEE JQE 9:919, 1973): a sweep across full transfer unfolds to the
+    angle C L itself, rising through pi/2 (up to 2.9 rad here), the top point put on its true side."""
+    volts = np.linspace(0.0, 32.5, 20)
+    theta = 0.06 * np.exp(3.3 * (volts / 30.0) ** 2)
+    unfolded, used = unfold_coupling_angle(np.sin(theta) ** 2, volts)
+    assert used == 20
+    assert np.allclose(unfolded, theta, atol=1e-9)
+
+
+def test_unfolding_stops_at_the_next_empty_point() -> None:
+    """Past kappa = 0 again (angle pi) the sweep is ambiguous and is not used."""
+    volts = np.linspace(0.0, 36.0, 40)
+    theta = 0.06 * np.exp(3.3 * (volts / 30.0) ** 2)
+    unfolded, used = unfold_coupling_angle(np.sin(theta) ** 2, volts)
+    first_past_pi = int(np.flatnonzero(theta > np.pi)[0])
+    assert used in (first_past_pi, first_past_pi + 1)
+    assert np.all(np.diff(unfolded) > 0)
+
+
+@pytest.mark.parametrize(("points", "top_volts"), [(14, 36.0), (20, 33.0), (16, 31.5)])
+def test_angle_table_finds_full_transfer_between_the_points_and_follows_the_coupler(
+    points: int, top_volts: float
+) -> None:
+    """From a noisy sweep across full transfer (0.3 % noise): the table ends at kappa 1 within 1 % of
+    the true full-transfer volts, and kappa read through the daemon's map stays within 0.012 of
+    sin^2 of the true angle everywhere below it."""
+    volts, bar, cross, _ = _sweep(5, 0.003, top_volts=top_volts, points=points)
+    fit = fit_coupler_angle_table(volts, bar, cross)
+    assert fit.full_transfer_volts == pytest.approx(THETA_FULL_V, rel=0.01)
+    assert fit.kappa_high == 1.0 and fit.volts[-1] == fit.full_transfer_volts
+    curve = ActuatorMap("c00", "coupler", table_from_dict(fit.to_calibration("c00", "v1").as_dict()), 60.0)
+    probe = np.linspace(0.0, fit.volts[-1], 300)
+    truth = np.sin(0.06 * np.exp(3.3 * (probe / 30.0) ** 2)) ** 2
+    assert max(abs(curve.value_at(float(v)) - t) for v, t in zip(probe, truth, strict=True)) < 0.012
+    assert coupler_gate(fit, needed_low=0.01, needed_high=0.95).ok
+
+
+def test_angle_table_without_a_turn_ends_at_its_last_point() -> None:
+    """A sweep that stops below full transfer keeps its top as measured and says it found none."""
+    volts, bar, cross, kappa = _sweep(6, 0.0, top_volts=28.0, points=15)
+    fit = fit_coupler_angle_table(volts, bar, cross)
+    assert fit.full_transfer_volts is None
+    assert fit.volts[-1] == pytest.approx(28.0)
+    assert fit.kappa_high == pytest.approx(float(kappa[-1]), abs=1e-9)

@@ -33,7 +33,7 @@ from meshwarden.config.model import (
     WatchdogConfig,
 )
 from meshwarden.config.source import PathKey
-from meshwarden.units import AMPS_PER_WATT, HERTZ, OHMS, RADIANS, SECONDS, VOLTS
+from meshwarden.units import AMPERES, AMPS_PER_WATT, HERTZ, OHMS, RADIANS, SECONDS, VOLTS
 
 TOP_KEYS = ("rack", "chip", "calibration", "safety", "service", "journal", "simulator", "scans")
 BOARD_KEYS = (
@@ -57,8 +57,8 @@ BOARD_KEYS = (
 )
 ACTUATOR_KEYS = ("id", "kind", "output", "limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s", "calibration")
 ACTUATOR_DEFAULT_KEYS = ("limit_volts", "pull_in_volts", "step_limit_volts", "dwell_s")
-MONITOR_KEYS = ("id", "input", "responsivity_a_per_w", "transimpedance_ohms")
-MONITOR_DEFAULT_KEYS = ("responsivity_a_per_w", "transimpedance_ohms")
+MONITOR_KEYS = ("id", "input", "responsivity_a_per_w", "transimpedance_ohms", "dark_current_a")
+MONITOR_DEFAULT_KEYS = ("responsivity_a_per_w", "transimpedance_ohms", "dark_current_a")
 
 VOLTS_FIELD = f.quantity(VOLTS)
 SECONDS_FIELD = f.quantity(SECONDS)
@@ -227,14 +227,19 @@ def _lattice(s: f.Section, gates: set[str], monitors: set[str]) -> LatticeConfig
 
 
 def _monitors(s: f.Section) -> list[MonitorConfig]:
-    converters = {"responsivity_a_per_w": f.quantity(AMPS_PER_WATT, maximum=10.0), "transimpedance_ohms": OHMS_FIELD}
+    converters = {
+        "responsivity_a_per_w": f.quantity(AMPS_PER_WATT, maximum=10.0),
+        "transimpedance_ohms": OHMS_FIELD,
+        "dark_current_a": f.quantity(AMPERES, positive=False, minimum=0.0, maximum=1e-3),
+    }
+    optional = {"dark_current_a": 0.0}
     defaults = _defaults(s, "monitor_defaults", ("all",), converters)["all"]
     out = []
     for path, raw in s.items("monitors"):
         m = f.Section(s.problems, raw, path, MONITOR_KEYS, what="monitor")
         values: dict[str, Any] = dict(id=m.get("id", f.identifier), input=m.get("input", f.terminal))
         for key, conv in converters.items():
-            values[key] = m.get(key, conv, defaults.get(key, f.MISSING))
+            values[key] = m.get(key, conv, defaults.get(key, optional.get(key, f.MISSING)))
         if m.ok and f.BAD not in values.values():
             out.append(MonitorConfig(**values))
     return out

@@ -144,7 +144,9 @@ def integer(low: int, high: int) -> Callable[[Any], int]:
     return convert
 
 
-def quantity(dimension: Dimension, *, positive: bool = True, maximum: float | None = None) -> Callable[[Any], float]:
+def quantity(
+    dimension: Dimension, *, positive: bool = True, minimum: float | None = None, maximum: float | None = None
+) -> Callable[[Any], float]:
     def convert(value: Any) -> float:
         try:
             number = parse_quantity(value, dimension)
@@ -152,6 +154,8 @@ def quantity(dimension: Dimension, *, positive: bool = True, maximum: float | No
             raise ValueError(str(exc)) from None
         if positive and number <= 0.0:
             raise ValueError(f"must be greater than 0 {dimension.si_unit}, got {number:g}")
+        if minimum is not None and number < minimum:
+            raise ValueError(f"must be at least {minimum:g} {dimension.si_unit}, got {number:g}")
         if maximum is not None and number > maximum:
             raise ValueError(f"must be at most {maximum:g} {dimension.si_unit}, got {number:g}")
         return number

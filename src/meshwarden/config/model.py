@@ -154,6 +154,7 @@ class MonitorConfig:
     input: Terminal
     responsivity_a_per_w: float
     transimpedance_ohms: float
+    dark_current_a: float = 0.0  # the detector's dark current (datasheet or a dark frame); 0: none subtracted
 
 
 @dataclass(frozen=True)

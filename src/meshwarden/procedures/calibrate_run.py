@@ -7,8 +7,10 @@ time, each using gates already calibrated (in this run, or by the active tables)
 to it and monitor taps downstream to observe it.
 
 * A coupler: its bar and cross light reach separate taps; a sweep of ``points`` voltages (even in
-  the active table's coupling ratio, 0 V to the hard limit) gives kappa = P_cross / (P_bar +
-  P_cross) per point, and a monotone table (:func:`fit_coupler_table`), gated.
+  the active table's coupling ratio up to its top, then in small steps above it until the coupling
+  has turned over past full transfer, never above the hard limit) gives kappa = P_cross / (P_bar +
+  P_cross) per point; the fit in angle space (:func:`fit_coupler_angle_table`) finds full transfer
+  between the points on either side of it, which is then measured too; the table is gated.
 * A phase shifter: its gate and the combiner downstream set to 1/2 make an interferometer; a sweep
   (even in the active table's phase) gives the fringe ``A + B cos(phi0 + c w(V^2))``, fitted, turned
   into a table of the phase the mesh sees, gated. The fringe's reference (what the rest of the
@@ -27,7 +29,7 @@ from __future__ import annotations
 import asyncio
 import math
 import time
-from collections.abc import Callable
+from collections.abc import Awaitable, Callable
 from dataclasses import dataclass, field
 from typing import Any
 
@@ -35,9 +37,15 @@ import numpy as np
 
 from meshwarden.calibration import CalibrationTable
 from meshwarden.claims import Claim
-from meshwarden.errors import MeshwardenError, RefusedError, UnknownTargetRefused
+from meshwarden.errors import (
+    LimitRefused,
+    MeshwardenError,
+    OutOfRangeRefused,
+    RefusedError,
+    UnknownTargetRefused,
+)
 from meshwarden.mapping import ActuatorMap
-from meshwarden.procedures.coupler_fit import coupler_gate, fit_coupler_table
+from meshwarden.procedures.coupler_fit import CouplerTableFit, coupler_gate, fit_coupler_angle_table
 from meshwarden.procedures.fringe import fit_fringe
 from meshwarden.procedures.interferometer import fringe_reference
 from meshwarden.procedures.lattice import LatticeTopology
@@ -49,6 +57,9 @@ DEFAULT_POINTS = 12
 MIN_POINTS, MAX_POINTS = 12, 64
 LIT_FRACTION_OF_ADC = 0.01  # the laser counts as on when a monitor reads above 1 % of its ADC range
 SPLIT = 0.5
+COUPLER_EXTEND_FRACTION = 0.0125  # a coupler's sweep goes on above its table in steps of 1.25 % of its top volts
+COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
+COUPLER_REFINE_FRACTION = 0.002  # full transfer is measured unless a point already lies this close (of its volts)
 PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
 
 
@@ -175,7 +186,7 @@ class Calibrator:
         self.run.frames += 1
         outcome = self.run.outcomes.setdefault(actuator, Outcome("failed"))
         outcome.frames += 1
-        return {m: float(r["watts"]) for m, r in levels.items()}
+        return {m: max(float(r["watts"]), 0.0) for m, r in levels.items()}  # noise below the dark level: none
 
     def _sweep_values(self, actuator: str, points: int | None = None) -> list[float]:
         """Sweep volts from 0 V, even in the table in force's logical value: a coupler to the
@@ -288,20 +299,29 @@ class Calibrator:
         phases = [*self._own_phase_if_needed(step), *self._upstream_phase(step.gate)]
         turned = {p: self._half_turn_volts(p) for p in phases}
         states = [{p: 0.0 for p in phases}, turned]
-        volts, bar, cross = [], [], []
-        sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
-        sweep = sorted(set(sweep) | {round(sweep[1] * f, 6) for f in (0.3, 0.6, 0.85)})
-        for v in sweep:
+        points: dict[float, tuple[float, float]] = {}
+
+        async def measure(v: float) -> None:
             b = c = 0.0
             for state in states:
                 await self._hold({**routing, actuator: v, **state})
                 powers = await self._read(actuator, settle)
                 b += sum(powers[m] for m in step.bar_taps) / len(states)
                 c += sum(powers[m] for m in step.cross_taps) / len(states)
-            volts.append(v)
-            bar.append(b)
-            cross.append(c)
-        fit = fit_coupler_table(volts, bar, cross, balance=True)
+            points[v] = (b, c)
+
+        sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
+        for v in sorted(set(sweep) | {round(sweep[1] * f, 6) for f in (0.3, 0.6, 0.85)}):
+            await measure(v)
+        await self._past_full_transfer(actuator, points, measure)
+        fit = self._coupler_fit(points)
+        full = fit.full_transfer_volts
+        if full is not None:  # pin full transfer down: measure at it and halfway back to the last point below
+            below = max((v for v in points if v < full), default=0.0)
+            for v in (round(full, 6), round((below + full) / 2, 6)):
+                if min(abs(v - u) for u in points) > COUPLER_REFINE_FRACTION * full:
+                    await measure(v)
+            fit = self._coupler_fit(points)
         verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
         outcome = self.run.outcomes[actuator]
         outcome.points, outcome.residual = fit.points_used, fit.residual_rms
@@ -311,6 +331,36 @@ class Calibrator:
         outcome.table = fit.to_calibration(actuator, self.run.version, note="measured in place: bar/cross sweep")
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
+
+    @staticmethod
+    def _coupler_fit(points: dict[float, tuple[float, float]]) -> CouplerTableFit:
+        volts = sorted(points)
+        return fit_coupler_angle_table(volts, [points[v][0] for v in volts], [points[v][1] for v in volts])
+
+    async def _past_full_transfer(
+        self,
+        actuator: str,
+        points: dict[float, tuple[float, float]],
+        measure: Callable[[float], Awaitable[None]],
+    ) -> None:
+        """Extend a coupler's sweep above the table in force, in small steps up to the hard limit,
+        until the coupling has clearly turned over (full transfer lies behind the last point):
+        fabrication spread puts a real coupler's full transfer above or below the design's."""
+        act = self.ctl.actuators[actuator]
+        step_v = max(COUPLER_EXTEND_FRACTION * act.map.top_volts, 2 * act.limit.lsb_volts)
+
+        def turned() -> bool:
+            ratios = [c / (b + c) if b + c > 0 else 0.0 for b, c in (points[v] for v in sorted(points))]
+            return max(ratios) - ratios[-1] > COUPLER_TURN_DROP
+
+        v = max(points)
+        while not turned() and v + step_v <= act.limit.hard_limit_volts:
+            v = round(v + step_v, 6)
+            try:
+                await measure(v)
+            except (LimitRefused, OutOfRangeRefused) as exc:  # the guard's word is final
+                self.ctl.log.info("coupler sweep stops below the hard limit", actuator=actuator, volts=v, why=str(exc))
+                return
 
     async def _phase(self, step: CalibrationStep, actuator: str) -> None:
         routing = self._routing(step)

@@ -16,11 +16,14 @@ measured value.
 
 from __future__ import annotations
 
+import itertools
 import math
 from dataclasses import dataclass
 from typing import Any
 
 import numpy as np
+from scipy.interpolate import PchipInterpolator
+from scipy.optimize import brentq
 
 from meshwarden.calibration import CalibrationTable
 from meshwarden.procedures.inputs import (
@@ -105,6 +108,7 @@ class CouplerTableFit:
     kappa_high: float
     largest_drop: float
     pooled_points: int
+    full_transfer_volts: float | None = None
 
     def to_calibration(self, actuator: str, version: str, note: str = "") -> CalibrationTable:
         """The table as a measured coupler calibration."""
@@ -122,6 +126,7 @@ class CouplerTableFit:
             "kappa_high": self.kappa_high,
             "largest_drop": self.largest_drop,
             "pooled_points": self.pooled_points,
+            "full_transfer_volts": self.full_transfer_volts,
         }
 
 
@@ -193,3 +198,95 @@ def coupler_gate(
     if fit.largest_drop > max_drop:
         failures.append(f"kappa falls by {fit.largest_drop:.3g} between neighbouring points (limit {max_drop:g})")
     return gate(checks, failures)
+
+
+HALF_PI = math.pi / 2
+TABLE_STEPS_PER_INTERVAL = 4  # table points per measured interval, from the fit in angle space
+
+
+def unfold_coupling_angle(kappa: Any, volts: Any = None) -> tuple[FloatArray, int]:
+    """The coupling angle theta (kappa = sin^2 theta) of each point of a sweep, unfolded past full
+    transfer; returns (theta, points used).
+
+    theta grows monotonically with the drive, while kappa folds back at theta = pi/2. Up to the
+    largest kappa theta = asin(sqrt(kappa)); after it, pi - asin(sqrt(kappa)), down to the smallest
+    kappa after the top (theta = pi; later points are dropped). The top point itself may lie on
+    either side of the turn: it takes the side closer to a quadratic through its unfolded
+    neighbours (two on each side where there are; ``volts`` spaces them, evenly when not given)."""
+    k = np.clip(float_vector("kappa", kappa, min_length=2), 0.0, 1.0)
+    x = np.arange(k.size, dtype=float) if volts is None else float_vector("volts", volts)
+    same_length("kappa", k, "volts", x)
+    top = int(np.argmax(k))
+    used = k.size if top == k.size - 1 else top + 2 + int(np.argmin(k[top + 1 :]))
+    theta = np.arcsin(np.sqrt(k[:used]))
+    after = np.arange(used) > top
+    theta[after] = math.pi - theta[after]
+    if 0 < top < used - 1:
+        near = [i for i in (top - 2, top - 1, top + 1, top + 2) if 0 <= i < used]
+        coefficients = np.polyfit(x[near], theta[near], min(2, len(near) - 1))
+        expected = float(np.polyval(coefficients, x[top]))
+        if abs((math.pi - theta[top]) - expected) < abs(theta[top] - expected):
+            theta[top] = math.pi - theta[top]  # the turn lies between the previous point and the top
+    return np.asarray(theta), used
+
+
+def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: bool = True) -> CouplerTableFit:
+    """Monotone kappa(V) from a sweep that may run past full transfer, fitted in angle space.
+
+    Coupled-mode theory gives kappa = sin^2(C L) for a directional coupler (Yariv, IEEE J. Quantum
+    Electron. 9:919, 1973; Haus & Huang, Proc. IEEE 79:1505, 1991): the coupling angle theta = C L
+    grows smoothly with the drive (C rises as the gap closes), and kappa's flat top and flat start
+    are only sin^2 folding it. So the sweep is unfolded to theta (:func:`unfold_coupling_angle`),
+    fitted non-decreasing there (pool adjacent violators, each point weighted by how well it
+    fixes theta: sin^2(2 theta), floored, since d kappa / d theta vanishes at the fold), and the
+    table is sin^2 of a monotone cubic (PCHIP, Fritsch & Carlson, SIAM J. Numer. Anal. 17:238,
+    1980) through the pooled angles, sampled densely, up to where theta reaches pi/2: full
+    transfer, located between the measured points on either side of it. A sweep that never
+    passes the top ends at its last point, like :func:`fit_coupler_table`."""
+    v = float_vector("volts", volts, min_length=2)
+    kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
+    same_length("volts", v, "bar_power", kappa)
+    strictly_increasing("volts", v)
+    if v[0] < 0:
+        raise ProcedureInputError("volts must be >= 0")
+    theta, used = unfold_coupling_angle(kappa, v)
+    weights = np.maximum(np.sin(2 * theta) ** 2, 0.05)
+    fitted = isotonic_increasing(theta, weights)
+    v_used = v[:used]
+    starts = np.flatnonzero(np.r_[True, np.diff(fitted) > 0])
+    ends = np.r_[starts[1:], used]
+    block_volts = np.array([v_used[0]] + [v_used[a:b].mean() for a, b in zip(starts[1:], ends[1:], strict=True)])
+    block_theta = fitted[starts]
+    if block_volts.size < 2:
+        raise ProcedureInputError("kappa does not rise over the sweep: no table can be made (is the coupler moving?)")
+    curve = PchipInterpolator(block_volts, block_theta)
+    full: float | None = None
+    beyond = np.flatnonzero(block_theta >= HALF_PI)
+    if beyond.size and beyond[0] > 0:
+        i = int(beyond[0])
+        full = float(brentq(lambda x: float(curve(x)) - HALF_PI, block_volts[i - 1], block_volts[i]))
+    rising = [float(x) for x in block_volts[block_theta < HALF_PI]] if full is not None else list(block_volts)
+    knots = rising + ([full] if full is not None and full > rising[-1] else [])
+    grid = [float(knots[0])]
+    for a, b in itertools.pairwise(knots):
+        grid += [float(a + (b - a) * j / TABLE_STEPS_PER_INTERVAL) for j in range(1, TABLE_STEPS_PER_INTERVAL + 1)]
+    angles = np.minimum(curve(np.array(grid)), HALF_PI)
+    if full is not None:
+        angles[-1] = HALF_PI
+    table_kappa = np.sin(angles) ** 2
+    keep = np.r_[True, np.diff(table_kappa) > 1e-12]
+    model = np.sin(fitted) ** 2
+    rising_raw = kappa[: int(np.argmax(kappa)) + 1]
+    drops = -np.diff(rising_raw)
+    return CouplerTableFit(
+        volts=tuple(float(x) for x in np.array(grid)[keep]),
+        kappa=tuple(float(x) for x in table_kappa[keep]),
+        points=int(v.size),
+        points_used=used,
+        residual_rms=math.sqrt(float(np.mean((np.clip(kappa[:used], 0, 1) - model) ** 2))),
+        kappa_low=float(table_kappa[0]),
+        kappa_high=float(table_kappa[keep][-1]),
+        largest_drop=float(max(drops.max(initial=0.0), 0.0)),
+        pooled_points=int(used - starts.size),
+        full_transfer_volts=full,
+    )
