@@ -366,6 +366,8 @@ def bench_rack768(baseline_s: float, repeats: int = 20, estops: int = 30) -> dic
         "estop_trials": float(len(latencies)),
         "flood_requests_during_estops": float(flooded[0]),
     }
+
+
 def bench_interlock(repeats: int) -> dict[str, float]:
     """Emergency stop latency from an interlock opening to every board at zero, read from the
     simulated boards' own write logs (their clock runs at wall speed), for the demo rack with the

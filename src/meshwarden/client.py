@@ -305,7 +305,6 @@ class Client:
         result: list[dict[str, Any]] = self.request("scans", limit=limit)
         return result
 
-
     # ------------------------------------------------------------------ calibration
 
     def calibrate(

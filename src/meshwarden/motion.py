@@ -210,4 +210,3 @@ def _step_writer(
         return [driver.write_codes(first, codes) for first, codes in _runs(channels)]
 
     return write
-

@@ -190,4 +190,3 @@ class RackState:
                 count += 1
                 highest = max(highest, code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits))
         return count, highest
-

@@ -555,7 +555,9 @@ def test_unknown_driver_is_named_with_the_known_ones(tmp_path: Path) -> None:
 
 def test_scpi_options_must_be_a_mapping(tmp_path: Path) -> None:
     """Options written as a list are reported as such, at their line."""
-    text = replace_line("      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpi\n      options: [lf]")
+    text = replace_line(
+        "      full_scale_volts: 60", "      full_scale_volts: 60\n      driver: scpi\n      options: [lf]"
+    )
     assert problems(text, tmp_path) == [
         "config.yaml:7: rack.boards[0].options: expected a mapping for this driver's options, got a list"
     ]
@@ -572,4 +574,6 @@ def test_dark_current_is_read_with_its_unit_and_defaults_to_none(tmp_path: Path)
 def test_negative_dark_current_is_refused(tmp_path: Path) -> None:
     """A dark current below zero is a located error."""
     text = replace_line("transimpedance_ohms: 100000}", "transimpedance_ohms: 100000, dark_current_a: -2 nA}")
-    assert problems(text, tmp_path) == ["config.yaml:13: chip.monitors[0].dark_current_a: must be at least 0 A, got -2e-09"]
+    assert problems(text, tmp_path) == [
+        "config.yaml:13: chip.monitors[0].dark_current_a: must be at least 0 A, got -2e-09"
+    ]

@@ -218,8 +218,10 @@ def _lattice(s: f.Section, gates: set[str], monitors: set[str]) -> LatticeConfig
             continue
         taps.append((str(monitor), spot[0], spot[1]))
     inputs = lat.value.get("input_modes", [0])
-    if not isinstance(inputs, list) or not inputs or any(
-        isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < modes for v in inputs
+    if (
+        not isinstance(inputs, list)
+        or not inputs
+        or any(isinstance(v, bool) or not isinstance(v, int) or not 0 <= v < modes for v in inputs)
     ):
         problems.add((*lat.path, "input_modes"), f"expected a list of modes 0..{modes - 1}, got {inputs!r}")
         inputs = [0]
@@ -301,7 +303,7 @@ SCAN_KEYS = (
 
 def _time_of_day(value: Any) -> str:
     if not isinstance(value, str) or not re.fullmatch(r"([01]\d|2[0-3]):[0-5]\d", value):
-        raise ValueError(f"expected a time of day HH:MM such as \"02:30\", got {value!r}")
+        raise ValueError(f'expected a time of day HH:MM such as "02:30", got {value!r}')
     return value
 
 

@@ -100,7 +100,16 @@ MAX_NAMES = 10_000  # names in one set, lease or release
 MAX_REASON_CHARS = 200  # of an estop reason, what is journaled (the estop itself is never refused)
 ROLES = ("observer", "operator", "admin")
 READ_ONLY = {
-    "status", "get", "snapshot", "monitors", "events", "jobs", "job", "calibrations", "calibration_show", "scans",
+    "status",
+    "get",
+    "snapshot",
+    "monitors",
+    "events",
+    "jobs",
+    "job",
+    "calibrations",
+    "calibration_show",
+    "scans",
     "locks",
 }
 
