@@ -30,6 +30,7 @@ from meshwarden.calibration import CalibrationTable, load_calibration
 from meshwarden.calibration_store import BASE_VERSION, CalibrationStore
 from meshwarden.claims import Claim, ClaimRegistry
 from meshwarden.config.model import Config
+from meshwarden.crosstalk import CrosstalkShares
 from meshwarden.drivers.rack import EMERGENCY, Rack
 from meshwarden.errors import (
     CalibrationError,
@@ -68,9 +69,11 @@ class Controller:
         self._supervisor = Supervisor(self._state, self._motion, self.estop)
         self._interlocks = InterlockWatch(self._state, self.estop)
         self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
+        self._crosstalk = CrosstalkShares()
         active = self.calibrations.active()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
             self._swap_tables(self._tables_of(active))
+            self._crosstalk = self._crosstalk_of(active)
 
     # ------------------------------------------------------------------ state, read-only views
 
@@ -252,23 +255,32 @@ class Controller:
         raise UnknownTargetRefused(f"unknown target '{name}' (an actuator id, or GATE.kappa / GATE.phase)", target=name)
 
     def prepare(self, values: dict[str, float], *, volts: bool = False) -> Prepared:
-        """Validate a whole request without touching anything: actuator -> (code, logical value)."""
-        out: Prepared = {}
+        """Validate a whole request without touching anything: actuator -> (code, logical value).
+        Logical values are mapped through each table to the drive they need alone, then, where
+        the calibration measured crosstalk, solved jointly with every neighbour's present drive
+        (:mod:`meshwarden.crosstalk`); volts are taken as they are."""
+        wanted: dict[str, tuple[str, float]] = {}
         for name, raw in values.items():
             actuator_id, _ = self.resolve(name)
-            if actuator_id in out:
+            if actuator_id in wanted:
                 raise UnknownTargetRefused(
                     f"'{name}' sets actuator {actuator_id} a second time in one request", target=name
                 )
             if isinstance(raw, bool) or not isinstance(raw, int | float) or not math.isfinite(raw):
                 raise UnreachableRefused(f"{name}: value must be a finite number, got {raw!r}", target=name)
+            wanted[actuator_id] = (name, float(raw))
+        drive = {a: raw if volts else self.actuators[a].map.volts_for(raw) for a, (_, raw) in wanted.items()}
+        if not volts and self._crosstalk:
+            drive = self._crosstalk.drive_volts(drive, self._neighbour_volts(drive))
+        out: Prepared = {}
+        for actuator_id, (_, raw) in wanted.items():
             act = self.actuators[actuator_id]
-            target_volts = float(raw) if volts else act.map.volts_for(float(raw))
+            target_volts = drive[actuator_id]
             code = volts_to_code(target_volts, act.board.full_scale_volts, act.board.dac_bits)
             if code == act.limit.hard_limit_code + 1 and target_volts <= act.limit.hard_limit_volts:
                 code -= 1  # rounding to the nearest code must not step over the limit
             check_targets({actuator_id: act.limit}, {actuator_id: code})
-            value = None if volts else float(raw)
+            value = None if volts else raw
             if volts:
                 try:
                     value = act.map.value_at(code_to_volts(code, act.board.full_scale_volts, act.board.dac_bits))
@@ -276,6 +288,16 @@ class Controller:
                     value = None
             out[actuator_id] = (code, value)
         return out
+
+    def _neighbour_volts(self, moving: dict[str, float]) -> dict[str, float]:
+        """Present volts of every actuator whose crosstalk acts on one of ``moving``."""
+        shares = self._crosstalk.shares
+        names = sorted({by for on in moving for by in shares.get(on, {}) if by not in moving})
+        codes = self._state.current_codes(names)
+        return {
+            n: code_to_volts(codes[n], self.actuators[n].board.full_scale_volts, self.actuators[n].board.dac_bits)
+            for n in names
+        }
 
     def check(self, values: dict[str, float], *, volts: bool = False, owner: str | None = None) -> Prepared:
         """Validate a whole request against the calibration, the limits, the claims and the
@@ -454,6 +476,17 @@ class Controller:
                 raise CalibrationError(f"calibration version '{version}': table {aid} does not fit this chip")
         return tables
 
+    def _crosstalk_of(self, version: str) -> CrosstalkShares:
+        if version == BASE_VERSION:
+            return CrosstalkShares()
+        data = self.calibrations.manifest(version).get("crosstalk")
+        return CrosstalkShares.from_data(data, set(self.actuators), f"calibration version '{version}'")
+
+    @property
+    def crosstalk(self) -> CrosstalkShares:
+        """The crosstalk shares in force (measured with the active calibration version)."""
+        return self._crosstalk
+
     def active_tables(self) -> dict[str, CalibrationTable]:
         """The table in force for every actuator."""
         return {aid: a.map.table for aid, a in self.actuators.items()}
@@ -480,8 +513,10 @@ class Controller:
         """Switch to a stored calibration version (or ``config``) atomically under a claim on the
         actuators it covers: no output moves; the next request maps through the new tables."""
         tables = self._tables_of(version)
+        crosstalk = self._crosstalk_of(version)
         async with self.claim(list(tables), owner=client or "local", purpose="calibration switch"):
             changed = self._swap_tables(tables)
+            self._crosstalk = crosstalk
             self.calibrations.set_active(version)
             self._emit("calibration_activated", client=client, version=version, changed=sorted(changed)[:32])
         return {"version": version, "activated": True, "changed": changed}

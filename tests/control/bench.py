@@ -61,7 +61,7 @@ simulator:
   phase: {{stiction_probability: 0.0, loss_db_per_rad: 0.0}}
   # an ideal chip: no fabrication spread or errors, no crosstalk, no drift
   spread: {{spring_rel: 0.0, gap_rel: 0.0, optical_gap_rel: 0.0, static_phase_span_rad: 0.0, splitting_angle_rad: 0.0}}
-  crosstalk: {{within_gate_fraction: 0.0, adjacent_gate_fraction: 0.0}}
+  crosstalk: {{within_gate_fraction: {within_gate}, adjacent_gate_fraction: 0.0}}
   drift: {{random_walk_rad_per_sqrt_s: 0.0}}
   lattice:
     modes: 2
@@ -82,6 +82,7 @@ DEFAULTS = dict(
     dwell="2 ms",
     margin=0.15,
     coupler_q=50,
+    within_gate=0.0,
 )
 
 

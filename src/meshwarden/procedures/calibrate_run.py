@@ -37,6 +37,7 @@ import numpy as np
 
 from meshwarden.calibration import CalibrationTable
 from meshwarden.claims import Claim
+from meshwarden.crosstalk import CrosstalkShares, share_from_shift
 from meshwarden.errors import (
     LimitRefused,
     MeshwardenError,
@@ -90,6 +91,7 @@ class CalibrationRun:
     outcomes: dict[str, Outcome] = field(default_factory=dict)
     frames: int = 0
     seconds: float = 0.0
+    crosstalk: dict[str, dict[str, float]] = field(default_factory=dict)  # on -> {by: share}
 
     def tables(self) -> dict[str, CalibrationTable]:
         return {a: o.table for a, o in self.outcomes.items() if o.status == "ok" and o.table is not None}
@@ -171,10 +173,17 @@ class Calibrator:
 
     # ---------------------------------------------------------------- moving and reading
 
-    async def _hold(self, volts: dict[str, float]) -> None:
-        """Every actuator at 0 V but those named; move only what changes."""
+    async def _hold(self, volts: dict[str, float], exact: tuple[str, ...] = ()) -> None:
+        """Every actuator at 0 V but those named; move only what changes. Named actuators whose
+        crosstalk this run has measured (routing couplers) get the drive that cancels their
+        neighbours' share; those in ``exact`` (the one being measured) get their volts as given."""
         target = {a: 0.0 for a in self.ctl.actuators}
         target.update(volts)
+        shares = CrosstalkShares(self.run.crosstalk)
+        if shares:
+            routing = {a: v for a, v in volts.items() if a not in exact and a in self.run.crosstalk and v > 0.0}
+            if routing:
+                target.update(shares.drive_volts(routing, target))
         changes = {a: v for a, v in target.items() if abs(self.held.get(a, math.inf) - v) > 1e-9}
         if changes:
             await self.claim.move(changes, volts=True, journal=False)
@@ -292,7 +301,7 @@ class Calibrator:
         input (upstream) or mixes back with the other output (downstream) interferes with what the
         taps should see; each such term changes sign with one of the half turns, so the mean of
         the two readings is free of them (to first order in the leak and in the half turn's
-        error). The sweep is even in the table in force's coupling ratio, with three more points
+        error). The sweep is even in the table in force's coupling ratio, with two more points
         below its first step (the flat start of a gap-closing coupler)."""
         routing = self._routing(step)
         settle = self.ctl.actuators[actuator].limit.dwell_s
@@ -311,17 +320,20 @@ class Calibrator:
             points[v] = (b, c)
 
         sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
-        for v in sorted(set(sweep) | {round(sweep[1] * f, 6) for f in (0.3, 0.6, 0.85)}):
+        for v in sorted(set(sweep) | {round(sweep[1] * f, 6) for f in (0.35, 0.7)}):
             await measure(v)
         await self._past_full_transfer(actuator, points, measure)
-        fit = self._coupler_fit(points)
+        own = self.ctl.gates[step.gate].phase
+        # Half of the readings had the own phase shifter at a half turn: its crosstalk share.
+        extra = self._own_phase_share(step.gate) * turned[own] ** 2 / len(states) if own in turned else 0.0
+        fit = self._coupler_fit(points, extra)
         full = fit.full_transfer_volts
         if full is not None:  # pin full transfer down: measure at it and halfway back to the last point below
             below = max((v for v in points if v < full), default=0.0)
             for v in (round(full, 6), round((below + full) / 2, 6)):
                 if min(abs(v - u) for u in points) > COUPLER_REFINE_FRACTION * full:
                     await measure(v)
-            fit = self._coupler_fit(points)
+            fit = self._coupler_fit(points, extra)
         verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
         outcome = self.run.outcomes[actuator]
         outcome.points, outcome.residual = fit.points_used, fit.residual_rms
@@ -331,11 +343,73 @@ class Calibrator:
         outcome.table = fit.to_calibration(actuator, self.run.version, note="measured in place: bar/cross sweep")
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
+        await self._coupler_crosstalk(step, actuator, routing, settle)
+
+    def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
+        """The actuators whose drive may act on a gate's coupler: the couplers of the gates side by
+        side with it in its column, and the gate's own phase shifter (unless a later gate meets the
+        coupler's outputs before the taps: then the phase moves the readings by interference too,
+        and the share measured on the other gates stands in for it)."""
+        column, top = self.topology.gates[step.gate]
+        beside = [g for g, (c, t) in self.topology.gates.items() if c == column and abs(t - top) == 2]
+        own = [] if self._own_phase_if_needed(step) else [self.ctl.gates[step.gate].phase]
+        return [self.ctl.gates[g].coupler for g in sorted(beside)] + own
+
+    async def _coupler_crosstalk(
+        self, step: CalibrationStep, actuator: str, routing: dict[str, float], settle: float
+    ) -> None:
+        """Measure the share of each neighbour's V^2 acting on this coupler: hold it at its split
+        (where kappa moves most with drive), read kappa with every neighbour at 0 V and with one
+        neighbour at a time driven to its top; the shift read through the fresh table is the
+        extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`). Kappa is the
+        plain ratio here: only its change counts, and the two paths' fixed transmissions scale
+        that by the same factor as the table's points (within their imbalance)."""
+        amap = self.maps[actuator]
+        low, high = amap.reachable()
+        if not low < SPLIT < high:
+            return
+        own = amap.volts_for(SPLIT)
+
+        async def kappa(extra: dict[str, float]) -> float:
+            await self._hold({**routing, actuator: own, **extra}, exact=(actuator,))
+            powers = await self._read(actuator, settle)
+            b = sum(powers[m] for m in step.bar_taps)
+            c = sum(powers[m] for m in step.cross_taps)
+            return c / (b + c) if b + c > 0 else math.nan
+
+        neighbours = [n for n in self._coupler_neighbours(step) if n not in routing and self._map(n).top_volts > 0]
+        if not neighbours:
+            return
+        base = await kappa({})
+        for neighbour in neighbours:
+            top = min(self._map(neighbour).top_volts, self.ctl.actuators[neighbour].limit.hard_limit_volts)
+            shifted = await kappa({neighbour: top})
+            value = amap.value_at(own) + (shifted - base)
+            if not (math.isfinite(value) and low < value < high):
+                continue  # moved out of the table: a wiring fault, not crosstalk; the scan will say
+            share = share_from_shift(own, amap.volts_for(value), top)
+            self.run.crosstalk.setdefault(actuator, {})[neighbour] = round(max(share, 0.0), 6)
 
     @staticmethod
-    def _coupler_fit(points: dict[float, tuple[float, float]]) -> CouplerTableFit:
+    def _coupler_fit(points: dict[float, tuple[float, float]], extra_squared: float = 0.0) -> CouplerTableFit:
+        """The angle-space fit; ``extra_squared`` (V^2) is the mean crosstalk drive the sweep's
+        readings carried, added to every point above 0 V so the table is the coupler's alone."""
         volts = sorted(points)
-        return fit_coupler_angle_table(volts, [points[v][0] for v in volts], [points[v][1] for v in volts])
+        placed = [math.sqrt(v * v + extra_squared) if v > 0 else 0.0 for v in volts]
+        return fit_coupler_angle_table(placed, [points[v][0] for v in volts], [points[v][1] for v in volts])
+
+    def _own_phase_share(self, gate: str) -> float:
+        """The share of a gate's own phase shifter's V^2 on its coupler: measured on this gate if
+        it was, else the median of the gates of this run that were (one design, one layout)."""
+        coupler, phase = self.ctl.gates[gate].coupler, self.ctl.gates[gate].phase
+        if phase in self.run.crosstalk.get(coupler, {}):
+            return self.run.crosstalk[coupler][phase]
+        measured = [
+            row[self.ctl.gates[g].phase]
+            for g in self.ctl.gates
+            if self.ctl.gates[g].phase in (row := self.run.crosstalk.get(self.ctl.gates[g].coupler, {}))
+        ]
+        return float(np.median(measured)) if measured else 0.0
 
     async def _past_full_transfer(
         self,
@@ -453,6 +527,7 @@ async def calibration_job(
         "seconds": round(run.seconds, 3),
         "client": client,
         "actuators": {a: o.as_dict() for a, o in sorted(run.outcomes.items())},
+        "crosstalk": controller.crosstalk.merged(CrosstalkShares(run.crosstalk)).as_data(),
     }
     controller.calibrations.write(version, tables, manifest)
     activated = False
