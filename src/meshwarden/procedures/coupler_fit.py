@@ -32,6 +32,8 @@ from meshwarden.procedures.inputs import (
 )
 from meshwarden.procedures.quality import GateResult, gate
 
+MAX_RESIDUAL_KAPPA = 0.01  # the gate's default: rms of measured minus fitted kappa
+
 
 def coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
     """kappa = P_cross / (P_bar + P_cross) point by point; both powers must be >= 0 with a positive sum."""
@@ -105,6 +107,8 @@ class CouplerTableFit:
     kappa_high: float
     largest_drop: float
     pooled_points: int
+    measured_kappa: tuple[float, ...] = ()  # per sweep point, as measured (the plot's points)
+    fitted_kappa: tuple[float, ...] = ()  # per point used, the monotone fit (past the top: not used)
 
     def to_calibration(self, actuator: str, version: str, note: str = "") -> CalibrationTable:
         """The table as a measured coupler calibration."""
@@ -122,6 +126,8 @@ class CouplerTableFit:
             "kappa_high": self.kappa_high,
             "largest_drop": self.largest_drop,
             "pooled_points": self.pooled_points,
+            "measured_kappa": list(self.measured_kappa),
+            "fitted_kappa": list(self.fitted_kappa),
         }
 
 
@@ -159,6 +165,8 @@ def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: 
         kappa_high=float(fitted[-1]),
         largest_drop=float(max(drops.max(initial=0.0), 0.0)),
         pooled_points=int(used - starts.size),
+        measured_kappa=tuple(float(k) for k in kappa),
+        fitted_kappa=tuple(float(k) for k in fitted),
     )
 
 
@@ -168,7 +176,7 @@ def coupler_gate(
     needed_low: float = 0.05,
     needed_high: float = 0.95,
     min_points: int = 8,
-    max_residual: float = 0.01,
+    max_residual: float = MAX_RESIDUAL_KAPPA,
     max_drop: float = 0.05,
 ) -> GateResult:
     """Whether a coupler table may be activated: enough points, small residual, the needed kappa range
