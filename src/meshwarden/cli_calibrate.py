@@ -63,12 +63,10 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
             print(f"meshwarden: calibration {job['state']}: {error.get('code', '')}: {error.get('message', '')}")
             return EXIT_REFUSED
         report: dict[str, Any] = job["result"]
-        if plt is not None:
-            _plot(plt, Path(args.plot), client.calibration(report["version"], sweeps=True))
-    if args.json:
-        print(json.dumps(report, indent=2))
-        return EXIT_OK
-    print(_report_text(report))
+        shown = client.calibration(report["version"], sweeps=True) if plt is not None else None
+    print(json.dumps(report, indent=2) if args.json else _report_text(report))
+    if shown is not None:  # after the report: a plot that cannot be written loses nothing else
+        _plot(plt, Path(args.plot), shown)
     return EXIT_OK
 
 
@@ -116,7 +114,7 @@ def _plot(plt: Any, directory: Path, shown: dict[str, Any]) -> None:
     written, notes = write_plots(plt, directory, shown)
     for note in notes:
         print(f"meshwarden: {note}", file=sys.stderr)
-    print(f"meshwarden: {len(written)} figures in {directory}", file=sys.stderr)
+    print(f"meshwarden: {len(written)} figure{'' if len(written) == 1 else 's'} in {directory}", file=sys.stderr)
 
 
 def cmd_versions(args: argparse.Namespace) -> int:
@@ -138,10 +136,10 @@ def cmd_versions(args: argparse.Namespace) -> int:
             return EXIT_OK
         if args.action == "show":
             shown = client.calibration(args.version, sweeps=plt is not None)
+            plain = {k: shown[k] for k in ("version", "active", "manifest")}  # the reply as without --plot
+            print(json.dumps(plain, indent=2) if args.json else _manifest_text(plain))
             if plt is not None:
                 _plot(plt, Path(args.plot), shown)
-                shown = {k: shown[k] for k in ("version", "active", "manifest")}  # the reply as without --plot
-            print(json.dumps(shown, indent=2) if args.json else _manifest_text(shown))
             return EXIT_OK
         result = client.activate_calibration(args.version)
         if args.json:
