@@ -5,17 +5,23 @@ Layout, beside the journal (the daemon's state folder, never the configuration's
     calibration/
       versions/cal-20261202-101500/manifest.yaml   provenance: date, method, points, residuals,
                                     c00.yaml ...   configuration hash, per-actuator outcome
+                                    sweeps.json    the measured points and fit per actuator (plots)
       active                                       the active version's name (one line)
 
 The tables the configuration names (``calibration.directory``) are the version ``config``: always
 there, never written, the one a rollback of everything returns to. A version folder is written
 once, under a temporary name, and renamed into place (atomic on POSIX), so a reader never sees a
 half-written version; nothing writes into it afterwards.
+
+The sweeps are JSON, apart from the manifest: ``calibration list`` reads every manifest, and the
+points (tens of kilobytes for a chip) would slow it for nothing. Versions written before the
+sweeps were kept have no such file: :meth:`CalibrationStore.sweeps` says ``None``.
 """
 
 from __future__ import annotations
 
 import hashlib
+import json
 import os
 import re
 from pathlib import Path
@@ -27,6 +33,8 @@ from meshwarden.calibration import CalibrationTable, dump_calibration, load_cali
 from meshwarden.errors import CalibrationError, UnknownTargetRefused
 
 BASE_VERSION = "config"
+SWEEPS_FILE = "sweeps.json"
+SWEEPS_FORMAT = "meshwarden-calibration-sweeps/1"
 _NAME = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")
 
 
@@ -52,8 +60,14 @@ class CalibrationStore:
     def exists(self, version: str) -> bool:
         return version == BASE_VERSION or (_NAME.match(version) is not None and self._folder(version).is_dir())
 
-    def write(self, version: str, tables: dict[str, CalibrationTable], manifest: dict[str, Any]) -> Path:
-        """Write a new version (refused if it exists); returns its folder."""
+    def write(
+        self,
+        version: str,
+        tables: dict[str, CalibrationTable],
+        manifest: dict[str, Any],
+        sweeps: dict[str, dict[str, Any]] | None = None,
+    ) -> Path:
+        """Write a new version (refused if it exists), with its sweeps if given; returns its folder."""
         folder = self._folder(version)
         if folder.exists():
             raise CalibrationError(f"calibration version '{version}' exists already; versions are immutable")
@@ -65,6 +79,9 @@ class CalibrationStore:
         (staging / "manifest.yaml").write_text(
             yaml.safe_dump(manifest, sort_keys=False, default_flow_style=None, width=100), encoding="utf-8"
         )
+        if sweeps is not None:
+            record = {"format": SWEEPS_FORMAT, "version": version, "actuators": sweeps}
+            (staging / SWEEPS_FILE).write_text(json.dumps(record, separators=(",", ":")), encoding="utf-8")
         os.replace(staging, folder)
         return folder
 
@@ -74,6 +91,26 @@ class CalibrationStore:
             raise UnknownTargetRefused(f"no calibration version '{version}'", target=version)
         data = yaml.safe_load(path.read_text(encoding="utf-8"))
         return data if isinstance(data, dict) else {}
+
+    def sweeps(self, version: str) -> dict[str, dict[str, Any]] | None:
+        """The measured points per actuator of a version; None when the version kept none (written
+        before sweeps were stored, or the configuration's own tables)."""
+        if version == BASE_VERSION:
+            return None
+        folder = self._folder(version)
+        if not folder.is_dir():
+            raise UnknownTargetRefused(f"no calibration version '{version}'", target=version)
+        path = folder / SWEEPS_FILE
+        if not path.exists():
+            return None
+        try:
+            record = json.loads(path.read_text(encoding="utf-8"))
+        except (OSError, ValueError) as exc:
+            raise CalibrationError(f"calibration version '{version}': {SWEEPS_FILE} cannot be read: {exc}") from None
+        actuators = record.get("actuators") if isinstance(record, dict) else None
+        if not isinstance(actuators, dict) or record.get("format") != SWEEPS_FORMAT:
+            raise CalibrationError(f"calibration version '{version}': {SWEEPS_FILE} is not {SWEEPS_FORMAT}")
+        return actuators
 
     def tables(self, version: str) -> dict[str, CalibrationTable]:
         """Every table of a version (by actuator id)."""

@@ -4,19 +4,27 @@ Calibration runs as a job in the daemon; the command starts it, follows its prog
 current actuator and an ETA on a terminal) and prints the report. Ctrl-C asks the daemon to
 stop it cooperatively: outputs stay where the last verified step left them, and no version is
 written.
+
+``--plot DIR`` (``calibrate`` and ``calibration show``) draws the version's figures into DIR
+(:mod:`meshwarden.calibration_plot`) when matplotlib is installed; without it, one line says so
+and the command does everything else as usual. What the plot adds goes to stderr, so ``--json``
+output stays one JSON document.
 """
 
 from __future__ import annotations
 
 import argparse
 import json
+import sys
 import time
 from collections.abc import Callable
+from pathlib import Path
 from typing import Any
 
-from meshwarden.cli_common import open_client
+from meshwarden.cli_common import UsageError, open_client
 from meshwarden.cli_progress import Progress
 from meshwarden.errors import MeshwardenError
+from meshwarden.lattice_plot import NO_MATPLOTLIB, load_pyplot
 
 EXIT_OK, EXIT_REFUSED, EXIT_INTERRUPTED = 0, 1, 130
 POLL_S = 0.3
@@ -29,12 +37,15 @@ def add_parsers(sub: Any, client_command: Callable[..., argparse.ArgumentParser]
     cal.add_argument("targets", nargs="*", metavar="ID", help="actuators or gates (default: the whole chip)")
     cal.add_argument("--points", type=int, help="points per sweep (12..64; default 12)")
     cal.add_argument("--no-activate", action="store_true", help="store the version but keep the tables in force")
+    cal.add_argument("--plot", metavar="DIR", help="draw sweeps and a residual map into DIR (matplotlib)")
     versions = client_command("calibration", "calibration versions: list, show VERSION, activate VERSION", cmd_versions)
     versions.add_argument("action", choices=("list", "show", "activate"))
     versions.add_argument("version", nargs="?", help="a version name (or 'config': the configuration's own tables)")
+    versions.add_argument("--plot", metavar="DIR", help="with show: draw the version's figures into DIR (matplotlib)")
 
 
 def cmd_calibrate(args: argparse.Namespace) -> int:
+    plt = _pyplot_for(args.plot)
     with open_client(args) as client:
         started = client.calibrate(args.targets or None, args.points, not args.no_activate, wait=False)
         job_id = started["job"]
@@ -47,15 +58,15 @@ def cmd_calibrate(args: argparse.Namespace) -> int:
             print(f"meshwarden: asked {job_id} to stop; outputs stay where its last step left them")
             return EXIT_INTERRUPTED
         progress.close()
-    if job["state"] != "done":
-        error = job.get("error") or {}
-        print(f"meshwarden: calibration {job['state']}: {error.get('code', '')}: {error.get('message', '')}")
-        return EXIT_REFUSED
-    report: dict[str, Any] = job["result"]
-    if args.json:
-        print(json.dumps(report, indent=2))
-        return EXIT_OK
-    print(_report_text(report))
+        if job["state"] != "done":
+            error = job.get("error") or {}
+            print(f"meshwarden: calibration {job['state']}: {error.get('code', '')}: {error.get('message', '')}")
+            return EXIT_REFUSED
+        report: dict[str, Any] = job["result"]
+        shown = client.calibration(report["version"], sweeps=True) if plt is not None else None
+    print(json.dumps(report, indent=2) if args.json else _report_text(report))
+    if shown is not None:  # after the report: a plot that cannot be written loses nothing else
+        _plot(plt, Path(args.plot), shown)
     return EXIT_OK
 
 
@@ -86,9 +97,32 @@ def _report_text(report: dict[str, Any]) -> str:
     return "\n".join(lines)
 
 
+def _pyplot_for(plot_dir: str | None) -> Any | None:
+    """pyplot when a plot was asked for and matplotlib is there; otherwise None (and the one line
+    saying why, when it was asked for)."""
+    if not plot_dir:
+        return None
+    plt = load_pyplot()
+    if plt is None:
+        print(NO_MATPLOTLIB, file=sys.stderr)
+    return plt
+
+
+def _plot(plt: Any, directory: Path, shown: dict[str, Any]) -> None:
+    from meshwarden.calibration_plot import write_plots
+
+    written, notes = write_plots(plt, directory, shown)
+    for note in notes:
+        print(f"meshwarden: {note}", file=sys.stderr)
+    print(f"meshwarden: {len(written)} figure{'' if len(written) == 1 else 's'} in {directory}", file=sys.stderr)
+
+
 def cmd_versions(args: argparse.Namespace) -> int:
     if args.action != "list" and not args.version:
         raise MeshwardenError(f"calibration {args.action} needs a VERSION (see `meshwarden calibration list`)")
+    if args.plot and args.action != "show":
+        raise UsageError(f"--plot goes with `calibration show VERSION`, not with {args.action}")
+    plt = _pyplot_for(args.plot)
     with open_client(args) as client:
         if args.action == "list":
             rows = client.calibrations()
@@ -101,8 +135,11 @@ def cmd_versions(args: argparse.Namespace) -> int:
                 print(f"{mark} {row['version']:<32} {row.get('created') or '(configuration)':<22} {counts}")
             return EXIT_OK
         if args.action == "show":
-            shown = client.calibration(args.version)
-            print(json.dumps(shown, indent=2) if args.json else _manifest_text(shown))
+            shown = client.calibration(args.version, sweeps=plt is not None)
+            plain = {k: shown[k] for k in ("version", "active", "manifest")}  # the reply as without --plot
+            print(json.dumps(plain, indent=2) if args.json else _manifest_text(plain))
+            if plt is not None:
+                _plot(plt, Path(args.plot), shown)
             return EXIT_OK
         result = client.activate_calibration(args.version)
         if args.json:

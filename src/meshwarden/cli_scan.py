@@ -20,6 +20,7 @@ from pathlib import Path
 from typing import Any
 
 from meshwarden.errors import MeshwardenError, UnreachableError
+from meshwarden.lattice_plot import NO_MATPLOTLIB, draw_lattice, load_pyplot, save_figure
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE, EXIT_UNREACHABLE = 0, 1, 2, 3
 PINNED_KEYS = ("frames", "actuators", "monitors", "changed")
@@ -192,58 +193,34 @@ def _write_report(path: Path, report: dict[str, Any]) -> None:
 
 
 def _plot(path: Path, report: dict[str, Any]) -> None:
-    try:
-        import matplotlib  # type: ignore[import-not-found, unused-ignore]
-
-        matplotlib.use("Agg")
-        import matplotlib.pyplot as plt  # type: ignore[import-not-found, unused-ignore]
-    except ImportError:
-        print(
-            "meshwarden: --plot needs matplotlib (pip install 'meshwarden[plot]'); no plot was drawn",
-            file=sys.stderr,
-        )
+    plt = load_pyplot()
+    if plt is None:
+        print(NO_MATPLOTLIB, file=sys.stderr)
         return
-    figure = draw(plt, report)
-    try:
-        figure.savefig(path)
-    except (OSError, ValueError) as exc:
-        raise MeshwardenError(f"cannot write the plot to {path}: {exc}") from None
-    finally:
-        plt.close(figure)
+    save_figure(plt, draw(plt, report), path)
 
 
 def draw(plt: Any, report: dict[str, Any]) -> Any:
     """The lattice as gates (coupler left half, phase right half) and monitors (dots), coloured by verdict."""
-    layout = report.get("layout")
     actuators, monitors = report["actuators"], report["monitors"]
-    gates = report.get("gates") or {}
+
+    def style(part: str) -> dict[str, Any]:
+        verdict = (actuators.get(part) or monitors.get(part) or {}).get("verdict", "untested")
+        return {"color": COLOURS.get(verdict, "#000000")}
+
+    def monitor_colour(monitor: str) -> str:
+        return COLOURS.get(monitors.get(monitor, {}).get("verdict", "ok"), "#000000")
+
     figure, axes = plt.subplots(figsize=(10, 6))
-    if layout:
-        for gate, (column, top) in layout["gates"].items():
-            members = gates.get(gate, {})
-            for offset, attribute in ((0.0, "coupler"), (0.4, "phase")):
-                verdict = actuators.get(members.get(attribute, ""), {}).get("verdict", "untested")
-                axes.add_patch(
-                    plt.Rectangle((column + offset, top + 0.1), 0.4, 0.8, color=COLOURS.get(verdict, "#000000"))
-                )
-            axes.text(column + 0.4, top + 0.5, gate, ha="center", va="center", fontsize=7)
-        for monitor, (after, mode) in layout["taps"].items():
-            verdict = monitors.get(monitor, {}).get("verdict", "ok")
-            axes.plot(after + 0.9, mode + 0.5, "o", color=COLOURS.get(verdict, "#000000"))
-            axes.text(after + 0.9, mode + 0.8, monitor, ha="center", fontsize=6)
-        axes.set_xlim(-0.5, max(c for c, _ in layout["gates"].values()) + 1.5)
-        axes.set_ylim(layout["modes"] + 0.5, -0.5)
-        axes.set_xlabel("column")
-        axes.set_ylabel("mode")
-    else:
-        names = list(actuators) + list(monitors)
-        width = max(1, int(len(names) ** 0.5))
-        for k, name in enumerate(names):
-            verdict = (actuators.get(name) or monitors.get(name) or {}).get("verdict", "untested")
-            axes.add_patch(plt.Rectangle((k % width, k // width), 0.9, 0.9, color=COLOURS.get(verdict, "#000000")))
-            axes.text(k % width + 0.45, k // width + 0.45, name, ha="center", va="center", fontsize=6)
-        axes.set_xlim(0, width)
-        axes.set_ylim(len(names) // width + 1, 0)
+    draw_lattice(
+        plt,
+        axes,
+        report.get("layout"),
+        report.get("gates") or {},
+        style,
+        monitor_colour,
+        unplaced=[*actuators, *monitors],
+    )
     handles = [plt.Rectangle((0, 0), 1, 1, color=c) for c in COLOURS.values()]
     axes.legend(handles, list(COLOURS), loc="upper left", bbox_to_anchor=(1.0, 1.0), fontsize=7)
     axes.set_title(f"fault scan {report.get('id', '')}")

@@ -326,9 +326,14 @@ class Client:
         result: list[dict[str, Any]] = self.request("calibrations")
         return result
 
-    def calibration(self, version: str) -> dict[str, Any]:
-        """One version's manifest: date, method, per-actuator outcome."""
-        result: dict[str, Any] = self.request("calibration_show", version=version)
+    def calibration(self, version: str, sweeps: bool = False) -> dict[str, Any]:
+        """One version's manifest: date, method, per-actuator outcome; with ``sweeps`` also its
+        measured points per actuator (``"sweeps"``, None if the version kept none) and the chip's
+        ``"layout"`` and ``"gates"`` (what ``calibrate --plot`` draws)."""
+        args: dict[str, Any] = {"version": version}
+        if sweeps:
+            args["sweeps"] = True
+        result: dict[str, Any] = self.request("calibration_show", **args)
         return result
 
     def activate_calibration(self, version: str) -> dict[str, Any]:

@@ -6,6 +6,7 @@ from __future__ import annotations
 import asyncio
 import math
 from collections.abc import Callable
+from pathlib import Path
 
 import numpy as np
 import pytest
@@ -13,7 +14,7 @@ import pytest
 from meshsim import inprocess
 from meshsim.faults import Fault
 from meshwarden.api import open_controller
-from meshwarden.calibration_store import BASE_VERSION
+from meshwarden.calibration_store import BASE_VERSION, CalibrationStore
 from meshwarden.config import Config
 from meshwarden.errors import CalibrationError, RefusedError
 from meshwarden.procedures.calibrate_run import calibration_job
@@ -155,3 +156,51 @@ def test_versions_are_immutable_and_any_can_be_activated_again(make_bench: Bench
             assert [r["version"] for r in rows] == [BASE_VERSION, version] and rows[1]["active"]
 
     run(second())
+
+
+def test_a_version_keeps_the_points_each_actuator_was_measured_at(make_bench: Bench) -> None:
+    """The version's sweeps hold, per swept actuator, the volts and what was measured there: a
+    coupler's measured kappa at each volts is the chip's own kappa there within 0.01, the points
+    the fit used are the reported points, and the stored residuals give the reported residual;
+    the unobservable phase shifter has no sweep."""
+    config, name = make_bench()
+
+    async def scenario() -> tuple[dict, dict, list[float]]:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            report = await calibration_job(ctl, activate=False)
+            sweeps = ctl.calibrations.sweeps(report["version"])
+            assert sweeps is not None
+            truth_of = {g: i for i, g in enumerate(inprocess.get(name).truth().gate_ids)}
+            errors = []
+            for volts, measured in list(zip(sweeps["c0"]["volts"], sweeps["c0"]["measured"], strict=True))[::3]:
+                await ctl.set({"c0": volts}, volts=True)
+                await asyncio.sleep(0.005)  # ringdown: tau = Q / (pi f0), tens of microseconds (standard)
+                errors.append(abs(inprocess.get(name).truth().kappa[truth_of["g0"]] - measured))
+            return report, sweeps, errors
+
+    report, sweeps, errors = run(scenario())
+    assert max(errors) <= 0.01, errors
+    assert sorted(sweeps) == ["c0", "c1", "p0"]
+    assert [sweeps[a]["quantity"] for a in ("c0", "c1", "p0")] == ["kappa", "kappa", "power_w"]
+    for actuator, sweep in sweeps.items():
+        outcome = report["actuators"][actuator]
+        used = [(m, f) for m, f in zip(sweep["measured"], sweep["fitted"], strict=True) if f is not None]
+        assert len(used) == outcome["points"] and len(sweep["volts"]) >= outcome["points"]
+        rms = math.sqrt(sum((m - f) ** 2 for m, f in used) / len(used))
+        assert rms == pytest.approx(outcome["residual"], rel=1e-3, abs=1e-12)
+    assert_rules_held(config, name)
+
+
+def test_a_version_without_a_sweeps_file_reads_as_none_and_a_broken_one_is_refused(tmp_path: Path) -> None:
+    """Versions written before sweeps were kept have none (not an error); a damaged sweeps file is a
+    calibration error naming the file; the configuration's own tables have none."""
+    store = CalibrationStore(tmp_path / "calibration")
+    store.write("cal-old", {}, {"version": "cal-old"})
+    assert store.sweeps("cal-old") is None and store.sweeps(BASE_VERSION) is None
+    store.write("cal-new", {}, {"version": "cal-new"}, sweeps={"c0": {"quantity": "kappa", "volts": [0.0]}})
+    assert store.sweeps("cal-new") == {"c0": {"quantity": "kappa", "volts": [0.0]}}
+    (store.versions_dir / "cal-new" / "sweeps.json").write_text("{not json", encoding="utf-8")
+    with pytest.raises(CalibrationError, match=r"sweeps\.json"):
+        store.sweeps("cal-new")
+    assert store.tables("cal-new") == {}  # the sweeps file is never taken for a table

@@ -46,12 +46,17 @@ from meshwarden.errors import (
     UnknownTargetRefused,
 )
 from meshwarden.mapping import ActuatorMap
-from meshwarden.procedures.coupler_fit import CouplerTableFit, coupler_gate, fit_coupler_angle_table
+from meshwarden.procedures.coupler_fit import (
+    MAX_RESIDUAL_KAPPA,
+    CouplerTableFit,
+    coupler_gate,
+    fit_coupler_angle_table,
+)
 from meshwarden.procedures.fringe import fit_fringe
 from meshwarden.procedures.interferometer import fringe_reference
 from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.order import CalibrationStep, calibration_order
-from meshwarden.procedures.phase_table import build_phase_table
+from meshwarden.procedures.phase_table import MAX_RESIDUAL_FRACTION, build_phase_table
 
 Progress = Callable[[int, int, str], None]
 DEFAULT_POINTS = 12
@@ -74,6 +79,7 @@ class Outcome:
     points: int = 0
     frames: int = 0
     table: CalibrationTable | None = None
+    sweep: dict[str, Any] | None = None  # the measured points and the fit (see :func:`sweep_record`)
 
     def as_dict(self) -> dict[str, Any]:
         return {
@@ -95,6 +101,41 @@ class CalibrationRun:
 
     def tables(self) -> dict[str, CalibrationTable]:
         return {a: o.table for a, o in self.outcomes.items() if o.status == "ok" and o.table is not None}
+
+    def sweeps(self) -> dict[str, dict[str, Any]]:
+        """The measured points of every actuator that was swept (kept with the version for plots)."""
+        return {a: o.sweep for a, o in sorted(self.outcomes.items()) if o.sweep is not None}
+
+
+def _rounded(values: Any) -> list[float | None]:
+    """Nine significant digits: a residual (a difference of two close numbers) keeps about six
+    even when the fit is a thousand times better than the data's size; half the bytes of a full
+    float. None for a missing or non-finite value (JSON has no NaN)."""
+    return [float(f"{float(v):.9g}") if v is not None and math.isfinite(v) else None for v in values]
+
+
+def sweep_record(
+    quantity: str,
+    volts: list[float],
+    measured: list[float],
+    fitted: list[float] | None = None,
+    model: dict[str, Any] | None = None,
+    residual_of_limit: float | None = None,
+) -> dict[str, Any]:
+    """One actuator's sweep as stored beside its version: the volts, the measured ``quantity``
+    (``kappa`` for a coupler; ``power_w``, the fringe taps' power, for a phase shifter), the fit's
+    value at each point (None where the fit did not use the point, or no fit was made), the fit
+    itself (a coupler's table ``{"volts", "kappa"}``, a fringe's parameters) and the residual as a
+    fraction of the limit its gate allows (1.0: at the limit)."""
+    padded = list(fitted or []) + [None] * (len(volts) - len(fitted or []))
+    return {
+        "quantity": quantity,
+        "volts": _rounded(volts),
+        "measured": _rounded(measured),
+        "fitted": _rounded(padded),
+        "model": model,
+        "residual_of_limit": None if residual_of_limit is None else float(f"{residual_of_limit:.4g}"),
+    }
 
 
 def topology_of(controller: Any) -> LatticeTopology:
@@ -334,8 +375,16 @@ class Calibrator:
                 if min(abs(v - u) for u in points) > COUPLER_REFINE_FRACTION * full:
                     await measure(v)
             fit = self._coupler_fit(points, extra)
-        verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
         outcome = self.run.outcomes[actuator]
+        outcome.sweep = sweep_record(
+            "kappa",
+            sorted(points),
+            list(fit.measured_kappa),
+            list(fit.fitted_kappa),
+            {"volts": _rounded(fit.volts), "kappa": _rounded(fit.kappa)},
+            fit.residual_rms / MAX_RESIDUAL_KAPPA,
+        )
+        verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
         outcome.points, outcome.residual = fit.points_used, fit.residual_rms
         if not verdict.ok:
             outcome.status, outcome.reason = "failed", verdict.reason
@@ -452,7 +501,10 @@ class Calibrator:
             powers = await self._read(actuator, act.limit.dwell_s)
             volts.append(v)
             power.append(sum(powers[m] for m in step.fringe_taps))
+        outcome.sweep = sweep_record("power_w", volts, power)
         fit = fit_fringe(volts, power, with_growth=True)
+        share = fit.residual_rms / fit.amplitude / MAX_RESIDUAL_FRACTION if fit.amplitude > 0 else None
+        outcome.sweep = sweep_record("power_w", volts, power, list(fit.power_at(volts)), fit.model(), share)
         table = build_phase_table(fit, hard_limit_volts=act.limit.hard_limit_volts, reference_rad=reference)
         outcome.points, outcome.residual = fit.points, fit.residual_rms
         if table.status != "ok":
@@ -529,7 +581,7 @@ async def calibration_job(
         "actuators": {a: o.as_dict() for a, o in sorted(run.outcomes.items())},
         "crosstalk": controller.crosstalk.merged(CrosstalkShares(run.crosstalk)).as_data(),
     }
-    controller.calibrations.write(version, tables, manifest)
+    controller.calibrations.write(version, tables, manifest, sweeps=run.sweeps())
     activated = False
     if activate and run.tables():
         await controller.activate_calibration(version, client=client)

@@ -35,6 +35,8 @@ from meshwarden.procedures.inputs import (
 )
 from meshwarden.procedures.quality import GateResult, gate
 
+MAX_RESIDUAL_KAPPA = 0.01  # the gate's default: rms of measured minus fitted kappa
+
 
 def coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
     """kappa = P_cross / (P_bar + P_cross) point by point; both powers must be >= 0 with a positive sum."""
@@ -108,6 +110,8 @@ class CouplerTableFit:
     kappa_high: float
     largest_drop: float
     pooled_points: int
+    measured_kappa: tuple[float, ...] = ()  # per sweep point, as measured (the plot's points)
+    fitted_kappa: tuple[float, ...] = ()  # per point used, the monotone fit (past the top: not used)
     full_transfer_volts: float | None = None
 
     def to_calibration(self, actuator: str, version: str, note: str = "") -> CalibrationTable:
@@ -126,6 +130,8 @@ class CouplerTableFit:
             "kappa_high": self.kappa_high,
             "largest_drop": self.largest_drop,
             "pooled_points": self.pooled_points,
+            "measured_kappa": list(self.measured_kappa),
+            "fitted_kappa": list(self.fitted_kappa),
             "full_transfer_volts": self.full_transfer_volts,
         }
 
@@ -164,6 +170,8 @@ def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: 
         kappa_high=float(fitted[-1]),
         largest_drop=float(max(drops.max(initial=0.0), 0.0)),
         pooled_points=int(used - starts.size),
+        measured_kappa=tuple(float(k) for k in kappa),
+        fitted_kappa=tuple(float(k) for k in fitted),
     )
 
 
@@ -173,7 +181,7 @@ def coupler_gate(
     needed_low: float = 0.05,
     needed_high: float = 0.95,
     min_points: int = 8,
-    max_residual: float = 0.01,
+    max_residual: float = MAX_RESIDUAL_KAPPA,
     max_drop: float = 0.05,
 ) -> GateResult:
     """Whether a coupler table may be activated: enough points, small residual, the needed kappa range
@@ -288,5 +296,7 @@ def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, bal
         kappa_high=float(table_kappa[keep][-1]),
         largest_drop=float(max(drops.max(initial=0.0), 0.0)),
         pooled_points=int(used - starts.size),
+        measured_kappa=tuple(float(k) for k in kappa),
+        fitted_kappa=tuple(float(k) for k in model),
         full_transfer_volts=full,
     )

@@ -46,6 +46,14 @@ def warp(u: FloatArray, growth: float) -> FloatArray:
     return np.asarray(np.expm1(growth * u) / growth)
 
 
+def fringe_power(
+    volts: Any, *, offset: float, amplitude: float, rate_rad_per_v2: float, phase0_rad: float, growth_per_v2: float
+) -> FloatArray:
+    """The model P(V) = A + B cos(phi0 + c w(V^2)) at ``volts`` (the module docstring's symbols)."""
+    u = np.asarray(volts, dtype=float) ** 2
+    return np.asarray(offset + amplitude * np.cos(phase0_rad + rate_rad_per_v2 * warp(u, growth_per_v2)))
+
+
 def _warp_dgrowth(u: FloatArray, growth: float) -> FloatArray:
     """d w / d b."""
     if abs(growth) < 1e-6:
@@ -89,7 +97,17 @@ class FringeFit:
 
     def power_at(self, volts: Any) -> FloatArray:
         """Model power at ``volts``."""
-        return np.asarray(self.offset + self.amplitude * np.cos(self.phase0_rad + self.actuated_phase(volts)))
+        return fringe_power(volts, **self.model())
+
+    def model(self) -> dict[str, float]:
+        """The fitted parameters :func:`fringe_power` takes (what a plot needs to redraw the curve)."""
+        return {
+            "offset": self.offset,
+            "amplitude": self.amplitude,
+            "rate_rad_per_v2": self.rate_rad_per_v2,
+            "phase0_rad": self.phase0_rad,
+            "growth_per_v2": self.growth_per_v2,
+        }
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""

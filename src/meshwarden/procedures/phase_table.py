@@ -39,6 +39,7 @@ from meshwarden.procedures.inputs import ProcedureInputError, non_negative, posi
 from meshwarden.procedures.quality import GateResult, gate
 
 TWO_PI = 2.0 * math.pi
+MAX_RESIDUAL_FRACTION = 0.05  # the gate's default: fringe fit rms residual over the fringe amplitude
 
 
 @dataclass(frozen=True)
@@ -118,7 +119,7 @@ def build_phase_table(
     interpolation_tol_rad: float = 1e-3,
     noise_rms: float | None = None,
     min_points: int = 12,
-    max_residual_fraction: float = 0.05,
+    max_residual_fraction: float = MAX_RESIDUAL_FRACTION,
     needed_span_rad: float = TWO_PI,
     max_phase_se_rad: float = 0.01,
     max_residual_over_noise: float = 2.0,

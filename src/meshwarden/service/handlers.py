@@ -202,8 +202,23 @@ class Dispatcher:
         version = request.args["version"]
         store = self.controller.calibrations
         if version == "config":
-            return {"version": "config", "active": store.active() == "config", "manifest": None}
-        return {"version": version, "active": store.active() == version, "manifest": store.manifest(version)}
+            shown: dict[str, Any] = {"version": "config", "active": store.active() == "config", "manifest": None}
+        else:
+            shown = {"version": version, "active": store.active() == version, "manifest": store.manifest(version)}
+        if request.args.get("sweeps", False):
+            shown.update(self._calibration_sweeps(version))
+        return shown
+
+    def _calibration_sweeps(self, version: str) -> dict[str, Any]:
+        """A version's measured points, and the chip's layout to draw them on (plots)."""
+        from meshwarden.procedures.calibrate_run import topology_of
+
+        try:
+            layout: dict[str, Any] | None = topology_of(self.controller).as_dict()
+        except RefusedError:
+            layout = None  # no chip.lattice: a plot falls back to a grid
+        gates = {g: {"coupler": gate.coupler, "phase": gate.phase} for g, gate in self.controller.gates.items()}
+        return {"sweeps": self.controller.calibrations.sweeps(version), "layout": layout, "gates": gates}
 
     async def _op_calibration_activate(self, request: Request, who: str) -> Any:
         return await self.controller.activate_calibration(request.args["version"], client=who)

@@ -59,7 +59,7 @@ OPS: dict[str, tuple[str, dict[str, tuple[tuple[type, ...], bool]]]] = {
         },
     ),
     "calibrations": ("observer", {}),
-    "calibration_show": ("observer", {"version": ((str,), True)}),
+    "calibration_show": ("observer", {"version": ((str,), True), "sweeps": ((bool,), False)}),
     "calibration_activate": ("admin", {"version": ((str,), True)}),
     "scan": ("operator", {"targets": ((list,), False), "wait": ((bool,), False)}),
     "scans": ("observer", {"limit": ((int,), False)}),
