@@ -83,6 +83,18 @@ def relay_cautions(log: Path, seen: int) -> int:
     return len(lines)
 
 
+def run_route(command: list[str]) -> str | None:
+    """Run the routing script, its output shown as it comes; the share it reports (None: it failed)."""
+    process = subprocess.Popen(command, stdout=subprocess.PIPE, text=True)
+    share = None
+    assert process.stdout is not None
+    for line in process.stdout:
+        print(line, end="", flush=True)
+        if "of the output light now leaves at mode" in line:
+            share = line.split()[0]
+    return share if process.wait() == 0 else None
+
+
 def main() -> int:
     step("check the demo configuration")
     if cli("check-config", str(CONFIG)) != 0:
@@ -137,9 +149,9 @@ def main() -> int:
         step("experiment script: route the light (scripts/route_light.py)")
         route = [sys.executable, str(REPO / "scripts" / "route_light.py"), "--endpoint", endpoint]
         route += ["--telemetry", telemetry, "--expect-token", token, "--expect-boards", EXPECTED_BOARDS]
-        result = subprocess.run(route)
-        if result.returncode != 0:
-            return result.returncode
+        before = run_route(route)
+        if before is None:
+            return 1
         ep = ["--endpoint", endpoint, "--telemetry", telemetry]
         step("calibrate the chip in place: the tables so far are design-nominal (meshwarden calibrate)")
         cli("arm", *ep)
@@ -147,9 +159,10 @@ def main() -> int:
             return 1
         cli("disarm", *ep)
         step("the same experiment with the measured tables")
-        result = subprocess.run(route)
-        if result.returncode != 0:
-            return result.returncode
+        after = run_route(route)
+        if after is None:
+            return 1
+        print(f"\nlight at the chosen output: {before} with the design-nominal tables, {after} after calibration")
 
         step("the command line against the same daemon")
         cli("status", *ep)

@@ -32,18 +32,55 @@ def gate_ids() -> list[dict[int, str]]:
     return columns
 
 
-def path_to(target_mode: int, start_mode: int = 0) -> list[str]:
-    """Gates to switch to cross so that light entering at ``start_mode`` leaves at ``target_mode``."""
-    mode, crosses = start_mode, []
-    for column in gate_ids():
-        if mode < target_mode and mode in column:
-            crosses.append(column[mode])
-            mode += 1
-        elif mode > target_mode and (mode - 1) in column:
-            crosses.append(column[mode - 1])
-            mode -= 1
-    if mode != target_mode:
+GATES = [gate for column in gate_ids() for gate in column.values()]
+
+
+def schedules(target_mode: int, start_mode: int = 0) -> list[tuple[list[str], list[str]]]:
+    """Every way through the columns from ``start_mode`` to ``target_mode``: (gates switched to
+    cross, gates the light passes in bar state). In each column the light either crosses to the
+    neighbouring mode (if a gate joins them there) or stays, in a gate at rest or in no gate."""
+    step = 1 if target_mode >= start_mode else -1
+    found: list[tuple[list[str], list[str]]] = []
+
+    def walk(column: int, mode: int, crosses: list[str], bars: list[str]) -> None:
+        if column == COLUMNS:
+            if mode == target_mode:
+                found.append((crosses, bars))
+            return
+        gates = gate_ids()[column]
+        top = mode if step > 0 else mode - 1
+        if mode != target_mode and top in gates:
+            walk(column + 1, mode + step, [*crosses, gates[top]], bars)
+        resting = gates.get(mode, gates.get(mode - 1))
+        walk(column + 1, mode, crosses, bars + ([resting] if resting else []))
+
+    walk(0, start_mode, [], [])
+    return found
+
+
+def path_to(target_mode: int, start_mode: int = 0, reachable: dict[str, list[float]] | None = None) -> list[str]:
+    """Gates to switch to cross so that light entering at ``start_mode`` leaves at ``target_mode``.
+
+    Every gate on the way loses light: a crossing one the part it cannot couple over (1 - its
+    highest kappa), a resting one the part it still couples at 0 V (its lowest kappa). With the
+    daemon's ``reachable`` ranges of the couplers (``get``), the way that keeps the most light
+    wins; without them, the way that passes the fewest resting gates."""
+    ways = schedules(target_mode, start_mode)
+    if not ways:
         raise SystemExit(f"mode {target_mode} cannot be reached from mode {start_mode} in {COLUMNS} columns")
+
+    def kept(way: tuple[list[str], list[str]]) -> float:
+        crosses, bars = way
+        if reachable is None:
+            return -float(len(bars))
+        light = 1.0
+        for gate in crosses:
+            light *= min(reachable[f"c{gate[1:]}"][1], 1.0)
+        for gate in bars:
+            light *= 1.0 - max(reachable[f"c{gate[1:]}"][0], 0.0)
+        return light
+
+    crosses, _ = max(ways, key=lambda way: (kept(way), [-int(g[1:]) for g in way[0]]))
     return crosses
 
 
@@ -127,6 +164,9 @@ def main() -> int:
                     f"route_light: not arming: the rack has no monitor {absent[0]}: not the demo chip", file=sys.stderr
                 )
                 return 2
+            reach = {a: e["reachable"] for a, e in mw.get()["actuators"].items() if "reachable" in e}
+            path = path_to(args.target, reachable=reach if all(f"c{g[1:]}" in reach for g in GATES) else None)
+            print(f"path kept by the couplers' calibrated ranges: {', '.join(path)}")
             print("caution: arming - outputs may rise to their limits; keep clear of probes and pads")
             mw.arm()
             print("armed")

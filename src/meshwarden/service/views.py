@@ -15,11 +15,14 @@ from meshwarden.controller import Controller
 
 def get_view(controller: Controller) -> dict[str, Any]:
     """The `get` reply: snapshot + ``gates`` {id: {coupler, phase}} + per-actuator
-    ``calibration_version`` and ``target`` {volts, value, calibration_version} (or null)."""
+    ``calibration_version``, ``reachable`` [lowest, highest] logical value its table in force
+    reaches within the limit (kappa, or phase in rad) and ``target`` {volts, value,
+    calibration_version} (or null)."""
     snap = controller.snapshot()
     targets = controller.journal.latest_targets()
     for aid, entry in snap["actuators"].items():
         entry["calibration_version"] = controller.actuators[aid].calibration_version
+        entry["reachable"] = list(controller.actuators[aid].map.reachable())
         record = targets.get(aid)
         entry["target"] = (
             None
