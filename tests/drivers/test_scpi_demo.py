@@ -51,7 +51,7 @@ def test_demo_routes_light_on_the_scpi_personality(tmp_path: Path) -> None:
                 assert status["boards"]["b0"]["interlock"] == "closed"
                 mw.arm()
                 before = route.outputs(mw)  # type: ignore[attr-defined]
-                path = route.path_to(5)  # type: ignore[attr-defined]
+                path = route.schedules(5)[0][0]  # type: ignore[attr-defined]  # crossing at once: g00 .. g32
                 mw.set({f"{g}.kappa": 0.99 for g in path})
                 after = route.outputs(mw)  # type: ignore[attr-defined]
                 mw.disarm()
