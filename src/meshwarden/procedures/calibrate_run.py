@@ -495,16 +495,21 @@ class Calibrator:
         if contrast < 0.2:
             outcome.status, outcome.reason = "unobservable", f"the model's fringe contrast is only {contrast:.2f}"
             return
-        volts, power = [], []
+        coupler = self.ctl.gates[step.gate].coupler
+        coupler_share = self._own_phase_share(step.gate)  # stand-in: the coupler's share on its phase
+        volts, placed, power = [], [], []
         for v in self._sweep_values(actuator):
             await self._hold({**routing, actuator: v})
             powers = await self._read(actuator, act.limit.dwell_s)
             volts.append(v)
+            # The gate's own coupler is driven (at its split) through the sweep: its share of V^2
+            # moved the phase shifter too; place each point where its drive alone would be.
+            placed.append(math.sqrt(v * v + coupler_share * self.held.get(coupler, 0.0) ** 2))
             power.append(sum(powers[m] for m in step.fringe_taps))
         outcome.sweep = sweep_record("power_w", volts, power)
-        fit = fit_fringe(volts, power, with_growth=True)
+        fit = fit_fringe(placed, power, with_growth=True)
         share = fit.residual_rms / fit.amplitude / MAX_RESIDUAL_FRACTION if fit.amplitude > 0 else None
-        outcome.sweep = sweep_record("power_w", volts, power, list(fit.power_at(volts)), fit.model(), share)
+        outcome.sweep = sweep_record("power_w", volts, power, list(fit.power_at(placed)), fit.model(), share)
         table = build_phase_table(fit, hard_limit_volts=act.limit.hard_limit_volts, reference_rad=reference)
         outcome.points, outcome.residual = fit.points, fit.residual_rms
         if table.status != "ok":
@@ -513,6 +518,8 @@ class Calibrator:
         outcome.table = table.to_calibration(actuator, self.run.version, note="measured in place: fringe sweep")
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
+        if coupler_share > 0.0:  # so that requests cancel it (meshwarden.crosstalk)
+            self.run.crosstalk.setdefault(actuator, {})[coupler] = round(coupler_share, 6)
 
 
 async def calibrate(
