@@ -47,6 +47,7 @@ from meshwarden.errors import (
 )
 from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures.coupler_fit import (
+    FOLD_ANGLE_RAD,
     MAX_RESIDUAL_KAPPA,
     CouplerTableFit,
     coupler_gate,
@@ -65,7 +66,7 @@ LIT_FRACTION_OF_ADC = 0.01  # the laser counts as on when a monitor reads above 
 SPLIT = 0.5
 COUPLER_EXTEND_FRACTION = 0.0125  # a coupler's sweep goes on above its table in steps of 1.25 % of its top volts
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
-COUPLER_REFINE_FRACTION = 0.002  # full transfer is measured unless a point already lies this close (of its volts)
+COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
 PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
 
 
@@ -163,6 +164,17 @@ def expand_targets(controller: Any, targets: list[str] | None) -> set[str]:
         else:
             raise UnknownTargetRefused(f"unknown target '{target}' (an actuator or gate id)", target=target)
     return out
+
+
+def _point_on_top(fit: CouplerTableFit, points: dict[float, tuple[float, float]]) -> bool:
+    """Whether a measured point lies within FOLD_ANGLE_RAD of full transfer (slope of the angle
+    from the table's last interval), so that the top's kappa is read, not guessed."""
+    full = fit.full_transfer_volts
+    if full is None or len(fit.volts) < 2:
+        return False
+    below = math.asin(math.sqrt(min(max(fit.kappa[-2], 0.0), 1.0)))
+    slope = (math.pi / 2 - below) / max(full - fit.volts[-2], 1e-12)
+    return any(abs(v - full) * slope < FOLD_ANGLE_RAD for v in points)
 
 
 class Calibrator:
@@ -369,12 +381,12 @@ class Calibrator:
         extra = self._own_phase_share(step.gate) * turned[own] ** 2 / len(states) if own in turned else 0.0
         fit = self._coupler_fit(points, extra)
         full = fit.full_transfer_volts
-        if full is not None:  # pin full transfer down: measure at it and halfway back to the last point below
-            below = max((v for v in points if v < full), default=0.0)
-            for v in (round(full, 6), round((below + full) / 2, 6)):
-                if min(abs(v - u) for u in points) > COUPLER_REFINE_FRACTION * full:
-                    await measure(v)
+        for _ in range(COUPLER_REFINE_ROUNDS):  # pin full transfer down: a point on it reads the top
+            if full is None or _point_on_top(fit, points):
+                break
+            await measure(round(full, 6))
             fit = self._coupler_fit(points, extra)
+            full = fit.full_transfer_volts
         outcome = self.run.outcomes[actuator]
         outcome.sweep = sweep_record(
             "kappa",

@@ -16,6 +16,7 @@ measured value.
 
 from __future__ import annotations
 
+import dataclasses
 import itertools
 import math
 from dataclasses import dataclass
@@ -113,6 +114,7 @@ class CouplerTableFit:
     measured_kappa: tuple[float, ...] = ()  # per sweep point, as measured (the plot's points)
     fitted_kappa: tuple[float, ...] = ()  # per point used, the monotone fit (past the top: not used)
     full_transfer_volts: float | None = None
+    second_input_share: float = 0.0
 
     def to_calibration(self, actuator: str, version: str, note: str = "") -> CalibrationTable:
         """The table as a measured coupler calibration."""
@@ -133,6 +135,7 @@ class CouplerTableFit:
             "measured_kappa": list(self.measured_kappa),
             "fitted_kappa": list(self.fitted_kappa),
             "full_transfer_volts": self.full_transfer_volts,
+            "second_input_share": self.second_input_share,
         }
 
 
@@ -210,6 +213,10 @@ def coupler_gate(
 
 HALF_PI = math.pi / 2
 TABLE_STEPS_PER_INTERVAL = 4  # table points per measured interval, from the fit in angle space
+FOLD_ANGLE_RAD = 0.05  # a point this close to full transfer reads its kappa within 0.0025 of the top
+CLEARLY_SMOOTHER = 0.5
+TOP_NOISE = 0.005  # how far above 1 - r the highest reading may lie (noise)
+MAX_SECOND_INPUT_SHARE = 0.2  # more light than this in the other input is a routing fault, not a leak
 
 
 def unfold_coupling_angle(kappa: Any, volts: Any = None) -> tuple[FloatArray, int]:
@@ -250,13 +257,62 @@ def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, bal
     table is sin^2 of a monotone cubic (PCHIP, Fritsch & Carlson, SIAM J. Numer. Anal. 17:238,
     1980) through the pooled angles, sampled densely, up to where theta reaches pi/2: full
     transfer, located between the measured points on either side of it. A sweep that never
-    passes the top ends at its last point, like :func:`fit_coupler_table`."""
+    passes the top ends at its last point, like :func:`fit_coupler_table`.
+
+    Light in the coupler's other input too (a share r of the two, leaked into it by gates at
+    rest upstream) reads as kappa_measured = r + (1 - 2 r) kappa: at full transfer that light
+    leaves at the bar port, so the ratio tops out at 1 - r. When the sweep crosses full transfer,
+    r is found (:func:`second_input_share`) and taken out (``second_input_share`` of the fit)."""
     v = float_vector("volts", volts, min_length=2)
     kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
     same_length("volts", v, "bar_power", kappa)
     strictly_increasing("volts", v)
     if v[0] < 0:
         raise ProcedureInputError("volts must be >= 0")
+    fit = _fit_angles(v, kappa)
+    if fit.full_transfer_volts is None:
+        return fit
+    share = second_input_share(v, kappa)
+    if share == 0.0:
+        return fit
+    corrected = np.clip((kappa - share) / (1.0 - 2.0 * share), 0.0, 1.0)
+    return dataclasses.replace(_fit_angles(v, corrected), second_input_share=share)
+
+
+def second_input_share(volts: Any, kappa: Any) -> float:
+    """The share r of light in a coupler's other input, from a sweep across full transfer.
+
+    Measured ratios are r + (1 - 2 r) kappa; only the right r makes the unfolded angle a smooth
+    curve through pi/2 (a wrong one folds the top flat below or clips it above). Each r on a grid
+    of 0.002 is tried, up to what the highest reading allows (it is at most 1 - r, within
+    TOP_NOISE); the one whose unfolded angles above kappa 0.3 (five at least) a quadratic in V
+    fits best wins, if it fits clearly better than r = 0 (rms below CLEARLY_SMOOTHER of it).
+    0 when fewer than two points lie on each side of the top."""
+    v = float_vector("volts", volts, min_length=2)
+    k = float_vector("kappa", kappa, min_length=2)
+    top = int(np.argmax(k))
+    if top < 2 or k.size - top < 3:
+        return 0.0
+    best, best_rms, plain = 0.0, math.inf, math.inf
+    ceiling = min(MAX_SECOND_INPUT_SHARE, 1.0 - float(k[top]) + TOP_NOISE)  # the top reads 1 - r at most
+    for r in np.arange(0.0, ceiling + 1e-12, 0.002):
+        corrected = np.clip((k - r) / (1.0 - 2.0 * r), 0.0, 1.0)
+        theta, used = unfold_coupling_angle(corrected, v)
+        upper = [i for i in range(used) if corrected[i] > 0.3]
+        if len(upper) < 5:
+            continue
+        coefficients = np.polyfit(v[upper], theta[upper], 2)
+        rms = float(np.sqrt(np.mean((np.polyval(coefficients, v[upper]) - theta[upper]) ** 2)))
+        if r == 0.0:
+            plain = rms
+        if rms < best_rms - 1e-12:
+            best, best_rms = float(r), rms
+    # A share is taken only where it makes the curve clearly smoother than none does.
+    return best if best_rms < CLEARLY_SMOOTHER * plain else 0.0
+
+
+def _fit_angles(v: FloatArray, kappa: FloatArray) -> CouplerTableFit:
+    """The angle-space fit of :func:`fit_coupler_angle_table` on ratios already made."""
     theta, used = unfold_coupling_angle(kappa, v)
     weights = np.maximum(np.sin(2 * theta) ** 2, 0.05)
     fitted = isotonic_increasing(theta, weights)
