@@ -67,6 +67,7 @@ SPLIT = 0.5
 COUPLER_EXTEND_FRACTION = 0.0125  # a coupler's sweep goes on above its table in steps of 1.25 % of its top volts
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
+PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
 PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
 
 
@@ -405,6 +406,9 @@ class Calibrator:
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
         await self._coupler_crosstalk(step, actuator, routing, settle)
+        own_phase = self.ctl.gates[step.gate].phase
+        if own_phase not in self.run.crosstalk.get(actuator, {}) and (stand_in := self._own_phase_share(step.gate)):
+            self.run.crosstalk.setdefault(actuator, {})[own_phase] = round(stand_in, 6)  # other gates' median
 
     def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
         """The actuators whose drive may act on a gate's coupler: the couplers of the gates side by
@@ -424,32 +428,50 @@ class Calibrator:
         neighbour at a time driven to its top; the shift read through the fresh table is the
         extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`). Kappa is the
         plain ratio here: only its change counts, and the two paths' fixed transmissions scale
-        that by the same factor as the table's points (within their imbalance)."""
+        that by the same factor as the table's points (within their imbalance). For the gate's
+        own phase shifter, only the port off its arm counts (:meth:`_phase_arm_port`)."""
         amap = self.maps[actuator]
         low, high = amap.reachable()
         if not low < SPLIT < high:
             return
         own = amap.volts_for(SPLIT)
 
-        async def kappa(extra: dict[str, float]) -> float:
+        async def ports(extra: dict[str, float]) -> tuple[float, float]:
             await self._hold({**routing, actuator: own, **extra}, exact=(actuator,))
             powers = await self._read(actuator, settle)
-            b = sum(powers[m] for m in step.bar_taps)
-            c = sum(powers[m] for m in step.cross_taps)
-            return c / (b + c) if b + c > 0 else math.nan
+            return sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps)
 
         neighbours = [n for n in self._coupler_neighbours(step) if n not in routing and self._map(n).top_volts > 0]
         if not neighbours:
             return
-        base = await kappa({})
+        b0, c0 = await ports({})
+        if not b0 + c0 > 0:
+            return
+        arm = self._phase_arm_port(step)
         for neighbour in neighbours:
             top = min(self._map(neighbour).top_volts, self.ctl.actuators[neighbour].limit.hard_limit_volts)
-            shifted = await kappa({neighbour: top})
-            value = amap.value_at(own) + (shifted - base)
+            b1, c1 = await ports({neighbour: top})
+            if neighbour == self.ctl.gates[step.gate].phase and arm == "bar":
+                shifted = c1 / (b0 + c0)  # the driven arm's own loss dims the bar port: use the other
+            elif neighbour == self.ctl.gates[step.gate].phase and arm == "cross":
+                shifted = 1.0 - b1 / (b0 + c0)
+            else:
+                shifted = c1 / (b1 + c1) if b1 + c1 > 0 else math.nan
+            value = amap.value_at(own) + (shifted - c0 / (b0 + c0))
             if not (math.isfinite(value) and low < value < high):
                 continue  # moved out of the table: a wiring fault, not crosstalk; the scan will say
             share = share_from_shift(own, amap.volts_for(value), top)
             self.run.crosstalk.setdefault(actuator, {})[neighbour] = round(max(share, 0.0), 6)
+
+    def _phase_arm_port(self, step: CalibrationStep) -> str | None:
+        """Which port's taps see the gate's phase arm (its top mode): "bar", "cross" or None.
+        Driving a phase shifter dims its own arm a little (its loss grows with the phase), which a
+        ratio would read as coupling; the other port, against the total before, does not."""
+        top = self.topology.gates[step.gate][1]
+        for port, taps in (("bar", step.bar_taps), ("cross", step.cross_taps)):
+            if taps and all(self.topology.taps[m][1] == top for m in taps):
+                return port
+        return None
 
     @staticmethod
     def _coupler_fit(points: dict[float, tuple[float, float]], extra_squared: float = 0.0) -> CouplerTableFit:
@@ -510,7 +532,10 @@ class Calibrator:
         coupler = self.ctl.gates[step.gate].coupler
         coupler_share = self._own_phase_share(step.gate)  # stand-in: the coupler's share on its phase
         volts, placed, power = [], [], []
-        for v in self._sweep_values(actuator):
+        sweep = self._sweep_values(actuator)
+        # Even in phase, a sweep's first step spans most of the volts (the phase grows ever faster):
+        # two points inside it pin the fit's shape there, where the table is used too.
+        for v in sorted(set(sweep) | {round(sweep[1] * f, 6) for f in PHASE_LOW_FRACTIONS}):
             await self._hold({**routing, actuator: v})
             powers = await self._read(actuator, act.limit.dwell_s)
             volts.append(v)
