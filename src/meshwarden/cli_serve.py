@@ -12,6 +12,7 @@ from meshwarden.config.model import Config
 from meshwarden.errors import ConfigError, MeshwardenError
 
 EXIT_OK, EXIT_USAGE = 0, 2
+SWITCH_INTERVAL_S = 0.0005  # see cmd_serve: how long a waiting thread may wait for the interpreter
 
 
 def _say(text: str) -> None:
@@ -91,6 +92,10 @@ def cmd_serve(args: argparse.Namespace) -> int:
     def ready(bus: object) -> None:
         _say(f"meshwarden: serving commands on {bus.bound}, telemetry on {bus.pub_bound}")  # type: ignore[attr-defined]
 
+    # The event loop shares the interpreter with a thread per board: a thread that wants the
+    # interpreter waits up to one switch interval (5 ms by default) for whoever holds it. A
+    # shorter one bounds how long an emergency stop waits behind board work.
+    sys.setswitchinterval(SWITCH_INTERVAL_S)
     try:
         asyncio.run(
             serve(

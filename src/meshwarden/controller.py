@@ -20,6 +20,7 @@ and says why.
 from __future__ import annotations
 
 import asyncio
+import functools
 import math
 import time
 from collections.abc import AsyncIterator, Callable
@@ -236,10 +237,16 @@ class Controller:
         zeroed = [a for a, act in self.actuators.items() if outcome.get(act.board.id) == "zero"]
         for aid in zeroed:
             self.actuators[aid].value = None
-        # queued, not awaited: an emergency stop never waits on the disk
-        self.journal.record_targets_async([self._state.record(a, 0, None) for a in zeroed], None, client)
+        # queued, not awaited: an emergency stop never waits on the disk (nor builds the rows)
+        now = time.time()
+        self.journal.record_targets_async(
+            (self._state.record(a, 0, None, now) for a in zeroed), None, client, lazy=True
+        )
         self._emit("estop", client=client, reason=reason, boards=outcome)
-        self.log.warning("emergency stop", reason=reason, boards=outcome)
+        # The log line waits its turn: a slow console or log file must not delay the reply.
+        asyncio.get_running_loop().call_soon(
+            functools.partial(self.log.warning, "emergency stop", reason=reason, boards=outcome)
+        )
         return outcome
 
     # ------------------------------------------------------------------ requests

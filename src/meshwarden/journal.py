@@ -74,7 +74,7 @@ class EventRecord:
     client: str | None
 
 
-_Statement = tuple[str, list[tuple[Any, ...]]]
+_Statement = tuple[str, Iterable[tuple[Any, ...]]]
 _STOP = object()
 GROUP_MAX = 512  # statements committed in one transaction at most
 
@@ -166,7 +166,7 @@ class Journal:
             if stop:
                 return
 
-    def _submit(self, sql: str, rows: list[tuple[Any, ...]], wait: bool) -> Future[None]:
+    def _submit(self, sql: str, rows: Iterable[tuple[Any, ...]], wait: bool) -> Future[None]:
         future: Future[None] = Future()
         if self._closed:
             future.set_exception(RuntimeError("the journal is closed"))
@@ -192,14 +192,21 @@ class Journal:
     )
 
     def record_targets_async(
-        self, rows: Iterable[TargetRecord], request: str | None = None, client: str | None = None
+        self,
+        rows: Iterable[TargetRecord],
+        request: str | None = None,
+        client: str | None = None,
+        *,
+        lazy: bool = False,
     ) -> Future[None]:
-        """Queue targets; the future completes once they are committed and synced."""
-        values = [
+        """Queue targets; the future completes once they are committed and synced. ``lazy``: the
+        rows are produced by the writer thread as it stores them (an emergency stop hands over a
+        generator rather than build hundreds of records before it replies)."""
+        values = (
             (r.ts, r.actuator, r.board, r.channel, r.volts, r.code, r.value, r.calibration_version, request, client)
             for r in rows
-        ]
-        return self._submit(self._TARGETS_SQL, values, wait=True)
+        )
+        return self._submit(self._TARGETS_SQL, values if lazy else list(values), wait=True)
 
     def record_targets(
         self, rows: Iterable[TargetRecord], request: str | None = None, client: str | None = None
