@@ -205,8 +205,8 @@ def _step_writer(
                 wait = max(wait, driver.written_at(ch) + dwell_s - time.monotonic())
         if wait > MAX_WORKER_WAIT_S:
             raise LimitRefused(f"board {driver.config.id}: a step came {wait:.3f} s before its dwell ended")
-        if wait > 0:
-            time.sleep(wait)
+        if wait > 0 and driver.abort.wait(wait):  # an emergency stop queued meanwhile goes first
+            raise AbortedError(f"board {driver.config.id}: step dropped by an emergency stop", board=driver.config.id)
         return [driver.write_codes(first, codes) for first, codes in _runs(channels)]
 
     return write
