@@ -236,11 +236,15 @@ def bench_bus(repeats: int) -> dict[str, float]:
         daemon.wait(timeout=20)
     telemetry = bench_telemetry()
     rack768 = bench_rack768(baseline)
+    floor = bench_floor(repeats)
+    irreducible = baseline + floor["journal_commit_fsync_us"] * 1e-6 + floor["board_transaction_us"] * 1e-6
     return {
         **rack768,
+        **floor,
         "baseline_raw_zmq_echo_us": baseline * 1e6,
         "set_one_actuator_us": single * 1e6,
         "set_one_actuator_ratio": single / baseline,
+        "set_one_actuator_ratio_to_its_floor": single / irreducible,
         "set_whole_chip_120_actuators_us": whole * 1e6,
         "set_whole_chip_ratio": whole / baseline,
         "monitors_read_48_us": reads * 1e6,
@@ -253,6 +257,58 @@ def bench_bus(repeats: int) -> dict[str, float]:
         "daemon_rss_growth_during_requests_ratio": rss_end / rss_start,
         **telemetry,
     }
+
+
+def bench_floor(repeats: int) -> dict[str, float]:
+    """What a `set` cannot do without, measured on this machine: one durable journal commit (an
+    SQLite WAL commit with synchronous=FULL, fsynced, in the journal's folder) and one board
+    transaction (a one-channel write with its readback, on the board's own thread, in process).
+    A set waits for the first before it does the second; the raw echo is the third part."""
+    import asyncio
+    import dataclasses
+    import sqlite3
+    import tempfile
+
+    from meshwarden.api import open_controller
+    from meshwarden.config import load_config
+
+    folder = REPO / "var"
+    folder.mkdir(exist_ok=True)
+    with tempfile.TemporaryDirectory(dir=folder) as tmp:
+        db = sqlite3.connect(Path(tmp) / "floor.sqlite", isolation_level=None)
+        db.execute("PRAGMA journal_mode=WAL")
+        db.execute("PRAGMA synchronous=FULL")
+        db.execute("CREATE TABLE t (a, b, c, d, e, f, g, h, i, j)")
+        row = iter(range(10**9))
+
+        def commit() -> object:
+            db.execute("BEGIN IMMEDIATE")
+            db.execute("INSERT INTO t VALUES (?,?,?,?,?,?,?,?,?,?)", (next(row),) * 10)
+            return db.execute("COMMIT")
+
+        fsync = median_wall_seconds(commit, repeats)
+        db.close()
+
+        config = load_config(REPO / "config" / "demo.yaml")
+        config = dataclasses.replace(config, journal=dataclasses.replace(config.journal, path=Path(tmp) / "j.sqlite"))
+
+        async def transactions() -> float:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set({"c00": 1.0}, volts=True)
+                code = ctl.describe("c00")["code"]
+                channel = ctl.actuators["c00"].config.output.index
+
+                def on_board(driver: Any) -> float:
+                    step = iter(range(10**9))
+                    return median_wall_seconds(lambda: driver.write_codes(channel, (code + next(step) % 2,)), repeats)
+
+                board = await ctl._state.rack.call(ctl.actuators["c00"].board.id, on_board)
+                await ctl.disarm()
+                return board
+
+        board = asyncio.run(transactions())
+    return {"journal_commit_fsync_us": fsync * 1e6, "board_transaction_us": board * 1e6}
 
 
 def write_rack768(folder: Path) -> Path:

@@ -77,6 +77,7 @@ class EventRecord:
 _Statement = tuple[str, Iterable[tuple[Any, ...]]]
 _STOP = object()
 GROUP_MAX = 512  # statements committed in one transaction at most
+EVENT_LINGER_S = 0.002  # a batch of events alone waits this long for company before its commit
 
 
 def _make_private(path: Path) -> None:
@@ -142,7 +143,14 @@ class Journal:
                 try:
                     batch.append(self._queue.get_nowait())
                 except queue.Empty:
-                    break
+                    if any(fut is not None for _, fut in batch):
+                        break  # someone waits: commit now
+                    # Only events so far: linger a moment, so that the targets a request is
+                    # about to queue share their commit (one fsync, not two in a row).
+                    try:
+                        batch.append(self._queue.get(timeout=EVENT_LINGER_S))
+                    except queue.Empty:
+                        break
             stop = any(it is _STOP for it, _ in batch)
             statements: list[_Statement] = [it for it, _ in batch if isinstance(it, tuple)]
             error: BaseException | None = None
