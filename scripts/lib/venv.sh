@@ -1,4 +1,5 @@
-# Sourced by scripts/*: create or reuse .venv and install the project with its test extras.
+# Sourced by scripts/*: create or reuse .venv and install the project with its test extras (and the
+# fast telemetry encoder, so that the tests cover both encoders and the bench measures the fast one).
 # Re-installs only when pyproject.toml changed since the last install (a stamp in .venv).
 set -euo pipefail
 
@@ -28,7 +29,7 @@ WANT="$(cat "$ROOT/pyproject.toml" | sha256sum | cut -d' ' -f1)"
 if [ ! -f "$STAMP" ] || [ "$(cat "$STAMP")" != "$WANT" ]; then
   echo "installing meshwarden and its test tools into $VENV" >&2
   "$VENV/bin/python" -m pip install --quiet --disable-pip-version-check --upgrade pip >&2
-  "$VENV/bin/python" -m pip install --quiet --disable-pip-version-check -e "$ROOT[test]" >&2
+  "$VENV/bin/python" -m pip install --quiet --disable-pip-version-check -e "$ROOT[test,fast]" >&2
   echo "$WANT" > "$STAMP"
 fi
 

@@ -12,12 +12,13 @@ updates older than it.
 from __future__ import annotations
 
 import contextlib
-import json
 import time
 from typing import Any
 
 import zmq
 import zmq.asyncio
+
+from meshwarden.service.encoding import dumps
 
 TOPICS = ("state", "monitors", "event", "job", "heartbeat", "scan", "lock")
 
@@ -38,7 +39,5 @@ class Telemetry:
         if self.socket is not None and not self.socket.closed:
             # zmq.Again at the high-water mark: subscribers see the gap in seq
             with contextlib.suppress(zmq.Again, zmq.ZMQError):
-                await self.socket.send_multipart(
-                    [topic.encode(), json.dumps(message, allow_nan=False, default=str).encode()], flags=zmq.NOBLOCK
-                )
+                await self.socket.send_multipart([topic.encode(), dumps(message)], flags=zmq.NOBLOCK)
         return self.seq
