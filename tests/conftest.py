@@ -16,6 +16,19 @@ from pathlib import Path
 import pytest
 
 REPO = Path(__file__).resolve().parents[1]
+
+
+def route_light_script() -> object:
+    """scripts/route_light.py as a module (the example experiment script: its path planning)."""
+    import importlib.util
+
+    spec = importlib.util.spec_from_file_location("route_light", REPO / "scripts" / "route_light.py")
+    assert spec is not None and spec.loader is not None
+    module = importlib.util.module_from_spec(spec)
+    spec.loader.exec_module(module)
+    return module
+
+
 DEMO_CONFIG = REPO / "config" / "demo.yaml"
 
 

@@ -4,7 +4,6 @@ crosstalk, phase-dependent loss) on a seed of its own, checked against the simul
 from __future__ import annotations
 
 import asyncio
-import importlib.util
 import shutil
 from pathlib import Path
 
@@ -16,19 +15,11 @@ from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.procedures.calibrate_run import calibration_job
 from meshwarden.writelog import check_board_log
+from tests.conftest import REPO, route_light_script
 from tests.control.conftest import run
 
-REPO = Path(__file__).resolve().parents[2]
 SEED = 4242  # not the demo's: the procedure was not tuned to this chip
 RACK = "caldemo"
-
-
-def _route_light() -> object:
-    spec = importlib.util.spec_from_file_location("route_light", REPO / "scripts" / "route_light.py")
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def _demo_chip(folder: Path) -> Path:
@@ -62,7 +53,7 @@ def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
     land within 0.02 rad; the route the calibrated ranges choose puts at least 95 % of the light at
     the chosen output (the truth's own tap powers); every write kept the rules."""
     config = load_config(_demo_chip(tmp_path))
-    route = _route_light()
+    route = route_light_script()
     rng = np.random.default_rng(9)
 
     async def scenario() -> tuple[dict, list[float], list[float], float]:

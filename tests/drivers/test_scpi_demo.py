@@ -4,23 +4,14 @@ example experiment's steps through the client library."""
 
 from __future__ import annotations
 
-import importlib.util
 from pathlib import Path
 
 from meshwarden.client import Client
-from tests.conftest import REPO
+from tests.conftest import REPO, route_light_script
 from tests.service.daemon import start_daemon
 from tests.sim.test_transports import start_server, stop_server
 
 DEMO_SCPI = REPO / "config" / "demo-scpi.yaml"
-
-
-def _route_light() -> object:
-    spec = importlib.util.spec_from_file_location("route_light", REPO / "scripts" / "route_light.py")
-    assert spec is not None and spec.loader is not None
-    module = importlib.util.module_from_spec(spec)
-    spec.loader.exec_module(module)
-    return module
 
 
 def _local_copy(tmp_path: Path) -> Path:
@@ -40,7 +31,7 @@ def _local_copy(tmp_path: Path) -> Path:
 def test_demo_routes_light_on_the_scpi_personality(tmp_path: Path) -> None:
     """Arm, switch the gates on the path to output mode 5 to cross in one request, read the
     output monitors: most of the light leaves at mode 5; the interlock is reported closed."""
-    route = _route_light()
+    route = route_light_script()
     config = _local_copy(tmp_path)
     sim, ports = start_server(tmp_path, "pty", config=config)
     try:

@@ -139,6 +139,17 @@ class CouplerTableFit:
         }
 
 
+def _sweep_ratios(volts: Any, bar_power: Any, cross_power: Any, balance: bool) -> tuple[FloatArray, FloatArray]:
+    """A sweep's volts (checked: ascending, from >= 0) and its kappa per point."""
+    v = float_vector("volts", volts, min_length=2)
+    kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
+    same_length("volts", v, "bar_power", kappa)
+    strictly_increasing("volts", v)
+    if v[0] < 0:
+        raise ProcedureInputError("volts must be >= 0")
+    return v, kappa
+
+
 def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: bool = False) -> CouplerTableFit:
     """Monotone kappa(V) from a sweep (volts ascending) of bar and cross powers.
 
@@ -146,12 +157,7 @@ def fit_coupler_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: 
     ``largest_drop`` the largest fall of raw kappa from one point to the next (noise, or a
     non-monotone device); ``pooled_points`` how many points the monotone fit had to merge.
     """
-    v = float_vector("volts", volts, min_length=2)
-    kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
-    same_length("volts", v, "bar_power", kappa)
-    strictly_increasing("volts", v)
-    if v[0] < 0:
-        raise ProcedureInputError("volts must be >= 0")
+    v, kappa = _sweep_ratios(volts, bar_power, cross_power, balance)
     # Past the top (full transfer) the curve falls: keep the sweep up to its highest measured kappa.
     used = int(np.argmax(kappa)) + 1
     fitted = isotonic_increasing(kappa[:used])
@@ -263,12 +269,7 @@ def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, bal
     rest upstream) reads as kappa_measured = r + (1 - 2 r) kappa: at full transfer that light
     leaves at the bar port, so the ratio tops out at 1 - r. When the sweep crosses full transfer,
     r is found (:func:`second_input_share`) and taken out (``second_input_share`` of the fit)."""
-    v = float_vector("volts", volts, min_length=2)
-    kappa = balanced_coupling_ratio(bar_power, cross_power) if balance else coupling_ratio(bar_power, cross_power)
-    same_length("volts", v, "bar_power", kappa)
-    strictly_increasing("volts", v)
-    if v[0] < 0:
-        raise ProcedureInputError("volts must be >= 0")
+    v, kappa = _sweep_ratios(volts, bar_power, cross_power, balance)
     fit = _fit_angles(v, kappa)
     if fit.full_transfer_volts is None:
         return fit
