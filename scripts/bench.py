@@ -831,10 +831,6 @@ def main() -> None:
         "--lock-seconds", type=float, default=20.0, help="simulated seconds the eight locks hold (600: ten minutes)"
     )
     parser.add_argument("--lock-time-scale", type=float, default=1.0, help="simulated time per wall second")
-    parser.add_argument(
-        "--lock-seconds", type=float, default=20.0, help="simulated seconds the eight locks hold (600: ten minutes)"
-    )
-    parser.add_argument("--lock-time-scale", type=float, default=1.0, help="simulated time per wall second")
     parser.add_argument("--hostile", type=int, default=100_000, help="hostile messages to send (default 100,000)")
     args = parser.parse_args()
     results: dict[str, object] = {
