@@ -77,3 +77,13 @@ def test_a_built_wheel_serves_the_demo_with_its_journal_in_the_user_folder(tmp_p
     assert proc.returncode == 0, text
     assert "serving the DEMO on a simulated rack" in text and str(site / "meshwarden" / "demo_config") in text
     assert (tmp_path / "data" / "meshwarden" / "demo-journal.sqlite").exists()
+
+
+def test_the_benchmark_script_starts() -> None:
+    """scripts/bench.py builds its command line (its options parse, --help exits 0): the README's
+    performance figures come from it."""
+    result = subprocess.run(
+        [sys.executable, str(REPO / "scripts" / "bench.py"), "--help"], capture_output=True, text=True, timeout=60
+    )
+    assert result.returncode == 0, result.stderr
+    assert "--only" in result.stdout
