@@ -39,27 +39,37 @@ import numpy as np
 from meshwarden.controller import Controller
 from meshwarden.errors import MeshwardenError, RefusedError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
-from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
+from meshwarden.procedures.designs import PerturbationDesign, drift_robust, estimate_responses, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.scan_attribution import (
+    amplitude_of,
+    angle_step,
+    crosstalk_bounds,
+    estimate_share,
+    least_sigmas,
+)
 from meshwarden.procedures.scan_paths import (
+    Cone,
+    conservation_cone,
     expected_effect,
     gate_setting,
     incoherent_powers,
     lit_monitors,
+    neighbours,
     sight,
+    swing_taps,
     upstream_of,
 )
 from meshwarden.procedures.verdicts import (
     Verdict,
     actuator_verdict,
+    conserved_light_check,
     dark_monitor_verdict,
     detector_noise_a,
     monitor_verdict,
-    noise_threshold,
 )
 
 FAULTY = ("no_response", "driver_fault", "drifted")
-FROZEN_LSBS = 20.0  # a neighbour's change that a live monitor sharing its light could not hide: common practice
 
 
 @dataclass(frozen=True)
@@ -72,13 +82,17 @@ class ScanSettings:
     phase_step_rad: float = 0.01
     rest_frames: int = 8
     optical_noise_rel: float = 0.01  # lit light wanders this much over the rest frames (drift, laser noise)
-    second_look_factor: float = 10.0  # a suspect's second look steps this many times further, for one frame
+    second_look_factor: float = 30.0  # a suspect's second look steps this many times further, for one frame
     integration_s: float = 1e-3
     temperature_k: float = 300.0
     sense_noise_volts: float = 0.005
     dark_current_a: float = 0.0  # the dark level assumed where no unlit monitor shows it
     k_sigma: float = 5.0
     false_alarm: float = 1e-6
+    # the largest share of a neighbouring electrode's V^2 that acts on an actuator (a bound on the chip layout's
+    # crosstalk; the response a stuck actuator's step can borrow from its neighbours is judged against it)
+    crosstalk_share_max: float = 0.05
+    loss_floor: float = 0.5  # the least share of conserved light a tap receives (paths differ by < 3 dB)
 
 
 @dataclass
@@ -126,6 +140,17 @@ def _volts(controller: Controller, aid: str, code: int) -> float:
 def _code(controller: Controller, aid: str, volts: float) -> int:
     board = controller.actuators[aid].board
     return volts_to_code(volts, board.full_scale_volts, board.dac_bits)
+
+
+LOOK_SPREAD = math.sqrt(14.0 / 9.0)  # a look's change over one frame's noise: y - (2 a + b) / 3 or y - (a + 2 b) / 3
+LOOK_DEPTH = 2  # couplers tried before a doubtful monitor's tap: the last on its mode, and the one before
+DRIFT_TERMS = 2  # Legendre drift terms fitted with the design where the frames leave room (degrees 1 and 2)
+
+
+def _design(actuators: int) -> PerturbationDesign:
+    """The S-matrix design in drift-robust order, with as many drift terms as its spare frames allow (up to 2)."""
+    plain = s_matrix_design(actuators)
+    return drift_robust(plain, min(DRIFT_TERMS, plain.frames - 1 - actuators))
 
 
 def _choose_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> None:
@@ -211,6 +236,7 @@ async def run_scan(
             attribute = "kappa"
         plans[aid] = _Plan(aid, gate, attribute, code0, _volts(controller, aid, code0))
     settings_of = _gate_settings(controller)
+    near = _neighbour_ids(controller, topology, plans)
     for plan in plans.values():
         if plan.gate is None:
             plan.reason = "it belongs to no gate"
@@ -222,7 +248,7 @@ async def run_scan(
         plan.reason = unseen or plan.reason
     optical = [a for a in tested if not plans[a].reason]
     sense_only = [a for a in tested if plans[a].reason and plans[a].step_volts != 0.0]
-    design = s_matrix_design(len(optical)) if optical else None
+    design = _design(len(optical)) if optical else None
 
     frames: list[dict[str, float]] = []
     rest: list[dict[str, float]] = []
@@ -238,6 +264,15 @@ async def run_scan(
     final_codes: dict[str, int] = {}
     second_look: dict[str, dict[str, float]] = {}
     big_value: dict[str, float] = {}
+    big_dv2: dict[str, float] = {}
+    half_look: dict[str, dict[str, float]] = {}
+    half_value: dict[str, float] = {}
+    half_dv2: dict[str, float] = {}
+
+    def act_value(aid: str, volts: float) -> float:
+        act = controller.actuators[aid]
+        return float(act.map.value_at(volts) - act.map.value_at(plans[aid].volts0))
+
     extra_frames = 0
     stopped: str | None = None
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
@@ -290,24 +325,42 @@ async def run_scan(
                     frames,
                     design,
                     optical,
+                    near=near,
                     blame=False,
                 )
-                suspects = [a for a in optical if first["actuators"][a]["verdict"] == "no_response"]
-                for group in _groups(suspects, plans):
+                suspects = [a for a in optical if _suspect(first["actuators"][a])]
+                footprint = {a: _footprint(plans, near, a) for a in suspects}
+                for cone_gate in {g for gates in first["monitor_looks"].values() for g in gates}:
+                    # couplers whose move tests a doubtful monitor
+                    coupler = controller.gates[cone_gate].coupler
+                    monitors_of = set(first["cones"][cone_gate])
+                    footprint[coupler] = footprint.get(coupler, set()) | monitors_of | _footprint(plans, near, coupler)
+                for group in _groups(footprint):
                     _check(control)
                     big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings) for a in group}
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
                     # rest, stepped, rest again: the light drifts meanwhile, and a straight drift cancels
+                    # rest, half way, all the way, rest again: two sizes of step leave a working actuator no operating
+                    # point where both show nothing; the light drifts meanwhile, and a straight drift cancels
+                    halfway = {
+                        a: _volts(controller, a, _code(controller, a, (v + plans[a].volts0) / 2))
+                        for a, v in big.items()
+                    }
                     before = await frame({}, monitors=True, sense=False) or {}
+                    middle = await frame(halfway, monitors=True) or {}
                     after = await frame(big, monitors=True) or {}
                     back = await frame({a: plans[a].volts0 for a in big}, monitors=True, sense=False) or {}
-                    extra_frames += 3
+                    extra_frames += 4
                     for aid in big:
-                        second_look[aid] = {m: after[m] - (before[m] + back[m]) / 2 for m in after}
+                        second_look[aid] = {m: after[m] - (before[m] + 2 * back[m]) / 3 for m in after}
+                        half_look[aid] = {m: middle[m] - (2 * before[m] + back[m]) / 3 for m in middle}
+                        half_value[aid] = act_value(aid, halfway[aid])
+                        half_dv2[aid] = halfway[aid] ** 2 - plans[aid].volts0 ** 2
                         act = controller.actuators[aid]
                         big_value[aid] = act.map.value_at(big[aid]) - act.map.value_at(plans[aid].volts0)
+                        big_dv2[aid] = big[aid] ** 2 - plans[aid].volts0 ** 2
             if sense_only:
                 _check(control)
                 await frame({a: plans[a].volts0 + plans[a].step_volts for a in sense_only}, monitors=False)
@@ -337,7 +390,12 @@ async def run_scan(
         second_look,
         big_value,
         earlier,
+        near=near,
+        big_dv2=big_dv2,
+        half_look=(half_look, half_value, half_dv2),
     )
+    report.pop("monitor_looks")
+    report.pop("cones")
     report["frames"] = len(rest) + len(frames) + extra_frames
     report["outputs_restored"] = restored
     report["actuators_tested"] = len(tested)
@@ -359,18 +417,52 @@ def _big_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> fl
     return trial.step_volts
 
 
-def _groups(suspects: list[str], plans: dict[str, _Plan]) -> list[list[str]]:
-    """Suspects that no monitor sees in common share a second-look frame."""
+def _suspect(verdict: dict[str, Any]) -> bool:
+    """No response, or one that crosstalk from its neighbours could explain: a larger step may tell."""
+    return verdict["verdict"] == "no_response" or (
+        verdict["verdict"] == "unobservable" and "crosstalk_bound" in verdict["evidence"]
+    )
+
+
+def _neighbour_ids(
+    controller: Controller, topology: LatticeTopology | None, plans: dict[str, _Plan]
+) -> dict[str, list[str]]:
+    """Each actuator's electrode neighbours (:func:`.scan_paths.neighbours`) among the tested ones."""
+    if topology is None:
+        return {}
+    out: dict[str, list[str]] = {}
+    for aid, plan in plans.items():
+        if plan.gate is None:
+            continue
+        ids = []
+        for gate, attribute in neighbours(topology, plan.gate, plan.attribute):
+            g = controller.gates.get(gate)
+            other = None if g is None else (g.coupler if attribute == "kappa" else g.phase)
+            if other is not None and other in plans:
+                ids.append(other)
+        out[aid] = ids
+    return out
+
+
+def _footprint(plans: dict[str, _Plan], near: dict[str, list[str]], aid: str) -> set[str]:
+    """The monitors a step of ``aid`` can move: its own and, through crosstalk, its neighbours'."""
+    seen = set(plans[aid].seen_by or ())
+    for other in near.get(aid, []):
+        seen |= set(plans[other].seen_by or ())
+    return seen
+
+
+def _groups(footprints: dict[str, set[str]]) -> list[list[str]]:
+    """Actuators whose steps can move no monitor in common share a second-look frame."""
     groups: list[tuple[list[str], set[str]]] = []
-    for aid in suspects:
-        seen = set(plans[aid].seen_by or ())
+    for aid, seen in footprints.items():
         for members, monitors in groups:
             if seen and not seen & monitors:
                 members.append(aid)
                 monitors |= seen
                 break
         else:
-            groups.append(([aid], seen))
+            groups.append(([aid], set(seen)))
     return [members for members, _ in groups]
 
 
@@ -425,6 +517,9 @@ def _judge(
     big_value_step: dict[str, float] | None = None,
     earlier: dict[str, Any] | None = None,
     *,
+    near: dict[str, list[str]] | None = None,
+    big_dv2: dict[str, float] | None = None,
+    half_look: tuple[dict[str, dict[str, float]], dict[str, float], dict[str, float]] | None = None,
     blame: bool = True,
 ) -> dict[str, Any]:
     monitors = {m.id: m for m in controller.config.chip.monitors}
@@ -434,23 +529,31 @@ def _judge(
     noise = {
         m: _monitor_noise(controller, settings, float(rest_a[:, i].mean()), monitors[m]) for i, m in enumerate(names)
     }
+    looks = second_look or {}
 
     # responses (amps per design step) and their standard errors, actuators x monitors
     responses = np.zeros((len(optical), len(names)))
     se = np.ones((len(optical), len(names)))
     sigma = np.array([noise[m][0] for m in names])
-    short_sigma = _frame_sigma(rest_a, None, None, None, None, list(sigma))  # back-to-back frames: no drift
+    # a look's frames, like the design's, are spaced by moves and their dwell: the light drifts between them as it
+    # does between design frames, so a look is judged by the design's per-frame noise (rest frames, taken back to
+    # back, see less of the drift)
+    look_sigma = _frame_sigma(rest_a, None, None, None, None, list(sigma))
     if design is not None:
         responses, rest_level = estimate_responses(design, frame_a, 1.0)
         factors = np.sqrt(design.variance_factors())
         sigma = _frame_sigma(rest_a, frame_a, design, responses, rest_level, [noise[m][0] for m in names])
         se = np.outer(factors, sigma)
-    significant = np.abs(responses) >= settings.k_sigma * se
-    samples = rest_a.shape[0]
-    quiet = [
-        samples < 2 or float(rest_a[:, i].std(ddof=1)) <= noise_threshold(noise[m][0], samples, settings.false_alarm)
-        for i, m in enumerate(names)
+        look_sigma = sigma
+    # what each actuator's step could borrow from its neighbours through crosstalk (amps per V^2 of its own step)
+    dv2 = [(plans[a].volts0 + plans[a].step_volts) ** 2 - plans[a].volts0 ** 2 for a in optical]
+    index = {a: j for j, a in enumerate(optical)}
+    shares = _crosstalk_shares(plans, optical, near or {}, names, responses, se, dv2, settings)
+    near_index = [
+        [(index[n], shares[plans[a].gate == plans[n].gate][0]) for n in (near or {}).get(a, []) if n in index]
+        for a in optical
     ]
+    borrowed = crosstalk_bounds(responses, se, dv2, near_index, settings.k_sigma)
 
     # monitors
     lit = lit_monitors(topology, settings_of) if topology is not None else None
@@ -468,47 +571,98 @@ def _judge(
         dark_source = "the configured dark current"
     weak, scale = _weakly_lit(controller, topology, lit, names, rest_a, dark_ref, noise, settings)
     kappas = _kappas(controller)
+    above_dark = {m: max(float(rest_a[:, i].mean() - dark_ref.mean()), 0.0) for i, m in enumerate(names)}
+    dark_noise = {m: _monitor_noise(controller, settings, float(dark_ref.mean()), monitors[m])[0] for m in names}
+    # a monitor whose readings sit at the dark level, or never left one ADC step, is in doubt: dead, frozen, or
+    # just dim; only light it should have seen move can tell (a look at the coupler before its tap)
+    doubtful = set()
+    for i, m in enumerate(names):
+        if m in dark_verdicts or topology is None:
+            continue
+        readings = np.concatenate([rest_a[:, i], frame_a[:, i]]) if frames else rest_a[:, i]
+        at_dark = float(rest_a[:, i].mean() - dark_ref.mean()) < settings.k_sigma * dark_noise[m]
+        saturated = float(readings.max()) >= 0.98 * full_scale[m]
+        if not saturated and (at_dark or float(readings.max() - readings.min()) <= noise[m][1]):
+            doubtful.add(m)
+    cones: dict[str, list[Cone]] = {}
+    for m in sorted(doubtful):
+        if topology is None:
+            break
+        found = [conservation_cone(topology, m, depth) for depth in range(LOOK_DEPTH)]
+        cones[m] = [c for c in found if c.gate] or found[:1]
+    monitor_looks = {
+        m: [
+            c.gate
+            for c in found
+            if not c.reason and c.gate in controller.gates and controller.gates[c.gate].coupler in plans
+        ]
+        for m, found in cones.items()
+    }
+    # a look's change (one reading minus the mean of two) is off by less than one ADC step from rounding, plus k
+    # sigma of the noise that is not rounding: the detector's shot and resistor noise, or what the rest frames show
+    bandwidth = 1.0 / (2.0 * settings.integration_s)
+    unrounded = [
+        max(
+            detector_noise_a(
+                max(float(rest_a[:, i].mean()), 0.0),
+                0.0,
+                bandwidth,
+                monitors[m].transimpedance_ohms,
+                settings.temperature_k,
+            ),
+            float(np.sqrt(np.mean(np.diff(rest_a[:, i]) ** 2) / 2.0)) if rest_a.shape[0] >= 3 else 0.0,
+            _residual_sigma(design, frame_a[:, i]),
+        )
+        for i, m in enumerate(names)
+    ]
+    # (rounding bound, k sigma of the rest): bounds add, independent noises add in quadrature
+    uncertainty = {m: (noise[m][1], settings.k_sigma * LOOK_SPREAD * unrounded[i]) for i, m in enumerate(names)}
     monitor_out: dict[str, Verdict] = {}
     for i, m in enumerate(names):
+        level = float(rest_a[:, i].mean())
+        lit_noise = math.hypot(noise[m][0], settings.optical_noise_rel * level)
         if m in dark_verdicts:
             monitor_out[m] = dark_verdicts[m]
             continue
-        if m in weak:
-            level = float(rest_a[:, i].mean())
-            monitor_out[m] = dark_monitor_verdict(
-                dark_a=rest_a[:, i],
-                full_scale_a=full_scale[m],
-                dark_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * level),
-                false_alarm=settings.false_alarm,
-                unlit_reason="too little light is expected here (light summed in power) to test it for dead or frozen",
-            )
-            continue
-        if lit is None and rest_a[:, i].mean() - dark_ref.mean() < settings.k_sigma * noise[m][0]:
+        if lit is None and level - dark_ref.mean() < settings.k_sigma * noise[m][0]:
             monitor_out[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
             continue
-        # frozen needs evidence: an actuator this monitor should see moved another quiet monitor that sees it too
-        watchers = [j for j, a in enumerate(optical) if m in (plans[optical[j]].seen_by or ())]
-        # ... by several of this monitor's LSBs (light shared between outputs moves both by similar amounts)
-        neighbours = any(
-            significant[j, k] and abs(responses[j, k]) >= FROZEN_LSBS * noise[m][1]
-            for j in watchers
-            for k, other in enumerate(names)
-            if k != i and quiet[k] and other in (plans[optical[j]].seen_by or ())
-        )
-        dark_noise, lsb = _monitor_noise(controller, settings, float(dark_ref.mean()), monitors[m])
-        monitor_out[m] = monitor_verdict(
+        plain = monitor_verdict(
             dark_a=dark_ref if dark_ref.size >= 2 else np.repeat(dark_ref, 2),
             lit_a=rest_a[:, i],
             frame_levels_a=frame_a[:, i] if frames else rest_a[:, i],
             full_scale_a=full_scale[m],
-            dark_noise_a=dark_noise,
-            lit_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * float(rest_a[:, i].mean())),
-            neighbours_changed=neighbours,
-            adc_lsb_a=lsb,
+            dark_noise_a=dark_noise[m],
+            lit_noise_a=lit_noise,
+            neighbours_changed=False,
+            adc_lsb_a=noise[m][1],
             k_sigma=settings.k_sigma,
             false_alarm=settings.false_alarm,
         )
-    usable = {m for m, v in monitor_out.items() if v.verdict == "ok" and (lit is None or m in lit) and m not in weak}
+        if m not in doubtful or plain.verdict == "saturated":
+            monitor_out[m] = plain
+            continue
+        monitor_out[m] = _doubtful_monitor(
+            m,
+            rest_a[:, i],
+            full_scale[m],
+            lit_noise,
+            settings,
+            cones.get(m),
+            looks,
+            controller,
+            monitors,
+            doubtful,
+            uncertainty,
+            level - float(dark_ref.mean()) < settings.k_sigma * dark_noise[m],
+        )
+    usable = {
+        m
+        for m, v in monitor_out.items()
+        if v.verdict == "ok" and (lit is None or m in lit) and m not in weak and m not in doubtful
+    }
+
+    trusted = {m for m, v in monitor_out.items() if v.verdict == "ok" and not v.reason}  # judged, and fully
 
     # actuators
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
@@ -533,7 +687,11 @@ def _judge(
             why = "every monitor that can see it is faulty or dim" if plan.seen_by else "no healthy lit monitor"
             actuator_out[aid] = common(unobservable_reason=why)
             continue
-        best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
+        own_xt = borrowed[j] * abs(dv2[j])  # the most its step could move each monitor through its neighbours
+        best = max(candidates, key=lambda k: (abs(responses[j, k]) - own_xt[k]) / se[j, k])
+        if abs(responses[j, best]) - own_xt[best] < settings.k_sigma * se[j, best]:
+            # nothing clear of its neighbours' crosstalk: judge where it moved the light most
+            best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
         before = (earlier or {}).get(aid, {})
         predicted = None
         if before.get("verdict") == "ok" and before.get("monitor") in names:
@@ -542,18 +700,43 @@ def _judge(
                 best = names.index(before["monitor"])  # judged where it was seen last time, against what it did
                 predicted = float(before["evidence"]["response"])
         seen_at[aid] = names[best]
-        verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]), predicted=predicted)
+        verdict = common(
+            response=float(responses[j, best]),
+            response_se=float(se[j, best]),
+            predicted=predicted,
+            crosstalk_bound=float(own_xt[best]),
+        )
         evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
-        look = (second_look or {}).get(aid)
+        look = looks.get(aid)
         verdict = Verdict(verdict.verdict, verdict.reason, evidence)
-        if verdict.verdict == "no_response" and look is not None:
-            moved = max(abs(look[names[k]]) / (math.sqrt(1.5) * short_sigma[k]) for k in candidates)
+        doubted = verdict.verdict == "no_response" or (
+            verdict.verdict == "unobservable" and "crosstalk_bound" in evidence
+        )
+        if doubted and look is not None:
+            halves, _, half_dv2s = half_look or ({}, {}, {})
+            pairs = [(look, abs((big_dv2 or {}).get(aid, 0.0)))]
+            if aid in halves:
+                pairs.append((halves[aid], abs(half_dv2s.get(aid, 0.0))))
+            moved = max(
+                (abs(seen[names[k]]) - borrowed[j, k] * dv2_look) / (LOOK_SPREAD * look_sigma[k])
+                for seen, dv2_look in pairs
+                for k in candidates
+            )
             evidence["second_look_sigmas"] = moved
             if moved >= settings.k_sigma:
                 verdict = Verdict(
                     "ok",
                     f"no first-order response here (its operating point sits near an extremum of its effect), but a "
-                    f"larger step moved the light by {moved:.3g} sigma: it works",
+                    f"larger step moved the light by {moved:.3g} sigma beyond what its neighbours' crosstalk could: "
+                    "it works",
+                    evidence,
+                )
+            raw = max(abs(seen[names[k]]) / (LOOK_SPREAD * look_sigma[k]) for seen, _ in pairs for k in candidates)
+            if verdict.verdict == "no_response" and raw >= settings.k_sigma:
+                verdict = Verdict(
+                    "unobservable",
+                    f"its larger step moved the light by {raw:.3g} sigma, but no more than its neighbours could "
+                    "through crosstalk: it cannot be told from a stuck one",
                     evidence,
                 )
         if verdict.verdict == "no_response" and topology is None:
@@ -563,23 +746,39 @@ def _judge(
                 "monitor sees",
                 evidence,
             )
-        elif verdict.verdict == "no_response" and topology is not None and scale is not None:
-            # would a working actuator have shown? (generous, power-summed estimate of its effect)
+        elif (
+            verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None
+        ):
+            # would a working actuator have shown? Its first look showed nothing, so if it works its operating point
+            # sits at an extremum, where only the second look's second-order change shows (generous estimate)
             effect = expected_effect(topology, kappas, str(plan.gate), plan.attribute)
-            big = abs((big_value_step or {}).get(aid, 0.0))
-            visible = max(
-                max(
-                    scale * effect.get(names[k], 0.0) * abs(plan.value_step) / se[j, k],
-                    scale * effect.get(names[k], 0.0) * big / (math.sqrt(1.5) * short_sigma[k]),
+            big = (big_value_step or {}).get(aid)
+            visible = 0.0
+            if big is not None:
+                kappa = kappas.get(str(plan.gate))
+                halves, half_values, _ = half_look or ({}, {}, {})
+                steps = (angle_step(plan.attribute, plan.value_step, kappa), angle_step(plan.attribute, big, kappa))
+                half = angle_step(plan.attribute, half_values.get(aid, 0.0), kappa) if aid in halves else None
+                visible = max(
+                    least_sigmas(
+                        min(
+                            amplitude_of(plan.attribute, scale * effect.get(names[k], 0.0), kappa),
+                            _swing_cap(topology, kappas, plan, names[k], above_dark, monitors, trusted),
+                        ),
+                        # crosstalk adds to a working actuator's change in proportion to its V^2 step, while its own
+                        # change at the least favourable operating point grows as the square of the step: the two
+                        # cannot cancel in both looks at once, so nothing is taken off here
+                        [(steps[0], 0.0, se[j, k]), (steps[1], 0.0, LOOK_SPREAD * look_sigma[k])]
+                        + ([] if half is None else [(half, 0.0, LOOK_SPREAD * look_sigma[k])]),
+                    )
+                    for k in candidates
                 )
-                for k in candidates
-            )
             evidence["expected_sigmas"] = visible
             if visible < DETECTABLE * settings.k_sigma:
                 verdict = Verdict(
                     "unobservable",
-                    f"a working actuator would show at most {visible:.3g} sigma here: too little light meets it to "
-                    "tell",
+                    f"at the least favourable operating point a working actuator would show only {visible:.3g} sigma "
+                    "in its two looks: too little light meets it to tell",
                     evidence,
                 )
         actuator_out[aid] = verdict
@@ -593,11 +792,155 @@ def _judge(
         "design": {"kind": design.kind if design else "none", "actuators": len(optical)},
         "dark_reference": dark_source,
         "topology": topology is not None,
+        "crosstalk_share": {
+            "within_gate": {"bound": shares[True][0], "measured_from": shares[True][1]},
+            "between_gates": {"bound": shares[False][0], "measured_from": shares[False][1]},
+        },
+        "monitor_looks": monitor_looks,
+        "cones": {
+            c.gate: sorted(c.monitors) for m, found in cones.items() for c in found if c.gate in monitor_looks[m]
+        },
     }
 
 
-DETECTABLE = 10.0  # a no_response needs a working actuator's expected effect at this many detection limits
-WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to call a monitor dead
+def _crosstalk_shares(
+    plans: dict[str, _Plan],
+    optical: list[str],
+    near: dict[str, list[str]],
+    names: list[str],
+    responses: Any,
+    se: Any,
+    dv2: list[float],
+    settings: ScanSettings,
+) -> dict[bool, tuple[float, int]]:
+    """The crosstalk share bound within a gate (True) and between gates (False), with how many readings measured
+    it: the upper k-sigma bound of :func:`.scan_attribution.estimate_share`, never above the configured bound
+    ``crosstalk_share_max``, which stands where nothing measures it (0 readings)."""
+    index = {a: j for j, a in enumerate(optical)}
+    pairs: dict[bool, list[tuple[int, int, int]]] = {True: [], False: []}
+    for a in optical:
+        own = plans[a].seen_by
+        if own is None:
+            continue
+        for n in near.get(a, []):
+            if n not in index or plans[n].seen_by is None:
+                continue
+            within = plans[a].gate == plans[n].gate
+            exclusive = frozenset(plans[n].seen_by or ()) - own
+            pairs[within] += [(index[a], index[n], k) for k, m in enumerate(names) if m in exclusive]
+    out = {}
+    for within, found in pairs.items():
+        estimate = estimate_share(responses, se, dv2, found, settings.k_sigma) if found else None
+        if estimate is None:
+            out[within] = (settings.crosstalk_share_max, 0)
+        else:
+            out[within] = (min(estimate.upper(settings.k_sigma), settings.crosstalk_share_max), estimate.samples)
+    return out
+
+
+def _swing_cap(
+    topology: LatticeTopology,
+    kappas: dict[str, float | None],
+    plan: _Plan,
+    monitor: str,
+    above_dark: dict[str, float],
+    monitors: dict[str, Any],
+    trusted: set[str],
+) -> float:
+    """The most a step of ``plan``'s actuator can change ``monitor`` (amps): half the light the taps it moves light
+    among hold together (a reading swings between 0 and all of it), from what they read; inf where unknown."""
+    spot = topology.taps.get(monitor)
+    if spot is None or plan.gate is None:
+        return math.inf
+    taps = swing_taps(topology, kappas, plan.gate, plan.attribute, spot[0])
+    if taps is None or monitor not in taps or not taps <= trusted:
+        return math.inf  # a tap that may be faulty could hide light
+    watts = sum(above_dark[t] / monitors[t].responsivity_a_per_w for t in taps)
+    return float(0.5 * watts * monitors[monitor].responsivity_a_per_w)
+
+
+def _doubtful_monitor(
+    m: str,
+    readings: Any,
+    full_scale_a: float,
+    lit_noise_a: float,
+    settings: ScanSettings,
+    cones: list[Cone] | None,
+    looks: dict[str, dict[str, float]],
+    controller: Controller,
+    monitors: dict[str, Any],
+    doubtful: set[str],
+    uncertainty: dict[str, tuple[float, float]],
+    at_dark: bool,
+) -> Verdict:
+    """A monitor at its dark level or with unchanging readings: dead or frozen only if light it should share
+    with other taps moved there and not here (:func:`.verdicts.conserved_light_check`); else saturation and noise.
+
+    Up to ``LOOK_DEPTH`` couplers before its tap are tried: a reading that followed any of them is alive."""
+
+    def untestable(why: str) -> Verdict:
+        return dark_monitor_verdict(
+            dark_a=readings,
+            full_scale_a=full_scale_a,
+            dark_noise_a=lit_noise_a,
+            false_alarm=settings.false_alarm,
+            unlit_reason=f"{why}, so it could not be tested for dead or frozen",
+        )
+
+    if cones is None:
+        return untestable("without the lattice topology no light can be predicted here")
+    why = "no coupler before its tap could be moved"
+    results: list[tuple[str, str, dict[str, float]]] = []
+    for cone in cones:
+        coupler = controller.gates[cone.gate].coupler if cone.gate in controller.gates else ""
+        look = looks.get(coupler)
+        others = sorted(cone.monitors - {m})
+        if cone.reason or look is None:
+            why = cone.reason or f"the coupler {coupler} before its tap could not be moved"
+            continue
+        if any(o in doubtful for o in others):
+            why = f"the taps sharing its light ({', '.join(others)}) are in doubt too"
+            continue
+        watts = {o: 1.0 / monitors[o].responsivity_a_per_w for o in others}
+        state, evidence = conserved_light_check(
+            own_change_a=look[m],
+            own_uncertainty_a=sum(uncertainty[m]),
+            others_change_w=sum(look[o] * watts[o] for o in others),
+            others_uncertainty_w=sum(uncertainty[o][0] * watts[o] for o in others)
+            + math.sqrt(sum((uncertainty[o][1] * watts[o]) ** 2 for o in others)),
+            responsivity_a_per_w=monitors[m].responsivity_a_per_w,
+            loss_floor=settings.loss_floor,
+        )
+        results.append((state, coupler, evidence))
+    if not results:
+        return untestable(why)
+    base = untestable("too little light moved here when the couplers before it moved")
+    state, coupler, evidence = next(
+        (r for wanted in ("moved", "missed") for r in results if r[0] == wanted), results[0]
+    )
+    evidence = base.evidence | evidence
+    if state == "moved":
+        return Verdict(base.verdict, "" if base.verdict == "ok" else base.reason, evidence)
+    if state == "missed":
+        least = evidence["look_least_expected_a"]
+        if at_dark:
+            return Verdict(
+                "dead",
+                f"it reads its dark level and did not follow a move of {coupler} that must have changed its light by "
+                f"at least {least:.3g} A (what the taps sharing that light lost or gained)",
+                evidence,
+            )
+        return Verdict(
+            "frozen",
+            f"its reading did not change while a move of {coupler} must have changed its light by at least "
+            f"{least:.3g} A (what the taps sharing that light lost or gained)",
+            evidence,
+        )
+    return Verdict(base.verdict, base.reason, evidence)
+
+
+DETECTABLE = 2.0  # a no_response needs a working actuator to show at least this many detection limits, anywhere
+WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to judge an actuator by
 
 
 def _weakly_lit(
@@ -627,6 +970,16 @@ def _weakly_lit(
     return {m for m in lit if scale * expected.get(m, 0.0) < WEAK_LIGHT * settings.k_sigma * noise[m][0]}, scale
 
 
+def _residual_sigma(design: PerturbationDesign | None, levels: Any) -> float:
+    """The rms residual of one monitor's design frames about the fit (0 where too few spare frames): drift and noise
+    on the time scale of frames with moves between them."""
+    if design is None or design.spare < 4 or len(levels) != design.frames:
+        return 0.0
+    x = design.regressors()
+    coef, *_ = np.linalg.lstsq(x, levels, rcond=None)
+    return float(np.sqrt(np.sum((levels - x @ coef) ** 2) / design.spare))
+
+
 def _frame_sigma(
     rest_a: Any, frame_a: Any, design: PerturbationDesign | None, responses: Any, rest_level: Any, model: list[float]
 ) -> Any:
@@ -639,10 +992,11 @@ def _frame_sigma(
     sigma = np.asarray(model, dtype=float)
     if rest_a.shape[0] >= 3:
         sigma = np.maximum(sigma, np.sqrt(np.mean(np.diff(rest_a, axis=0) ** 2, axis=0) / 2.0))
-    dof = design.frames - 1 - design.actuators if design is not None else 0
+    dof = design.spare if design is not None else 0
     if design is not None and dof >= 4:
-        fitted = rest_level + design.matrix() @ responses
-        sigma = np.maximum(sigma, np.sqrt(np.sum((frame_a - fitted) ** 2, axis=0) / dof))
+        x = design.regressors()
+        coef, *_ = np.linalg.lstsq(x, frame_a, rcond=None)
+        sigma = np.maximum(sigma, np.sqrt(np.sum((frame_a - x @ coef) ** 2, axis=0) / dof))
     return sigma
 
 
