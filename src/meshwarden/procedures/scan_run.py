@@ -576,6 +576,7 @@ def _judge(
     # a monitor whose readings sit at the dark level, or never left one ADC step, is in doubt: dead, frozen, or
     # just dim; only light it should have seen move can tell (a look at the coupler before its tap)
     doubtful = set()
+    darkish = set()  # doubtful and reading no light: dead unless a look showed it alive
     for i, m in enumerate(names):
         if m in dark_verdicts or topology is None:
             continue
@@ -584,6 +585,8 @@ def _judge(
         saturated = float(readings.max()) >= 0.98 * full_scale[m]
         if not saturated and (at_dark or float(readings.max() - readings.min()) <= noise[m][1]):
             doubtful.add(m)
+            if at_dark:
+                darkish.add(m)
     cones: dict[str, list[Cone]] = {}
     for m in sorted(doubtful):
         if topology is None:
@@ -659,7 +662,10 @@ def _judge(
     usable = {
         m
         for m, v in monitor_out.items()
-        if v.verdict == "ok" and (lit is None or m in lit) and m not in weak and m not in doubtful
+        if v.verdict == "ok"
+        and (lit is None or m in lit)
+        and m not in weak
+        and not (m in darkish and v.reason)  # a dark reading no look proved alive shows nothing
     }
 
     trusted = {m for m, v in monitor_out.items() if v.verdict == "ok" and not v.reason}  # judged, and fully
