@@ -28,6 +28,7 @@ from meshwarden.procedures.scan_paths import (
     neighbours,
     sight,
     swing_taps,
+    unmixed,
     upstream_of,
 )
 from meshwarden.procedures.scan_run import ScanControl, ScanSettings, run_scan
@@ -471,3 +472,46 @@ def test_actuators_on_a_board_that_cannot_be_used_are_untested(tmp_path: Path) -
     assert {v["verdict"] for v in report["actuators"].values()} == {"untested"}
     assert report["actuators"]["a0c"]["reason"] == "its board cannot be read"
     assert writes == 0
+
+
+def _mode_powers(topology: LatticeTopology, kappas: dict[str, float], phases: dict[str, float], before: int) -> Any:
+    """Power in every mode before column ``before`` (the coherent field model above, light in the input modes)."""
+    field = np.zeros(topology.modes, dtype=complex)
+    field[list(topology.input_modes)] = 1.0
+    for column in range(before):
+        for gate, (col, top) in topology.gates.items():
+            if col == column:
+                k = kappas[gate]
+                matrix = np.array([[math.sqrt(1 - k), 1j * math.sqrt(k)], [1j * math.sqrt(k), math.sqrt(1 - k)]])
+                field[top : top + 2] = matrix @ field[top : top + 2]
+                field[top] *= np.exp(1j * phases[gate])
+    return np.abs(field) ** 2
+
+
+@pytest.mark.parametrize(
+    ("gate", "attribute", "mixer", "expected"),
+    [
+        ("g15", "kappa", "g15", True),
+        ("g23", "kappa", "g23", False),
+        ("g00", "phase", "g15", True),
+        ("g38", "phase", "g45", False),
+    ],
+)
+def test_unmixed_light_does_not_depend_on_any_phase(gate: str, attribute: str, mixer: str, expected: bool) -> None:
+    """Where the scan calls the light at a coupler unmixed, the power on its inputs stays put whatever every phase
+    of the demo lattice is (a gate with one lit input splits power by its ratio alone); where light has interfered
+    it moves with the phases (coherent field model above, light entering mode 0 only)."""
+    topology = _demo_topology()
+    split = {g: "split" for g in topology.gates}
+    assert unmixed(topology, split, gate, attribute) is expected
+    column, top = topology.gates[mixer]
+    rng = np.random.default_rng(8)
+    kappas = {g: float(rng.uniform(0.2, 0.8)) for g in topology.gates}
+    seen = [
+        _mode_powers(topology, kappas, {g: float(rng.uniform(0, 2 * np.pi)) for g in topology.gates}, column)[
+            [top, top + 1]
+        ]
+        for _ in range(5)
+    ]
+    spread = float(np.ptp(np.array(seen), axis=0).max())
+    assert (spread < 1e-12) is expected

@@ -342,3 +342,40 @@ def swing_taps(
     if any(not topology.taps_at(after, k) for k in modes):
         return None
     return frozenset(m for m, (a, k) in topology.taps.items() if a == after and k in modes)
+
+
+def unmixed(topology: LatticeTopology, settings: Mapping[str, str], gate: str, attribute: str) -> bool:
+    """Whether the light entering the coupler where ``gate``'s ``attribute`` shows (its own coupler; for a phase,
+    the coupler where its arm meets other light) has met no other light on its way: every gate it passed had one
+    lit input.
+
+    Only then is the light on each input what the power-summed estimate says (a gate with one lit input splits
+    power by its ratio, whatever the phases): after light from two inputs has interfered, how much reaches each
+    arm depends on phases the daemon does not know, and a working actuator's fringe can be anywhere from nothing
+    up (two-beam interference, standard).
+    """
+    if gate not in topology.gates:
+        return False
+    column, top = topology.gates[gate]
+    if attribute != "kappa":
+        kappas = {g: 0.5 if s == "split" else 0.0 if s == "bar" else 1.0 for g, s in settings.items()}
+        found = _mixer(topology, kappas, column, top)
+        if found is None:
+            return False
+        column, top = found[0], found[1]
+    lit = {mode: mode in topology.input_modes for mode in range(topology.modes)}
+    mixed = {mode: False for mode in range(topology.modes)}
+    for col in range(column):
+        for other, (c, t) in topology.gates.items():
+            if c != col:
+                continue
+            both = lit[t] and lit[t + 1]
+            flag = both or mixed[t] or mixed[t + 1]
+            setting = settings.get(other, "split")
+            if setting == "split":
+                lit[t] = lit[t + 1] = lit[t] or lit[t + 1]
+                mixed[t] = mixed[t + 1] = flag
+            elif setting == "cross":
+                lit[t], lit[t + 1] = lit[t + 1], lit[t]
+                mixed[t], mixed[t + 1] = mixed[t + 1], mixed[t]
+    return not (mixed[top] or mixed[top + 1])

@@ -58,6 +58,7 @@ from meshwarden.procedures.scan_paths import (
     neighbours,
     sight,
     swing_taps,
+    unmixed,
     upstream_of,
 )
 from meshwarden.procedures.verdicts import (
@@ -780,7 +781,14 @@ def _judge(
                     for k in candidates
                 )
             evidence["expected_sigmas"] = visible
-            if visible < DETECTABLE * settings.k_sigma:
+            if not unmixed(topology, settings_of, str(plan.gate), plan.attribute):
+                verdict = Verdict(
+                    "unobservable",
+                    "the light it acts on has already interfered with other light, so how much of it meets this "
+                    "actuator is unknown: a working one could show nothing here",
+                    evidence,
+                )
+            elif visible < DETECTABLE * settings.k_sigma:
                 verdict = Verdict(
                     "unobservable",
                     f"at the least favourable operating point a working actuator would show only {visible:.3g} sigma "
