@@ -515,3 +515,15 @@ def test_unmixed_light_does_not_depend_on_any_phase(gate: str, attribute: str, m
     ]
     spread = float(np.ptp(np.array(seen), axis=0).max())
     assert (spread < 1e-12) is expected
+
+
+def test_both_dead_outputs_of_a_known_interferometer_are_found(tmp_path: Path) -> None:
+    """Both outputs of an interferometer fed straight from the input read dark: the light entering its second
+    coupler is known (no interference before it), so a working output would have held it at rest or gained it when
+    that coupler turned; neither did, and both are dead."""
+    faults = [Fault("dead_monitor", "o1t"), Fault("dead_monitor", "o1b")]
+    report, issues = asyncio.run(_custom(tmp_path, faults, topology=bench_topology()))
+    assert issues == []
+    assert report["monitors"]["o1t"]["verdict"] == "dead", report["monitors"]["o1t"]
+    assert report["monitors"]["o1b"]["verdict"] == "dead", report["monitors"]["o1b"]
+    assert report["monitors"]["o0t"]["verdict"] == "ok"

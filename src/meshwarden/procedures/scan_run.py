@@ -659,6 +659,7 @@ def _judge(
             doubtful,
             uncertainty,
             level - float(dark_ref.mean()) < settings.k_sigma * dark_noise[m],
+            _known_pair_light(topology, settings_of, kappas, scale, big_value_step or {}, controller, darkish),
         )
     usable = {
         m
@@ -852,6 +853,37 @@ def _crosstalk_shares(
     return out
 
 
+def _known_pair_light(
+    topology: LatticeTopology | None,
+    settings_of: dict[str, str],
+    kappas: dict[str, float | None],
+    scale: float | None,
+    big_value: dict[str, float],
+    controller: Controller,
+    darkish: set[str],
+) -> dict[str, float]:
+    """For a coupler with two tapped outputs that both read dark, the least light (amps) a working output must
+    have shown, at rest or in the coupler's look: where its inputs are unmixed (:func:`.scan_paths.unmixed`) the
+    pair's total E is the power-summed estimate (scaled by what the lit monitors read), and a healthy output at
+    a null with all of E on a dead partner gains E sin^2(d theta / 2) when the coupler turns by d theta (the
+    coupler is a rotation of the two fields by theta / 2, kappa = sin^2(theta / 2))."""
+    if topology is None or scale is None:
+        return {}
+    expected = incoherent_powers(topology, kappas)
+    out: dict[str, float] = {}
+    for gate, (column, top) in topology.gates.items():
+        taps = topology.taps_at(column, top) + topology.taps_at(column, top + 1)
+        if len(taps) != 2 or not set(taps) <= darkish or gate not in controller.gates:
+            continue
+        coupler = controller.gates[gate].coupler
+        if coupler not in big_value or not unmixed(topology, settings_of, gate, "kappa"):
+            continue
+        total = scale * sum(expected.get(t, 0.0) for t in taps)
+        turn = angle_step("kappa", big_value[coupler], kappas.get(gate))
+        out[gate] = total * math.sin(turn / 2.0) ** 2
+    return out
+
+
 def _swing_cap(
     topology: LatticeTopology,
     kappas: dict[str, float | None],
@@ -886,6 +918,7 @@ def _doubtful_monitor(
     doubtful: set[str],
     uncertainty: dict[str, tuple[float, float]],
     at_dark: bool,
+    pair_light: dict[str, float],
 ) -> Verdict:
     """A monitor at its dark level or with unchanging readings: dead or frozen only if light it should share
     with other taps moved there and not here (:func:`.verdicts.conserved_light_check`); else saturation and noise.
@@ -914,6 +947,13 @@ def _doubtful_monitor(
             continue
         if any(o in doubtful for o in others):
             why = f"the taps sharing its light ({', '.join(others)}) are in doubt too"
+            least = pair_light.get(cone.gate, 0.0) * settings.loss_floor
+            own_unc = sum(uncertainty[m])
+            if at_dark and abs(look[m]) <= own_unc and least > 2.0 * own_unc:
+                # both outputs of a coupler whose input light is known read dark, and this one did not follow
+                # the coupler's move either: had it worked it would have held the light at rest or gained it then
+                evidence = {"look_change_a": float(look[m]), "look_uncertainty_a": own_unc}
+                results.append(("missed", coupler, evidence | {"look_least_expected_a": least}))
             continue
         watts = {o: 1.0 / monitors[o].responsivity_a_per_w for o in others}
         state, evidence = conserved_light_check(
