@@ -10,9 +10,12 @@ One scan, under a held motion claim on the actuators it tests:
    toward zero when it sits high enough, else up, never above ``test_volts`` (so no output
    exceeds the larger of its operating voltage and the test voltage). N actuators cost the
    smallest power of two above N frames, plus the rest frames;
-3. a second look, with a step ``second_look_factor`` times larger, at each actuator that showed no
-   response (an operating point at an extremum of its effect gives no first-order response, but a
-   clear second-order one; a stuck actuator gives neither);
+3. second looks (rest, a half step, a full step ``second_look_factor`` times the scan's aim, rest) at
+   each actuator that showed no response, or only one its neighbours' crosstalk could explain, and
+   at the coupler before each monitor in doubt (reading nothing, or never changing): an operating
+   point at an extremum of its effect gives no first-order response but a clear second-order one,
+   and two step sizes leave no operating point where both show nothing; a stuck actuator shows
+   neither;
 4. the actuators no monitor can see are stepped once together for the driver check (sense only,
    no monitor frame);
 5. every output goes back to its initial code, and the codes are compared.
