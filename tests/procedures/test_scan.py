@@ -18,7 +18,7 @@ from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.errors import StoppedRefused
 from meshwarden.procedures.lattice import LatticeTopology
-from meshwarden.procedures.scan_attribution import estimate_share, least_sigmas
+from meshwarden.procedures.scan_attribution import amplitude_of, angle_step, estimate_share, least_sigmas
 from meshwarden.procedures.scan_paths import (
     conservation_cone,
     expected_effect,
@@ -527,3 +527,15 @@ def test_both_dead_outputs_of_a_known_interferometer_are_found(tmp_path: Path) -
     assert report["monitors"]["o1t"]["verdict"] == "dead", report["monitors"]["o1t"]
     assert report["monitors"]["o1b"]["verdict"] == "dead", report["monitors"]["o1b"]
     assert report["monitors"]["o0t"]["verdict"] == "ok"
+
+
+def test_a_coupling_step_is_a_turn_of_the_coupled_mode_angle() -> None:
+    """kappa = sin^2(C L) (Yariv 1973): with theta = 2 C L, a small change of kappa is sqrt(kappa (1 - kappa)) times
+    the change of theta (checked here by a central difference of the published formula), so a kappa step of 0.01
+    at kappa = 0.3 turns the fringe by 0.01 / sqrt(0.21) rad."""
+    theta = 2 * math.asin(math.sqrt(0.3))
+    h = 1e-6
+    slope = (math.sin((theta + h) / 2) ** 2 - math.sin((theta - h) / 2) ** 2) / (2 * h)
+    assert angle_step("kappa", 0.01, 0.3) == pytest.approx(0.01 / slope, rel=1e-6)
+    assert angle_step("phase", 0.01, None) == 0.01
+    assert amplitude_of("kappa", 2.0, 0.3) == pytest.approx(2.0 * slope, rel=1e-6)
