@@ -75,6 +75,7 @@ async def _one(config_dir: Path, rng: np.random.Generator, tally: Counter[str]) 
             bad.append("outputs not restored")
     tally["frames"] += report["frames"]
     tally["actuators"] += len(report["actuators"])
+    tally["most_frames"] = max(tally["most_frames"], report["frames"])
     for part, verdict in report["actuators"].items():
         got, kind = verdict["verdict"], faults.get(part)
         if kind in ("dead_channel", "short"):
@@ -125,3 +126,5 @@ if __name__ == "__main__":
     for line in result["problems"]:
         print(line)
     print({k: v for k, v in result.items() if k != "problems"}, f"{len(result['problems'])} problems")
+    mean = result["frames"] / max(result["actuators"], 1)
+    print(f"{mean:.3f} monitor frames per actuator on average, at most {result['most_frames'] / 120:.3f} in one scan")

@@ -8,6 +8,7 @@ from scipy.linalg import hadamard
 
 from meshwarden.procedures import ProcedureInputError
 from meshwarden.procedures.designs import (
+    drift_robust,
     estimate_responses,
     hadamard_design,
     one_at_a_time_design,
@@ -51,7 +52,9 @@ def test_estimator_recovers_responses_of_a_linear_chip(make) -> None:  # type: i
     assert np.allclose(got_rest, rest, atol=1e-12)
 
 
-@pytest.mark.parametrize("make", [hadamard_design, s_matrix_design, one_at_a_time_design])
+@pytest.mark.parametrize(
+    "make", [hadamard_design, s_matrix_design, one_at_a_time_design, lambda n: drift_robust(s_matrix_design(n - 2), 2)]
+)
 def test_variance_factors_match_monte_carlo(make) -> None:  # type: ignore[no-untyped-def]
     """The stated variance of each response matches 4000 simulated noisy scans within 10 % (reference: Monte Carlo)."""
     rng = np.random.default_rng(9)
@@ -82,3 +85,35 @@ def test_bad_design_inputs_are_refused(call: object, message: str) -> None:
     """Each bad input raises ProcedureInputError with a specific message."""
     with pytest.raises(ProcedureInputError, match=message):
         call()  # type: ignore[operator]
+
+
+def test_drift_terms_take_a_slow_drift_out_of_the_responses() -> None:
+    """Frames that drift along a quadratic in time give back the true responses exactly with two drift terms (the
+    drift lies in the span of the fit: least squares reproduces any model in its span), while the natural S-matrix
+    order puts most of a straight drift on its slowest column, whose pattern has one change of sign (Walsh
+    functions of Sylvester's order; scipy.linalg.hadamard)."""
+    rng = np.random.default_rng(12)
+    plain = s_matrix_design(35)
+    robust = drift_robust(plain, 2)
+    responses = rng.normal(size=(35, 2)) * 1e-3
+    for design in (plain, robust):
+        t = np.arange(design.frames, dtype=float)
+        drift = np.column_stack([0.05 * t, 0.03 * t - 2e-4 * t**2])
+        frames = 1.0 + design.matrix() @ responses + drift
+        got, _ = estimate_responses(design, frames, 1.0)
+        if design is robust:
+            assert np.allclose(got, responses, atol=1e-9)
+        else:
+            changes = np.abs(np.diff(plain.matrix(), axis=0)).sum(axis=0)
+            slowest = int(np.argmin(changes))
+            assert changes[slowest] == 1
+            errors = np.abs(got - responses).max(axis=1)
+            assert int(np.argmax(errors)) == slowest
+            assert errors[slowest] > 100 * np.abs(responses).max()
+    assert sorted(robust.pattern) == sorted(plain.pattern)  # the same frames, in another order
+
+
+def test_drift_robust_refuses_more_terms_than_spare_frames() -> None:
+    """Seven actuators in eight frames leave no room for a drift term: a clear error, not a singular fit."""
+    with pytest.raises(ProcedureInputError, match="cannot fit"):
+        drift_robust(s_matrix_design(7), 1)

@@ -10,23 +10,32 @@ from typing import Any
 
 import numpy as np
 import pytest
+import yaml
 
 from meshsim import inprocess
 from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.config import load_config
 from meshwarden.errors import StoppedRefused
+from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.scan_attribution import amplitude_of, angle_step, estimate_share, least_sigmas
 from meshwarden.procedures.scan_paths import (
+    conservation_cone,
     expected_effect,
     gate_setting,
     incoherent_powers,
     lit_monitors,
+    neighbours,
     sight,
+    swing_taps,
+    unmixed,
     upstream_of,
 )
 from meshwarden.procedures.scan_run import ScanControl, ScanSettings, run_scan
+from meshwarden.procedures.verdicts import conserved_light_check
 from meshwarden.writelog import check_board_log
 from tests.procedures.scan_bench import BLOCKS, OPERATING_POINT, bench_topology, write_scan_bench
+from tests.procedures.scan_demo_draws import run_demo_draws
 from tests.procedures.scan_draws import Draw, problems, run_draws, scan_one
 
 # Exact SI values (2019 redefinition): Source: BIPM, The International System of Units, 9th ed.
@@ -38,13 +47,22 @@ def _scan(tmp_path: Path, faults: list[Fault] | None = None, **kwargs: Any) -> t
     return asyncio.run(scan_one(tmp_path, Draw(faults or [])) if not kwargs else _custom(tmp_path, faults, **kwargs))
 
 
-async def _custom(tmp_path: Path, faults: list[Fault] | None, **kwargs: Any) -> tuple[dict[str, Any], list[str]]:
+async def _custom(
+    tmp_path: Path,
+    faults: list[Fault] | None,
+    point: dict[str, float] | None = None,
+    within_gate_crosstalk: float = 0.0,
+    **kwargs: Any,
+) -> tuple[dict[str, Any], list[str]]:
     path, rack = write_scan_bench(tmp_path)
+    if within_gate_crosstalk:  # the simulated chip's crosstalk, unknown to the daemon
+        text = path.read_text(encoding="utf-8")
+        path.write_text(text.replace("within_gate_fraction: 0.0", f"within_gate_fraction: {within_gate_crosstalk}"))
     config = load_config(path)
     try:
         async with open_controller(config) as ctl:
             await ctl.arm()
-            await ctl.set(OPERATING_POINT)
+            await ctl.set(point or OPERATING_POINT)
             for fault in faults or []:
                 inprocess.get(rack).inject(fault)
             report = await run_scan(ctl, owner="scan:test", **kwargs)
@@ -56,14 +74,178 @@ async def _custom(tmp_path: Path, faults: list[Fault] | None, **kwargs: Any) -> 
 
 def test_random_faults_are_found_and_classed_right() -> None:
     """Over random draws of actuator and monitor faults, every judgeable fault gets its class and no healthy part
-    is flagged, within rules 1-3, outputs back where they began, in at most 1.65 monitor frames per actuator (1.2 for
-    the design and its rest frames, plus three per group of suspects for a second look where a response is
-    missing)."""
+    is flagged, within rules 1-3, outputs back where they began, in at most 2.2 monitor frames per actuator (1.2 for
+    the design and its rest frames, plus four per group of second looks where a response or a monitor is in doubt;
+    the issue allows 3)."""
     # a seed picked once and never adjusted; the longer run is `python -m tests.procedures.scan_draws`
     result = run_draws(8, seed=31337)
     assert result["failures"] == []
     assert result["found"] > result["draws"]  # most injected faults were judgeable, and found
-    assert result["frames_per_actuator"] <= 1.65
+    assert result["frames_per_actuator"] <= 2.2
+
+
+def test_demo_chip_draws_flag_no_healthy_part_and_pass_no_stuck_one() -> None:
+    """On the demo chip (static phases, crosstalk, drift, dim taps) a few random draws flag no healthy part, find
+    every driver fault and dead lit monitor, and call no stuck actuator ok."""
+    # a seed picked once and never adjusted; the longer run is `python -m tests.procedures.scan_demo_draws`
+    result = run_demo_draws(3, seed=8128)
+    assert result["problems"] == []
+    assert result["frames"] <= 3 * result["actuators"]
+
+
+@pytest.mark.parametrize("share", [0.02, 0.04])
+def test_a_stuck_coupler_is_not_credited_with_what_crosstalk_moved(tmp_path: Path, share: float) -> None:
+    """A stuck coupler's drive still pulls the phase shifter beside it (a share of its V^2, below the configured
+    bound of 0.05), which moves the light at the monitors both see: that response is not the coupler's, and the
+    coupler is never called ok for it."""
+    report, issues = asyncio.run(
+        _custom(tmp_path, [Fault("stuck", "a0c")], within_gate_crosstalk=share, topology=bench_topology())
+    )
+    assert issues == []
+    verdict = report["actuators"]["a0c"]
+    assert verdict["verdict"] in ("no_response", "unobservable"), verdict
+    assert report["actuators"]["a0p"]["verdict"] == "ok"
+
+
+def _level(verdict: dict[str, Any]) -> float:
+    evidence = verdict["evidence"]
+    return float(evidence.get("lit_mean_a", evidence.get("dark_mean_a")))
+
+
+def test_a_healthy_output_at_an_interference_null_is_not_called_dead(tmp_path: Path) -> None:
+    """Two 50:50 couplers and no phase difference send all the light to one output of the interferometer (standard
+    Mach-Zehnder algebra): the other reads its dark level, yet it is healthy, and moving the coupler before it shows
+    so."""
+    point = OPERATING_POINT | {"a0.kappa": 0.5, "b0.kappa": 0.5, "a0.phase": 0.0}
+    report, issues = asyncio.run(_custom(tmp_path, [], point=point, topology=bench_topology()))
+    assert issues == []
+    dark = min(("o0t", "o0b"), key=lambda m: _level(report["monitors"][m]))
+    assert report["monitors"][dark]["verdict"] == "ok", report["monitors"][dark]
+    assert report["monitors"][dark]["evidence"]["look_change_a"] != 0.0  # its coupler's move reached it
+
+
+def test_a_dead_output_is_found_by_what_its_partner_gained(tmp_path: Path) -> None:
+    """A dead output of a lit interferometer is dead because the coupler before it moved light its partner lost or
+    gained and it did not follow (a lossless coupler conserves power)."""
+    report, issues = asyncio.run(_custom(tmp_path, [Fault("dead_monitor", "o2b")], topology=bench_topology()))
+    assert issues == []
+    verdict = report["monitors"]["o2b"]
+    assert verdict["verdict"] == "dead", verdict
+    assert verdict["evidence"]["look_least_expected_a"] > 2 * verdict["evidence"]["look_uncertainty_a"]
+
+
+def test_conserved_light_check_cases() -> None:
+    """A reading that changed is alive; one that stayed put while the others' total moved by far more than both
+    uncertainties is missed (at least half the conserved share must arrive: 0.5 x (10 - 1) nW x 0.9 A/W = 4.05 nA);
+    too little moved light leaves it untestable."""
+    common = {"own_uncertainty_a": 1e-9, "others_uncertainty_w": 1e-9, "responsivity_a_per_w": 0.9}
+    state, evidence = conserved_light_check(own_change_a=0.0, others_change_w=10e-9, **common)
+    assert state == "missed"
+    assert evidence["look_least_expected_a"] == pytest.approx(4.05e-9)
+    assert conserved_light_check(own_change_a=-5e-9, others_change_w=10e-9, **common)[0] == "moved"
+    assert conserved_light_check(own_change_a=0.0, others_change_w=4e-9, **common)[0] == "untestable"
+
+
+def _demo_topology() -> LatticeTopology:
+    folder = Path(__file__).resolve().parents[2] / "config" / "demo"
+    sim = yaml.safe_load((folder / "simulator.yaml").read_text(encoding="utf-8"))
+    lattice = sim["lattice"]
+    return LatticeTopology.from_lattice(
+        lattice["modes"], lattice["columns"], lattice["taps"], sim["laser"]["input_modes"]
+    )
+
+
+def _tap_powers(
+    topology: LatticeTopology, kappas: dict[str, float], phases: dict[str, float], light: Any
+) -> dict[str, float]:
+    """Coherent fields through the lattice, each gate the standard unitary coupler [[sqrt(1-k), i sqrt(k)],
+    [i sqrt(k), sqrt(1-k)]] followed by a phase on its top arm, from the input fields ``light``."""
+    field = np.array(light, dtype=complex)
+    out = {m: float(abs(field[mode]) ** 2) for m, (after, mode) in topology.taps.items() if after == -1}
+    for column in range(topology.columns):
+        for gate, (col, top) in topology.gates.items():
+            if col != column:
+                continue
+            k = kappas[gate]
+            matrix = np.array([[math.sqrt(1 - k), 1j * math.sqrt(k)], [1j * math.sqrt(k), math.sqrt(1 - k)]])
+            field[top : top + 2] = matrix @ field[top : top + 2]
+            field[top] *= np.exp(1j * phases[gate])
+        out |= {m: float(abs(field[mode]) ** 2) for m, (after, mode) in topology.taps.items() if after == column}
+    return out
+
+
+def test_conservation_cones_hold_in_a_coherent_field_model() -> None:
+    """Moving the coupler a cone names changes the light at the cone's taps by amounts that add up to zero, and
+    changes no tap of that column outside it, at random settings of the demo lattice (fields through unitary
+    couplers, computed here with numpy: a unitary matrix conserves power)."""
+    topology = _demo_topology()
+    rng = np.random.default_rng(5)
+    for monitor in ("m20", "m32", "m38", "m40", "m05"):
+        for depth in (0, 1):
+            cone = conservation_cone(topology, monitor, depth)
+            assert cone.gate and not cone.reason and monitor in cone.monitors
+            kappas = {g: float(rng.uniform(0.1, 0.9)) for g in topology.gates}
+            phases = {g: float(rng.uniform(0, 2 * np.pi)) for g in topology.gates}
+            light = rng.normal(size=topology.modes) + 1j * rng.normal(size=topology.modes)  # light in every mode
+            before = _tap_powers(topology, kappas, phases, light)
+            after = _tap_powers(topology, kappas | {cone.gate: kappas[cone.gate] + 0.07}, phases, light)
+            column = topology.taps[monitor][0]
+            changed = {m for m, (a, _) in topology.taps.items() if a == column and abs(after[m] - before[m]) > 1e-12}
+            assert changed <= cone.monitors
+            assert sum(after[m] - before[m] for m in cone.monitors) == pytest.approx(0.0, abs=1e-12)
+            assert any(abs(after[m] - before[m]) > 1e-6 for m in cone.monitors)
+
+
+def test_swing_taps_hold_every_tap_a_phase_can_move_light_to() -> None:
+    """A phase shifter moves light only among the taps its swing set names (the coherent field model above)."""
+    topology = _demo_topology()
+    rng = np.random.default_rng(6)
+    kappas = {g: float(rng.uniform(0.1, 0.9)) for g in topology.gates}
+    phases = {g: float(rng.uniform(0, 2 * np.pi)) for g in topology.gates}
+    for gate in ("g16", "g38", "g47"):
+        taps = swing_taps(topology, dict(kappas), gate, "phase", 7)
+        assert taps
+        light = rng.normal(size=topology.modes) + 1j * rng.normal(size=topology.modes)
+        before = _tap_powers(topology, kappas, phases, light)
+        after = _tap_powers(topology, kappas, phases | {gate: phases[gate] + 0.3}, light)
+        changed = {m for m, (a, _) in topology.taps.items() if a == 7 and abs(after[m] - before[m]) > 1e-12}
+        assert changed and changed <= taps
+        assert sum(after[m] - before[m] for m in taps) == pytest.approx(0.0, abs=1e-12)
+
+
+def test_neighbours_are_the_gate_partner_and_like_actuators_beside_it() -> None:
+    """On the bench the coupler of a1 sits beside its own phase shifter and the couplers of a0 and a2."""
+    assert neighbours(bench_topology(), "a1", "kappa") == [("a1", "phase"), ("a0", "kappa"), ("a2", "kappa")]
+    assert neighbours(bench_topology(), "b0", "phase") == [("b0", "kappa"), ("b1", "phase")]
+
+
+def test_one_step_has_a_blind_operating_point_two_sizes_do_not() -> None:
+    """cos(theta + d) = cos(theta) at theta = -d/2 (standard trigonometry): one step can show nothing at all; steps
+    of +d and -d leave at least A (1 - cos d) (the smaller of 2 A sin(d/2) |sin(theta +- d/2)| is least at
+    theta = 0)."""
+    assert least_sigmas(1.0, [(0.3, 0.0, 1.0)]) == pytest.approx(0.0, abs=1e-3)
+    assert least_sigmas(1.0, [(0.3, 0.0, 1.0), (-0.3, 0.0, 1.0)]) == pytest.approx(1 - math.cos(0.3), rel=1e-3)
+    assert least_sigmas(1.0, [(0.3, 0.0, 1.0), (0.15, 0.0, 1.0)]) > 0.005
+
+
+def test_crosstalk_share_is_recovered_from_monitors_only_a_neighbour_sees() -> None:
+    """Synthetic responses with a known share f = 0.02 (r_j = f dV_j^2 r_n / dV_n^2 plus noise) give back f within
+    three standard errors (weighted least squares through the origin)."""
+    rng = np.random.default_rng(3)
+    actuators, monitors = 40, 30
+    dv2 = [float(v) for v in rng.uniform(-8.0, -2.0, size=actuators)]
+    responses = np.zeros((actuators, monitors))
+    se = np.full((actuators, monitors), 1e-10)
+    pairs = []
+    for j in range(0, actuators, 2):
+        n, k = j + 1, j % monitors
+        responses[n, k] = rng.uniform(5e-9, 5e-8)
+        responses[j, k] = 0.02 * dv2[j] * responses[n, k] / dv2[n] + rng.normal(0.0, 1e-10)
+        pairs.append((j, n, k))
+    estimate = estimate_share(responses, se, dv2, pairs, 5.0)
+    assert estimate is not None and estimate.samples == actuators // 2
+    assert abs(estimate.share - 0.02) < 3 * estimate.share_se
+    assert estimate.upper(5.0) > 0.02
 
 
 def test_healthy_bench_is_all_ok_except_the_invisible_phases(tmp_path: Path) -> None:
@@ -290,3 +472,70 @@ def test_actuators_on_a_board_that_cannot_be_used_are_untested(tmp_path: Path) -
     assert {v["verdict"] for v in report["actuators"].values()} == {"untested"}
     assert report["actuators"]["a0c"]["reason"] == "its board cannot be read"
     assert writes == 0
+
+
+def _mode_powers(topology: LatticeTopology, kappas: dict[str, float], phases: dict[str, float], before: int) -> Any:
+    """Power in every mode before column ``before`` (the coherent field model above, light in the input modes)."""
+    field = np.zeros(topology.modes, dtype=complex)
+    field[list(topology.input_modes)] = 1.0
+    for column in range(before):
+        for gate, (col, top) in topology.gates.items():
+            if col == column:
+                k = kappas[gate]
+                matrix = np.array([[math.sqrt(1 - k), 1j * math.sqrt(k)], [1j * math.sqrt(k), math.sqrt(1 - k)]])
+                field[top : top + 2] = matrix @ field[top : top + 2]
+                field[top] *= np.exp(1j * phases[gate])
+    return np.abs(field) ** 2
+
+
+@pytest.mark.parametrize(
+    ("gate", "attribute", "mixer", "expected"),
+    [
+        ("g15", "kappa", "g15", True),
+        ("g23", "kappa", "g23", False),
+        ("g00", "phase", "g15", True),
+        ("g38", "phase", "g45", False),
+    ],
+)
+def test_unmixed_light_does_not_depend_on_any_phase(gate: str, attribute: str, mixer: str, expected: bool) -> None:
+    """Where the scan calls the light at a coupler unmixed, the power on its inputs stays put whatever every phase
+    of the demo lattice is (a gate with one lit input splits power by its ratio alone); where light has interfered
+    it moves with the phases (coherent field model above, light entering mode 0 only)."""
+    topology = _demo_topology()
+    split = {g: "split" for g in topology.gates}
+    assert unmixed(topology, split, gate, attribute) is expected
+    column, top = topology.gates[mixer]
+    rng = np.random.default_rng(8)
+    kappas = {g: float(rng.uniform(0.2, 0.8)) for g in topology.gates}
+    seen = [
+        _mode_powers(topology, kappas, {g: float(rng.uniform(0, 2 * np.pi)) for g in topology.gates}, column)[
+            [top, top + 1]
+        ]
+        for _ in range(5)
+    ]
+    spread = float(np.ptp(np.array(seen), axis=0).max())
+    assert (spread < 1e-12) is expected
+
+
+def test_both_dead_outputs_of_a_known_interferometer_are_found(tmp_path: Path) -> None:
+    """Both outputs of an interferometer fed straight from the input read dark: the light entering its second
+    coupler is known (no interference before it), so a working output would have held it at rest or gained it when
+    that coupler turned; neither did, and both are dead."""
+    faults = [Fault("dead_monitor", "o1t"), Fault("dead_monitor", "o1b")]
+    report, issues = asyncio.run(_custom(tmp_path, faults, topology=bench_topology()))
+    assert issues == []
+    assert report["monitors"]["o1t"]["verdict"] == "dead", report["monitors"]["o1t"]
+    assert report["monitors"]["o1b"]["verdict"] == "dead", report["monitors"]["o1b"]
+    assert report["monitors"]["o0t"]["verdict"] == "ok"
+
+
+def test_a_coupling_step_is_a_turn_of_the_coupled_mode_angle() -> None:
+    """kappa = sin^2(C L) (Yariv 1973): with theta = 2 C L, a small change of kappa is sqrt(kappa (1 - kappa)) times
+    the change of theta (checked here by a central difference of the published formula), so a kappa step of 0.01
+    at kappa = 0.3 turns the fringe by 0.01 / sqrt(0.21) rad."""
+    theta = 2 * math.asin(math.sqrt(0.3))
+    h = 1e-6
+    slope = (math.sin((theta + h) / 2) ** 2 - math.sin((theta - h) / 2) ** 2) / (2 * h)
+    assert angle_step("kappa", 0.01, 0.3) == pytest.approx(0.01 / slope, rel=1e-6)
+    assert angle_step("phase", 0.01, None) == 0.01
+    assert amplitude_of("kappa", 2.0, 0.3) == pytest.approx(2.0 * slope, rel=1e-6)

@@ -19,6 +19,13 @@ unit step.
 
 The advantage holds for noise that does not grow with the signal (detector and amplifier noise);
 for shot-noise-limited monitors it vanishes (Fellgett's multiplex advantage; from memory).
+
+Slow drift is not white noise: a random walk puts most of its power at the lowest frequencies, and
+in the natural (Sylvester) order some columns are the slowest Walsh functions (one sign change over
+the whole design), so drift lands on those actuators as a response. :func:`drift_robust` takes the
+rows in a fixed scrambled order, which leaves every column with a similar, small share of the drift,
+and fits ``trend`` Legendre polynomials of the frame index with the responses, which takes the slow
+part out; the rest shows in the residuals of the fit like any other noise.
 """
 
 from __future__ import annotations
@@ -44,6 +51,7 @@ class PerturbationDesign:
 
     kind: str
     pattern: tuple[tuple[int, ...], ...]
+    trend: int = 0  # Legendre polynomials of the frame index (degrees 1..trend) fitted with the responses
 
     @property
     def frames(self) -> int:
@@ -59,14 +67,30 @@ class PerturbationDesign:
         """The pattern as a float array."""
         return np.array(self.pattern, dtype=float)
 
+    def regressors(self, step: float = 1.0) -> FloatArray:
+        """The least-squares columns: the rest level, the drift terms, then the pattern times ``step``."""
+        t = np.linspace(-1.0, 1.0, self.frames) if self.frames > 1 else np.zeros(1)
+        trend = [np.polynomial.legendre.Legendre.basis(d)(t) for d in range(1, self.trend + 1)]
+        return np.column_stack([np.ones(self.frames), *trend, self.matrix() * step])
+
     def variance_factors(self) -> FloatArray:
-        """Variance of each estimated response over sigma^2, for a unit step (the rest level estimated too)."""
-        x = np.column_stack([np.ones(self.frames), self.matrix()])
-        return np.asarray(np.diag(np.linalg.inv(x.T @ x))[1:])
+        """Variance of each estimated response over sigma^2, for a unit step (rest level and drift estimated too)."""
+        x = self.regressors()
+        return np.asarray(np.diag(np.linalg.inv(x.T @ x))[1 + self.trend :])
+
+    @property
+    def spare(self) -> int:
+        """Degrees of freedom the fit leaves for the residuals."""
+        return self.frames - 1 - self.trend - self.actuators
 
     def as_dict(self) -> dict[str, Any]:
         """JSON-able form."""
-        return {"kind": self.kind, "frames": self.frames, "pattern": [list(row) for row in self.pattern]}
+        return {
+            "kind": self.kind,
+            "frames": self.frames,
+            "trend": self.trend,
+            "pattern": [list(row) for row in self.pattern],
+        }
 
 
 def _design(kind: str, pattern: np.ndarray) -> PerturbationDesign:
@@ -98,6 +122,21 @@ def one_at_a_time_design(actuators: int) -> PerturbationDesign:
     return _design("one_at_a_time", np.vstack([np.zeros((1, _count(actuators))), np.eye(actuators)]))
 
 
+DRIFT_ORDER_SEED = 20261202  # any fixed seed: the order must only be the same in every scan
+
+
+def drift_robust(design: PerturbationDesign, trend: int = 2) -> PerturbationDesign:
+    """The same rows in a fixed scrambled order, fitted with ``trend`` drift polynomials (see the module notes)."""
+    if isinstance(trend, bool) or not isinstance(trend, int) or trend < 0:
+        raise ProcedureInputError(f"trend must be an integer >= 0, got {trend!r}")
+    if design.frames - 1 - trend - design.actuators < 0:
+        raise ProcedureInputError(
+            f"{design.frames} frames cannot fit {design.actuators} actuators and {trend} drift terms"
+        )
+    order = np.random.default_rng(DRIFT_ORDER_SEED).permutation(design.frames)
+    return PerturbationDesign(design.kind, tuple(design.pattern[i] for i in order), trend)
+
+
 def estimate_responses(design: PerturbationDesign, frames: Any, step: float) -> tuple[FloatArray, FloatArray]:
     """(responses per unit step, actuators x monitors; rest level per monitor) from the design's frames.
 
@@ -106,7 +145,6 @@ def estimate_responses(design: PerturbationDesign, frames: Any, step: float) -> 
     y = float_matrix("frames", frames)
     if y.shape[0] != design.frames:
         raise ProcedureInputError(f"the {design.kind} design takes {design.frames} frames, got {y.shape[0]}")
-    size = positive("step", step)
-    x = np.column_stack([np.ones(design.frames), design.matrix() * size])
+    x = design.regressors(positive("step", step))
     coef, *_ = np.linalg.lstsq(x, y, rcond=None)
-    return np.asarray(coef[1:]), np.asarray(coef[0])
+    return np.asarray(coef[1 + design.trend :]), np.asarray(coef[0])

@@ -256,3 +256,126 @@ def _mixer(
                 return later, other_top, set(phased)
         phased = _apply(topology, later, phased, settings)
     return None
+
+
+def neighbours(topology: LatticeTopology, gate: str, attribute: str) -> list[tuple[str, str]]:
+    """The electrodes beside ``gate``'s ``attribute`` ("kappa" or "phase"): the other actuator of its gate, and the
+    like actuator of each gate next to it in its lattice column (top mode two apart).
+
+    Electrostatic force grows as V^2 whatever the polarity (Senturia, *Microsystem Design*, 2001, ch. 6), so a
+    neighbour's fringing field moves an actuator as if a share of the neighbour's V^2 were added to its own drive;
+    these are the electrodes close enough for that share to matter (the layout of a lattice: common practice).
+    """
+    if gate not in topology.gates:
+        return []
+    column, top = topology.gates[gate]
+    out = [(gate, "phase" if attribute == "kappa" else "kappa")]
+    for other, (col, other_top) in sorted(topology.gates.items()):
+        if col == column and abs(other_top - top) == 2:
+            out.append((other, attribute))
+    return out
+
+
+@dataclass(frozen=True)
+class Cone:
+    """The taps that share one coupler's output light: what the coupler takes from one it gives to the others."""
+
+    gate: str
+    monitors: frozenset[str]
+    reason: str = ""
+
+
+def conservation_cone(topology: LatticeTopology, monitor: str, depth: int = 0) -> Cone:
+    """A coupler before ``monitor``'s tap (the last one on its mode, or ``depth`` more back along that mode) and
+    every tap its output light reaches in the tap's column.
+
+    A lossless coupler is unitary (its 2x2 matrix, standard), so moving it moves power between its outputs without
+    changing their sum; light it sends on through later gates up to the tap's column keeps that sum (each later
+    gate is unitary too, and its other input does not change). When every mode that light can reach is tapped in
+    that column, the taps' changes add up to zero: what ``monitor`` should gain or lose is minus what the others
+    read. Returns the cone with an empty ``gate`` and a reason when no such coupler or complete set of taps exists.
+    """
+    if monitor not in topology.taps:
+        return Cone("", frozenset(), f"monitor {monitor} is not in the lattice topology")
+    after, mode = topology.taps[monitor]
+    passed = [g for c in range(after, -1, -1) if (g := topology.gate_at(c, mode)) is not None]
+    if len(passed) <= depth:
+        return Cone("", frozenset(), f"no coupler comes before the tap of {monitor}")
+    found = passed[depth]
+    column, top = topology.gates[found]
+    modes = {top, top + 1}
+    split = {g: "split" for g in topology.gates}  # every mode its light could reach, whatever the settings
+    for later in range(column + 1, after + 1):
+        modes = _apply(topology, later, modes, split)
+    taps = {m for m, (a, k) in topology.taps.items() if a == after and k in modes}
+    untapped = sorted(k for k in modes if not any(topology.taps_at(after, k)))
+    if untapped:
+        return Cone(found, frozenset(taps), f"the light of gate {found} also reaches untapped modes {untapped}")
+    return Cone(found, frozenset(taps))
+
+
+def swing_taps(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str, after: int
+) -> frozenset[str] | None:
+    """The taps after column ``after`` among which ``gate``'s ``attribute`` can move light, or None if that light
+    also reaches untapped modes there.
+
+    The actuator moves light only between the outputs of the coupler where its effect first shows (its own coupler;
+    for a phase, the coupler where its arm meets other light), and on from there through unitary gates: so the
+    power it moves at those taps is at most what they hold together (conservation of power, as in
+    :func:`conservation_cone`).
+    """
+    if gate not in topology.gates:
+        return None
+    column, top = topology.gates[gate]
+    if attribute != "kappa":
+        found = _mixer(topology, kappas, column, top)
+        if found is None:
+            return None
+        column, top = found[0], found[1]
+    if after < column:
+        return None
+    modes = {top, top + 1}
+    split = {g: "split" for g in topology.gates}
+    for later in range(column + 1, after + 1):
+        modes = _apply(topology, later, modes, split)
+    if any(not topology.taps_at(after, k) for k in modes):
+        return None
+    return frozenset(m for m, (a, k) in topology.taps.items() if a == after and k in modes)
+
+
+def unmixed(topology: LatticeTopology, settings: Mapping[str, str], gate: str, attribute: str) -> bool:
+    """Whether the light entering the coupler where ``gate``'s ``attribute`` shows (its own coupler; for a phase,
+    the coupler where its arm meets other light) has met no other light on its way: every gate it passed had one
+    lit input.
+
+    Only then is the light on each input what the power-summed estimate says (a gate with one lit input splits
+    power by its ratio, whatever the phases): after light from two inputs has interfered, how much reaches each
+    arm depends on phases the daemon does not know, and a working actuator's fringe can be anywhere from nothing
+    up (two-beam interference, standard).
+    """
+    if gate not in topology.gates:
+        return False
+    column, top = topology.gates[gate]
+    if attribute != "kappa":
+        kappas = {g: 0.5 if s == "split" else 0.0 if s == "bar" else 1.0 for g, s in settings.items()}
+        found = _mixer(topology, kappas, column, top)
+        if found is None:
+            return False
+        column, top = found[0], found[1]
+    lit = {mode: mode in topology.input_modes for mode in range(topology.modes)}
+    mixed = {mode: False for mode in range(topology.modes)}
+    for col in range(column):
+        for other, (c, t) in topology.gates.items():
+            if c != col:
+                continue
+            both = lit[t] and lit[t + 1]
+            flag = both or mixed[t] or mixed[t + 1]
+            setting = settings.get(other, "split")
+            if setting == "split":
+                lit[t] = lit[t + 1] = lit[t] or lit[t + 1]
+                mixed[t] = mixed[t + 1] = flag
+            elif setting == "cross":
+                lit[t], lit[t + 1] = lit[t + 1], lit[t]
+                mixed[t], mixed[t + 1] = mixed[t + 1], mixed[t]
+    return not (mixed[top] or mixed[top + 1])

@@ -10,9 +10,12 @@ One scan, under a held motion claim on the actuators it tests:
    toward zero when it sits high enough, else up, never above ``test_volts`` (so no output
    exceeds the larger of its operating voltage and the test voltage). N actuators cost the
    smallest power of two above N frames, plus the rest frames;
-3. a second look, with a step ``second_look_factor`` times larger, at each actuator that showed no
-   response (an operating point at an extremum of its effect gives no first-order response, but a
-   clear second-order one; a stuck actuator gives neither);
+3. second looks (rest, a half step, a full step ``second_look_factor`` times the scan's aim, rest) at
+   each actuator that showed no response, or only one its neighbours' crosstalk could explain, and
+   at the coupler before each monitor in doubt (reading nothing, or never changing): an operating
+   point at an extremum of its effect gives no first-order response but a clear second-order one,
+   and two step sizes leave no operating point where both show nothing; a stuck actuator shows
+   neither;
 4. the actuators no monitor can see are stepped once together for the driver check (sense only,
    no monitor frame);
 5. every output goes back to its initial code, and the codes are compared.
@@ -30,55 +33,27 @@ from __future__ import annotations
 import dataclasses
 import math
 from collections.abc import Callable
-from dataclasses import dataclass, field
-from functools import partial
+from dataclasses import dataclass
 from typing import Any
-
-import numpy as np
 
 from meshwarden.controller import Controller
 from meshwarden.errors import MeshwardenError, RefusedError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
-from meshwarden.procedures.designs import PerturbationDesign, estimate_responses, s_matrix_design
+from meshwarden.procedures.designs import PerturbationDesign, drift_robust, s_matrix_design
 from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.scan_judge import (
+    ActuatorPlan,
+    ScanSettings,
+    calibrated_kappas,
+    judge_scan,
+)
 from meshwarden.procedures.scan_paths import (
-    expected_effect,
     gate_setting,
-    incoherent_powers,
-    lit_monitors,
+    neighbours,
     sight,
-    upstream_of,
-)
-from meshwarden.procedures.verdicts import (
-    Verdict,
-    actuator_verdict,
-    dark_monitor_verdict,
-    detector_noise_a,
-    monitor_verdict,
-    noise_threshold,
 )
 
-FAULTY = ("no_response", "driver_fault", "drifted")
-FROZEN_LSBS = 20.0  # a neighbour's change that a live monitor sharing its light could not hide: common practice
-
-
-@dataclass(frozen=True)
-class ScanSettings:
-    """How hard a scan pushes and how it judges (the ``scans:`` section of the configuration)."""
-
-    test_volts: float = 10.0  # no step goes up past this (steps from higher operating points go down)
-    max_step_volts: float = 2.0
-    kappa_step: float = 0.005  # the calibrated change each step aims for
-    phase_step_rad: float = 0.01
-    rest_frames: int = 8
-    optical_noise_rel: float = 0.01  # lit light wanders this much over the rest frames (drift, laser noise)
-    second_look_factor: float = 10.0  # a suspect's second look steps this many times further, for one frame
-    integration_s: float = 1e-3
-    temperature_k: float = 300.0
-    sense_noise_volts: float = 0.005
-    dark_current_a: float = 0.0  # the dark level assumed where no unlit monitor shows it
-    k_sigma: float = 5.0
-    false_alarm: float = 1e-6
+__all__ = ["ScanControl", "ScanSettings", "run_scan"]
 
 
 @dataclass
@@ -91,23 +66,6 @@ class ScanControl:
     def stop(self, reason: str) -> None:
         if self.reason is None:
             self.reason = reason
-
-
-@dataclass
-class _Plan:
-    """One actuator's part in a scan."""
-
-    actuator: str
-    gate: str | None
-    attribute: str
-    code0: int
-    volts0: float
-    step_volts: float = 0.0  # signed, after snapping to a DAC code
-    value_step: float = 0.0
-    seen_by: frozenset[str] | None = None  # None: no topology, any monitor may see it
-    reason: str = ""
-    commanded: list[float] = field(default_factory=list)
-    sensed: list[float] = field(default_factory=list)
 
 
 def _gate_of(controller: Controller) -> dict[str, tuple[str, str]]:
@@ -128,7 +86,16 @@ def _code(controller: Controller, aid: str, volts: float) -> int:
     return volts_to_code(volts, board.full_scale_volts, board.dac_bits)
 
 
-def _choose_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> None:
+DRIFT_TERMS = 2  # Legendre drift terms fitted with the design where the frames leave room (degrees 1 and 2)
+
+
+def _design(actuators: int) -> PerturbationDesign:
+    """The S-matrix design in drift-robust order, with as many drift terms as its spare frames allow (up to 2)."""
+    plain = s_matrix_design(actuators)
+    return drift_robust(plain, min(DRIFT_TERMS, plain.frames - 1 - actuators))
+
+
+def _choose_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> None:
     """Signed step (volts, on a code) that moves the calibrated value by about the wanted amount."""
     act = controller.actuators[plan.actuator]
     wanted = settings.kappa_step if plan.attribute == "kappa" else settings.phase_step_rad
@@ -164,19 +131,6 @@ def _choose_step(controller: Controller, plan: _Plan, settings: ScanSettings) ->
         )
 
 
-def _monitor_noise(controller: Controller, settings: ScanSettings, level_a: float, monitor: Any) -> tuple[float, float]:
-    """(expected rms noise of one reading at ``level_a``, one ADC LSB) in amps, for ``monitor``."""
-    board = controller.boards[monitor.input.board]
-    bits = controller.config.rack.board(monitor.input.board).adc_bits
-    full_scale_v = board.identity.adc_full_scale_volts if board.identity is not None else 0.0
-    lsb_a = full_scale_v / (1 << bits) / monitor.transimpedance_ohms
-    bandwidth = 1.0 / (2.0 * settings.integration_s)  # integrate-and-dump, B = 1/(2T) (standard)
-    noise = detector_noise_a(
-        max(level_a, 0.0), 0.0, bandwidth, monitor.transimpedance_ohms, settings.temperature_k, lsb_a
-    )
-    return noise, lsb_a
-
-
 async def run_scan(
     controller: Controller,
     targets: list[str] | None = None,
@@ -209,8 +163,9 @@ async def run_scan(
         gate, attribute = gate_of.get(aid, (None, controller.actuators[aid].config.kind))
         if attribute == "coupler":
             attribute = "kappa"
-        plans[aid] = _Plan(aid, gate, attribute, code0, _volts(controller, aid, code0))
+        plans[aid] = ActuatorPlan(aid, gate, attribute, code0, _volts(controller, aid, code0))
     settings_of = _gate_settings(controller)
+    near = _neighbour_ids(controller, topology, plans)
     for plan in plans.values():
         if plan.gate is None:
             plan.reason = "it belongs to no gate"
@@ -222,7 +177,7 @@ async def run_scan(
         plan.reason = unseen or plan.reason
     optical = [a for a in tested if not plans[a].reason]
     sense_only = [a for a in tested if plans[a].reason and plans[a].step_volts != 0.0]
-    design = s_matrix_design(len(optical)) if optical else None
+    design = _design(len(optical)) if optical else None
 
     frames: list[dict[str, float]] = []
     rest: list[dict[str, float]] = []
@@ -238,6 +193,15 @@ async def run_scan(
     final_codes: dict[str, int] = {}
     second_look: dict[str, dict[str, float]] = {}
     big_value: dict[str, float] = {}
+    big_dv2: dict[str, float] = {}
+    half_look: dict[str, dict[str, float]] = {}
+    half_value: dict[str, float] = {}
+    half_dv2: dict[str, float] = {}
+
+    def act_value(aid: str, volts: float) -> float:
+        act = controller.actuators[aid]
+        return float(act.map.value_at(volts) - act.map.value_at(plans[aid].volts0))
+
     extra_frames = 0
     stopped: str | None = None
     async with controller.claim(tested, owner=owner, purpose="scan") as claim:
@@ -279,7 +243,7 @@ async def run_scan(
                     tick()
                 await claim.move({a: plans[a].volts0 for a in optical}, volts=True, journal=False)
             if design is not None and topology is not None:
-                first = _judge(
+                first = judge_scan(
                     controller,
                     settings,
                     topology,
@@ -290,24 +254,42 @@ async def run_scan(
                     frames,
                     design,
                     optical,
+                    near=near,
                     blame=False,
                 )
-                suspects = [a for a in optical if first["actuators"][a]["verdict"] == "no_response"]
-                for group in _groups(suspects, plans):
+                suspects = [a for a in optical if _suspect(first["actuators"][a])]
+                footprint = {a: _footprint(plans, near, a) for a in suspects}
+                for cone_gate in {g for gates in first["monitor_looks"].values() for g in gates}:
+                    # couplers whose move tests a doubtful monitor
+                    coupler = controller.gates[cone_gate].coupler
+                    monitors_of = set(first["cones"][cone_gate])
+                    footprint[coupler] = footprint.get(coupler, set()) | monitors_of | _footprint(plans, near, coupler)
+                for group in _groups(footprint):
                     _check(control)
                     big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings) for a in group}
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
                     # rest, stepped, rest again: the light drifts meanwhile, and a straight drift cancels
+                    # rest, half way, all the way, rest again: two sizes of step leave a working actuator no operating
+                    # point where both show nothing; the light drifts meanwhile, and a straight drift cancels
+                    halfway = {
+                        a: _volts(controller, a, _code(controller, a, (v + plans[a].volts0) / 2))
+                        for a, v in big.items()
+                    }
                     before = await frame({}, monitors=True, sense=False) or {}
+                    middle = await frame(halfway, monitors=True) or {}
                     after = await frame(big, monitors=True) or {}
                     back = await frame({a: plans[a].volts0 for a in big}, monitors=True, sense=False) or {}
-                    extra_frames += 3
+                    extra_frames += 4
                     for aid in big:
-                        second_look[aid] = {m: after[m] - (before[m] + back[m]) / 2 for m in after}
+                        second_look[aid] = {m: after[m] - (before[m] + 2 * back[m]) / 3 for m in after}
+                        half_look[aid] = {m: middle[m] - (2 * before[m] + back[m]) / 3 for m in middle}
+                        half_value[aid] = act_value(aid, halfway[aid])
+                        half_dv2[aid] = halfway[aid] ** 2 - plans[aid].volts0 ** 2
                         act = controller.actuators[aid]
                         big_value[aid] = act.map.value_at(big[aid]) - act.map.value_at(plans[aid].volts0)
+                        big_dv2[aid] = big[aid] ** 2 - plans[aid].volts0 ** 2
             if sense_only:
                 _check(control)
                 await frame({a: plans[a].volts0 + plans[a].step_volts for a in sense_only}, monitors=False)
@@ -323,7 +305,7 @@ async def run_scan(
         raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
     earlier = (reference or {}).get("actuators", {}) if same_point else {}
-    report = _judge(
+    report = judge_scan(
         controller,
         settings,
         topology,
@@ -337,7 +319,12 @@ async def run_scan(
         second_look,
         big_value,
         earlier,
+        near=near,
+        big_dv2=big_dv2,
+        half_look=(half_look, half_value, half_dv2),
     )
+    report.pop("monitor_looks")
+    report.pop("cones")
     report["frames"] = len(rest) + len(frames) + extra_frames
     report["outputs_restored"] = restored
     report["actuators_tested"] = len(tested)
@@ -348,29 +335,63 @@ async def run_scan(
     return report
 
 
-def _big_step(controller: Controller, plan: _Plan, settings: ScanSettings) -> float:
+def _big_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> float:
     """The second look's step (volts): ``second_look_factor`` times the scan's aim, under the same guards."""
     factor = settings.second_look_factor
     bigger = dataclasses.replace(
         settings, kappa_step=factor * settings.kappa_step, phase_step_rad=factor * settings.phase_step_rad
     )
-    trial = _Plan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
+    trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
     _choose_step(controller, trial, bigger)
     return trial.step_volts
 
 
-def _groups(suspects: list[str], plans: dict[str, _Plan]) -> list[list[str]]:
-    """Suspects that no monitor sees in common share a second-look frame."""
+def _suspect(verdict: dict[str, Any]) -> bool:
+    """No response, or one that crosstalk from its neighbours could explain: a larger step may tell."""
+    return verdict["verdict"] == "no_response" or (
+        verdict["verdict"] == "unobservable" and "crosstalk_bound" in verdict["evidence"]
+    )
+
+
+def _neighbour_ids(
+    controller: Controller, topology: LatticeTopology | None, plans: dict[str, ActuatorPlan]
+) -> dict[str, list[str]]:
+    """Each actuator's electrode neighbours (:func:`.scan_paths.neighbours`) among the tested ones."""
+    if topology is None:
+        return {}
+    out: dict[str, list[str]] = {}
+    for aid, plan in plans.items():
+        if plan.gate is None:
+            continue
+        ids = []
+        for gate, attribute in neighbours(topology, plan.gate, plan.attribute):
+            g = controller.gates.get(gate)
+            other = None if g is None else (g.coupler if attribute == "kappa" else g.phase)
+            if other is not None and other in plans:
+                ids.append(other)
+        out[aid] = ids
+    return out
+
+
+def _footprint(plans: dict[str, ActuatorPlan], near: dict[str, list[str]], aid: str) -> set[str]:
+    """The monitors a step of ``aid`` can move: its own and, through crosstalk, its neighbours'."""
+    seen = set(plans[aid].seen_by or ())
+    for other in near.get(aid, []):
+        seen |= set(plans[other].seen_by or ())
+    return seen
+
+
+def _groups(footprints: dict[str, set[str]]) -> list[list[str]]:
+    """Actuators whose steps can move no monitor in common share a second-look frame."""
     groups: list[tuple[list[str], set[str]]] = []
-    for aid in suspects:
-        seen = set(plans[aid].seen_by or ())
+    for aid, seen in footprints.items():
         for members, monitors in groups:
             if seen and not seen & monitors:
                 members.append(aid)
                 monitors |= seen
                 break
         else:
-            groups.append(([aid], seen))
+            groups.append(([aid], set(seen)))
     return [members for members, _ in groups]
 
 
@@ -394,283 +415,5 @@ def _resolve(controller: Controller, targets: list[str] | None) -> list[str]:
     return out
 
 
-def _kappas(controller: Controller) -> dict[str, float | None]:
-    """Each gate's calibrated coupling at its coupler's present output (None where the calibration has none)."""
-    out: dict[str, float | None] = {}
-    for gid, gate in controller.gates.items():
-        act = controller.actuators[gate.coupler]
-        try:
-            out[gid] = act.map.value_at(float(controller.describe(gate.coupler)["volts"]))
-        except MeshwardenError:
-            out[gid] = None
-    return out
-
-
 def _gate_settings(controller: Controller) -> dict[str, str]:
-    return {gid: gate_setting(kappa) for gid, kappa in _kappas(controller).items()}
-
-
-def _judge(
-    controller: Controller,
-    settings: ScanSettings,
-    topology: LatticeTopology | None,
-    settings_of: dict[str, str],
-    plans: dict[str, _Plan],
-    untested: list[str],
-    rest: list[dict[str, float]],
-    frames: list[dict[str, float]],
-    design: PerturbationDesign | None,
-    optical: list[str],
-    second_look: dict[str, dict[str, float]] | None = None,
-    big_value_step: dict[str, float] | None = None,
-    earlier: dict[str, Any] | None = None,
-    *,
-    blame: bool = True,
-) -> dict[str, Any]:
-    monitors = {m.id: m for m in controller.config.chip.monitors}
-    names = list(monitors)
-    rest_a = np.array([[r[m] for m in names] for r in rest])
-    frame_a = np.array([[f[m] for m in names] for f in frames]) if frames else np.zeros((0, len(names)))
-    noise = {
-        m: _monitor_noise(controller, settings, float(rest_a[:, i].mean()), monitors[m]) for i, m in enumerate(names)
-    }
-
-    # responses (amps per design step) and their standard errors, actuators x monitors
-    responses = np.zeros((len(optical), len(names)))
-    se = np.ones((len(optical), len(names)))
-    sigma = np.array([noise[m][0] for m in names])
-    short_sigma = _frame_sigma(rest_a, None, None, None, None, list(sigma))  # back-to-back frames: no drift
-    if design is not None:
-        responses, rest_level = estimate_responses(design, frame_a, 1.0)
-        factors = np.sqrt(design.variance_factors())
-        sigma = _frame_sigma(rest_a, frame_a, design, responses, rest_level, [noise[m][0] for m in names])
-        se = np.outer(factors, sigma)
-    significant = np.abs(responses) >= settings.k_sigma * se
-    samples = rest_a.shape[0]
-    quiet = [
-        samples < 2 or float(rest_a[:, i].std(ddof=1)) <= noise_threshold(noise[m][0], samples, settings.false_alarm)
-        for i, m in enumerate(names)
-    ]
-
-    # monitors
-    lit = lit_monitors(topology, settings_of) if topology is not None else None
-    full_scale = {m: noise[m][1] * (1 << controller.config.rack.board(monitors[m].input.board).adc_bits) for m in names}
-    dark_verdicts: dict[str, Verdict] = {}
-    for i, m in enumerate(names):
-        if lit is not None and m not in lit:
-            dark_verdicts[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
-    healthy_dark = [names.index(m) for m, v in dark_verdicts.items() if v.verdict == "ok"]
-    if healthy_dark:
-        dark_ref = rest_a[:, healthy_dark].mean(axis=1)
-        dark_source = "the unlit monitors' mean"
-    else:
-        dark_ref = np.full(rest_a.shape[0], settings.dark_current_a)
-        dark_source = "the configured dark current"
-    weak, scale = _weakly_lit(controller, topology, lit, names, rest_a, dark_ref, noise, settings)
-    kappas = _kappas(controller)
-    monitor_out: dict[str, Verdict] = {}
-    for i, m in enumerate(names):
-        if m in dark_verdicts:
-            monitor_out[m] = dark_verdicts[m]
-            continue
-        if m in weak:
-            level = float(rest_a[:, i].mean())
-            monitor_out[m] = dark_monitor_verdict(
-                dark_a=rest_a[:, i],
-                full_scale_a=full_scale[m],
-                dark_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * level),
-                false_alarm=settings.false_alarm,
-                unlit_reason="too little light is expected here (light summed in power) to test it for dead or frozen",
-            )
-            continue
-        if lit is None and rest_a[:, i].mean() - dark_ref.mean() < settings.k_sigma * noise[m][0]:
-            monitor_out[m] = _dark(rest_a[:, i], full_scale[m], noise[m][0], settings)
-            continue
-        # frozen needs evidence: an actuator this monitor should see moved another quiet monitor that sees it too
-        watchers = [j for j, a in enumerate(optical) if m in (plans[optical[j]].seen_by or ())]
-        # ... by several of this monitor's LSBs (light shared between outputs moves both by similar amounts)
-        neighbours = any(
-            significant[j, k] and abs(responses[j, k]) >= FROZEN_LSBS * noise[m][1]
-            for j in watchers
-            for k, other in enumerate(names)
-            if k != i and quiet[k] and other in (plans[optical[j]].seen_by or ())
-        )
-        dark_noise, lsb = _monitor_noise(controller, settings, float(dark_ref.mean()), monitors[m])
-        monitor_out[m] = monitor_verdict(
-            dark_a=dark_ref if dark_ref.size >= 2 else np.repeat(dark_ref, 2),
-            lit_a=rest_a[:, i],
-            frame_levels_a=frame_a[:, i] if frames else rest_a[:, i],
-            full_scale_a=full_scale[m],
-            dark_noise_a=dark_noise,
-            lit_noise_a=math.hypot(noise[m][0], settings.optical_noise_rel * float(rest_a[:, i].mean())),
-            neighbours_changed=neighbours,
-            adc_lsb_a=lsb,
-            k_sigma=settings.k_sigma,
-            false_alarm=settings.false_alarm,
-        )
-    usable = {m for m, v in monitor_out.items() if v.verdict == "ok" and (lit is None or m in lit) and m not in weak}
-
-    # actuators
-    actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
-    seen_at: dict[str, str] = {}
-    for aid, plan in plans.items():
-        act = controller.actuators[aid]
-        common = partial(
-            actuator_verdict,
-            readable=True,
-            commanded_volts=plan.commanded,
-            sense_volts=plan.sensed,
-            lsb_volts=act.limit.lsb_volts,
-            sense_noise_volts=settings.sense_noise_volts,
-            k_sigma=settings.k_sigma,
-        )
-        if aid not in optical:
-            actuator_out[aid] = common(unobservable_reason=plan.reason or "no monitor can see it")
-            continue
-        j = optical.index(aid)
-        candidates = [k for k, m in enumerate(names) if m in usable and (plan.seen_by is None or m in plan.seen_by)]
-        if not candidates:
-            why = "every monitor that can see it is faulty or dim" if plan.seen_by else "no healthy lit monitor"
-            actuator_out[aid] = common(unobservable_reason=why)
-            continue
-        best = max(candidates, key=lambda k: abs(responses[j, k]) / se[j, k])
-        before = (earlier or {}).get(aid, {})
-        predicted = None
-        if before.get("verdict") == "ok" and before.get("monitor") in names:
-            same_step = abs(before["evidence"].get("step_volts", math.nan) - plan.step_volts) < 1e-9
-            if same_step and names.index(before["monitor"]) in candidates and "response" in before["evidence"]:
-                best = names.index(before["monitor"])  # judged where it was seen last time, against what it did
-                predicted = float(before["evidence"]["response"])
-        seen_at[aid] = names[best]
-        verdict = common(response=float(responses[j, best]), response_se=float(se[j, best]), predicted=predicted)
-        evidence = verdict.evidence | {"step_volts": plan.step_volts, "value_step": plan.value_step}
-        look = (second_look or {}).get(aid)
-        verdict = Verdict(verdict.verdict, verdict.reason, evidence)
-        if verdict.verdict == "no_response" and look is not None:
-            moved = max(abs(look[names[k]]) / (math.sqrt(1.5) * short_sigma[k]) for k in candidates)
-            evidence["second_look_sigmas"] = moved
-            if moved >= settings.k_sigma:
-                verdict = Verdict(
-                    "ok",
-                    f"no first-order response here (its operating point sits near an extremum of its effect), but a "
-                    f"larger step moved the light by {moved:.3g} sigma: it works",
-                    evidence,
-                )
-        if verdict.verdict == "no_response" and topology is None:
-            verdict = Verdict(
-                "unobservable",
-                "no monitor responded, and without the lattice topology a stuck actuator cannot be told from one no "
-                "monitor sees",
-                evidence,
-            )
-        elif verdict.verdict == "no_response" and topology is not None and scale is not None:
-            # would a working actuator have shown? (generous, power-summed estimate of its effect)
-            effect = expected_effect(topology, kappas, str(plan.gate), plan.attribute)
-            big = abs((big_value_step or {}).get(aid, 0.0))
-            visible = max(
-                max(
-                    scale * effect.get(names[k], 0.0) * abs(plan.value_step) / se[j, k],
-                    scale * effect.get(names[k], 0.0) * big / (math.sqrt(1.5) * short_sigma[k]),
-                )
-                for k in candidates
-            )
-            evidence["expected_sigmas"] = visible
-            if visible < DETECTABLE * settings.k_sigma:
-                verdict = Verdict(
-                    "unobservable",
-                    f"a working actuator would show at most {visible:.3g} sigma here: too little light meets it to "
-                    "tell",
-                    evidence,
-                )
-        actuator_out[aid] = verdict
-    if topology is not None and blame:
-        _blame_upstream(topology, settings_of, plans, actuator_out)
-    return {
-        "actuators": {
-            a: v.as_dict() | ({"monitor": seen_at[a]} if a in seen_at else {}) for a, v in sorted(actuator_out.items())
-        },
-        "monitors": {m: v.as_dict() for m, v in monitor_out.items()},
-        "design": {"kind": design.kind if design else "none", "actuators": len(optical)},
-        "dark_reference": dark_source,
-        "topology": topology is not None,
-    }
-
-
-DETECTABLE = 10.0  # a no_response needs a working actuator's expected effect at this many detection limits
-WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to call a monitor dead
-
-
-def _weakly_lit(
-    controller: Controller,
-    topology: LatticeTopology | None,
-    lit: set[str] | None,
-    names: list[str],
-    rest_a: Any,
-    dark_ref: Any,
-    noise: dict[str, tuple[float, float]],
-    settings: ScanSettings,
-) -> tuple[set[str], float | None]:
-    """Lit monitors whose expected light (power-summed estimate, scaled by what the lit monitors read) is too
-    small to tell a dead detector from a dim tap; and that scale (amps per unit of input light)."""
-    if topology is None or lit is None:
-        return set(), None
-    expected = incoherent_powers(topology, _kappas(controller))
-    above = rest_a.mean(axis=0) - float(dark_ref.mean())
-    ratios = [
-        above[i] / expected[m]
-        for i, m in enumerate(names)
-        if m in lit and expected.get(m, 0.0) > 0.0 and above[i] > settings.k_sigma * noise[m][0]
-    ]
-    if not ratios:
-        return set(lit), None
-    scale = float(np.median(ratios))
-    return {m for m in lit if scale * expected.get(m, 0.0) < WEAK_LIGHT * settings.k_sigma * noise[m][0]}, scale
-
-
-def _frame_sigma(
-    rest_a: Any, frame_a: Any, design: PerturbationDesign | None, responses: Any, rest_level: Any, model: list[float]
-) -> Any:
-    """Per monitor, the rms noise of one frame: the detector model, or more where the frames show more.
-
-    Evidence of more: successive differences of the back-to-back rest frames (var = 2 sigma^2 for white
-    noise), and the residuals of the design's fit where spare columns leave at least 4 degrees of freedom
-    (they also hold the slow drift over the whole design).
-    """
-    sigma = np.asarray(model, dtype=float)
-    if rest_a.shape[0] >= 3:
-        sigma = np.maximum(sigma, np.sqrt(np.mean(np.diff(rest_a, axis=0) ** 2, axis=0) / 2.0))
-    dof = design.frames - 1 - design.actuators if design is not None else 0
-    if design is not None and dof >= 4:
-        fitted = rest_level + design.matrix() @ responses
-        sigma = np.maximum(sigma, np.sqrt(np.sum((frame_a - fitted) ** 2, axis=0) / dof))
-    return sigma
-
-
-def _dark(samples: Any, full_scale_a: float, noise_a: float, settings: ScanSettings) -> Verdict:
-    return dark_monitor_verdict(
-        dark_a=samples, full_scale_a=full_scale_a, dark_noise_a=noise_a, false_alarm=settings.false_alarm
-    )
-
-
-def _blame_upstream(
-    topology: LatticeTopology, settings_of: dict[str, str], plans: dict[str, _Plan], verdicts: dict[str, Verdict]
-) -> None:
-    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed."""
-    faulty = [a for a, v in verdicts.items() if v.verdict in FAULTY and a in plans]
-    for aid, verdict in list(verdicts.items()):
-        plan = plans.get(aid)
-        if plan is None or plan.gate is None or verdict.verdict != "no_response":
-            continue
-        culprits = [
-            f
-            for f in faulty
-            if f != aid
-            and plans[f].gate is not None
-            and upstream_of(topology, settings_of, str(plans[f].gate), plans[f].attribute, plan.gate, plan.attribute)
-        ]
-        if culprits:
-            verdicts[aid] = Verdict(
-                "unobservable",
-                f"its light passes {', '.join(sorted(culprits))}, found faulty, so its own response cannot be judged",
-                verdict.evidence,
-            )
+    return {gid: gate_setting(kappa) for gid, kappa in calibrated_kappas(controller).items()}

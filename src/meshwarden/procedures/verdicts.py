@@ -111,11 +111,14 @@ def actuator_verdict(
     unobservable_reason: str = "",
     k_sigma: float = 5.0,
     drift_rel: float = 0.2,
+    crosstalk_bound: float = 0.0,
 ) -> Verdict:
     """Verdict for one actuator from its sense readings at test codes and its estimated optical response.
 
     ``response`` and ``response_se`` come from a scan design (:mod:`.designs`); ``predicted`` is what the
-    calibration expects at the operating point (None when no calibration applies).
+    calibration expects at the operating point (None when no calibration applies). ``crosstalk_bound`` is the
+    largest response its step could cause through its neighbours alone (their fringing fields move them when
+    its drive changes): a response not clear of it by k sigma proves nothing about the actuator itself.
     """
     if not readable:
         return Verdict("untested", "its board cannot be read")
@@ -140,6 +143,16 @@ def actuator_verdict(
             return Verdict("unobservable", "the operating point gives no first-order response to test", evidence)
     if abs(response) < k * sigma:
         return Verdict("no_response", f"optical response {abs(response) / sigma:.3g} sigma (need {k:g})", evidence)
+    bound = non_negative("crosstalk_bound", crosstalk_bound)
+    if bound > 0.0:
+        evidence["crosstalk_bound"] = bound
+        if abs(response) < bound + k * sigma:
+            return Verdict(
+                "unobservable",
+                f"its response ({abs(response) / sigma:.3g} sigma) is no more than its neighbours could give through "
+                f"crosstalk ({bound / sigma:.3g} sigma): it cannot be told from a stuck one",
+                evidence,
+            )
     if predicted is not None:
         allowed = max(k * sigma, non_negative("drift_rel", drift_rel) * abs(predicted))
         evidence["drift_allowed"] = allowed
@@ -225,3 +238,44 @@ def dark_monitor_verdict(
     if evidence["dark_std_a"] > limit:
         return Verdict("noisy", "noise above the detector's expected dark noise", evidence)
     return Verdict("ok", f"{unlit_reason}: only saturation and noise were tested", evidence)
+
+
+def conserved_light_check(
+    *,
+    own_change_a: float,
+    own_uncertainty_a: float,
+    others_change_w: float,
+    others_uncertainty_w: float,
+    responsivity_a_per_w: float,
+    loss_floor: float = 0.5,
+) -> tuple[str, dict[str, float]]:
+    """Whether a monitor followed a coupler's move: ("moved" | "missed" | "untestable", evidence).
+
+    A lossless coupler conserves power (its matrix is unitary), so when it moves, the taps its outputs reach change
+    by amounts that add up to zero: this monitor should change by minus the others' total
+    (``others_change_w``, in watts at the taps). Paths to different taps lose a little differently (a MEMS phase
+    arm 0.1-0.3 dB: common practice), so at least ``loss_floor`` (0.5: 3 dB) of that share must arrive. A reading
+    change is known to within ``own_uncertainty_a`` (its ADC step and k sigma of its noise), the others' total
+    within ``others_uncertainty_w``. "moved": the reading changed beyond its uncertainty; "missed": the least a
+    working monitor would have changed by is more than twice its uncertainty, yet it did not change beyond it;
+    else "untestable" (too little light moved).
+    """
+    own_unc = positive("own_uncertainty_a", own_uncertainty_a)
+    others_unc = non_negative("others_uncertainty_w", others_uncertainty_w)
+    least = (
+        non_negative("loss_floor", loss_floor)
+        * max(abs(others_change_w) - others_unc, 0.0)
+        * positive("responsivity_a_per_w", responsivity_a_per_w)
+    )
+    evidence = {
+        "look_change_a": float(own_change_a),
+        "look_uncertainty_a": own_unc,
+        "look_least_expected_a": least,
+        "look_others_change_w": float(others_change_w),
+        "look_others_uncertainty_w": others_unc,
+    }
+    if abs(own_change_a) > own_unc:
+        return "moved", evidence
+    if least > 2.0 * own_unc:
+        return "missed", evidence
+    return "untestable", evidence

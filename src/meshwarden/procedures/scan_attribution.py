@@ -1,0 +1,123 @@
+"""How much of a scan's response belongs to the actuator that was stepped, and what a working one would show.
+
+Crosstalk: electrostatic force grows as V^2 whatever the polarity (Senturia, *Microsystem Design*, 2001, ch. 6),
+so when an actuator's drive changes by d(V^2) its neighbours move as if their own drive had changed by a share
+f of it. A neighbour n whose own step d(V_n^2) gave the response r_n at a monitor therefore gives at most
+f_max |d(V^2)| (|r_n| + k se_n) / |d(V_n^2)| there (linear for small steps), whatever f <= f_max really is;
+summed over the neighbours that is the most a stuck actuator's step could appear to do. The share itself is
+measured by the scan where a monitor sees a neighbour but not the actuator (:func:`estimate_share`), separately
+within a gate and between gates; where nothing measures it, a configured bound stands in.
+
+Second looks: a working actuator whose operating point sits at an extremum of its fringe P = B + A cos(theta)
+has no first-order response; a step of d theta then changes P by A (1 - cos d theta) (the second-order part,
+standard trigonometry). For a phase theta is the phase itself; for a coupler with kappa = sin^2(theta/2)
+(the coupled-mode power transfer, Yariv 1973), d kappa = sqrt(kappa (1 - kappa)) d theta, and a fringe slope of
+S per unit kappa is an amplitude A = S sqrt(kappa (1 - kappa)).
+"""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Sequence
+from dataclasses import dataclass
+from typing import Any
+
+import numpy as np
+
+from meshwarden.procedures.inputs import FloatArray, ProcedureInputError
+
+
+def crosstalk_bounds(
+    responses: Any,
+    response_se: Any,
+    dv2: Sequence[float],
+    neighbours: Sequence[Sequence[tuple[int, float]]],
+    k_sigma: float,
+) -> FloatArray:
+    """Per actuator and monitor: sum over its neighbours (index, share bound f) of f (|r_n| + k se_n) / |d(V_n^2)|
+    (amps per V^2). Multiply a row by |d(V^2)| of that actuator's own step for its crosstalk bound at each monitor."""
+    r = np.abs(np.asarray(responses, dtype=float))
+    se = np.asarray(response_se, dtype=float)
+    if r.shape != se.shape or r.shape[0] != len(dv2) or len(neighbours) != len(dv2):
+        raise ProcedureInputError("responses, their errors, steps and neighbours must agree in length")
+    out = np.zeros_like(r)
+    for j, near in enumerate(neighbours):
+        for n, share in near:
+            if n != j and dv2[n] != 0.0:
+                out[j] += share * (r[n] + k_sigma * se[n]) / abs(dv2[n])
+    return np.asarray(out, dtype=float)
+
+
+@dataclass(frozen=True)
+class ShareEstimate:
+    """A crosstalk share measured by the scan: estimate, standard error, how many monitor readings it rests on."""
+
+    share: float
+    share_se: float
+    samples: int
+
+    def upper(self, k_sigma: float) -> float:
+        """The share it cannot exceed at k sigma."""
+        return max(self.share, 0.0) + k_sigma * self.share_se
+
+
+def estimate_share(
+    responses: Any, response_se: Any, dv2: Sequence[float], pairs: Sequence[tuple[int, int, int]], k_sigma: float
+) -> ShareEstimate | None:
+    """The crosstalk share f from monitors that see a neighbour but not the actuator itself.
+
+    For (j, n, k): monitor k cannot see actuator j (first order), but sees its neighbour n, whose own step
+    d(V_n^2) gave r_n there. Whatever j's step moved at k went through n: r_j = f d(V_j^2) r_n / d(V_n^2) + noise
+    (se_j). Weighted least squares over every such reading with r_n clear of k se_n gives f and its standard error
+    (standard weighted regression through the origin). None where no reading qualifies.
+    """
+    r = np.asarray(responses, dtype=float)
+    se = np.asarray(response_se, dtype=float)
+    xs, ys, ws = [], [], []
+    for j, n, k in pairs:
+        if dv2[n] == 0.0 or abs(r[n, k]) < k_sigma * se[n, k]:
+            continue
+        xs.append(dv2[j] * r[n, k] / dv2[n])
+        ys.append(r[j, k])
+        ws.append(1.0 / se[j, k] ** 2)
+    if not xs:
+        return None
+    x, y, w = np.array(xs), np.array(ys), np.array(ws)
+    info = float(np.sum(w * x * x))
+    if info <= 0.0:
+        return None
+    return ShareEstimate(float(np.sum(w * x * y)) / info, 1.0 / math.sqrt(info), len(xs))
+
+
+def angle_step(attribute: str, value_step: float, kappa: float | None) -> float:
+    """A step of the calibrated value as a step of the fringe's angle (rad): itself for a phase; for a coupler
+    d theta = d kappa / sqrt(kappa (1 - kappa)) (kappa = sin^2(theta / 2))."""
+    if attribute == "phase":
+        return value_step
+    k = min(max(0.5 if kappa is None else kappa, 0.01), 0.99)
+    return value_step / math.sqrt(k * (1.0 - k))
+
+
+def amplitude_of(attribute: str, slope_per_value: float, kappa: float | None) -> float:
+    """A fringe's amplitude A from its steepest slope per unit of value (see the module notes)."""
+    if attribute == "phase":
+        return abs(slope_per_value)
+    k = min(max(0.5 if kappa is None else kappa, 0.01), 0.99)
+    return abs(slope_per_value) * math.sqrt(k * (1.0 - k))
+
+
+def least_sigmas(amplitude: float, looks: Sequence[tuple[float, float, float]], points: int = 3600) -> float:
+    """The least, over every operating angle, of the clearest of several looks at a fringe A cos(theta).
+
+    Each look is (angle step, amount any other cause could give, sigma): a working actuator at angle theta shows
+    (A |cos(theta + step) - cos(theta)| - amount) / sigma there. An actuator whose looks all stayed below this
+    could still be working (its operating angle unlucky); above it, a working one could not have hidden.
+    """
+    theta = np.linspace(0.0, 2.0 * math.pi, points, endpoint=False)
+    best = np.full(points, -np.inf)
+    for step, other, sigma in looks:
+        if sigma <= 0.0:
+            raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
+        shown = (amplitude * np.abs(np.cos(theta + step) - np.cos(theta)) - other) / sigma
+        best = np.maximum(best, shown)
+    return float(best.min())
