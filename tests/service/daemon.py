@@ -46,7 +46,30 @@ def start_daemon(
     endpoint: str | None = None,
     client_kwargs: dict[str, Any] | None = None,
 ) -> Daemon:
-    """Start the daemon and wait until it answers ``status``."""
+    """Start the daemon and wait until it answers ``status``. A port found free can be taken by
+    another process before the daemon binds it (the OS hands out the same range to outgoing
+    connections): a daemon that exits saying so is started again on other ports, twice at most."""
+    for attempt in range(3):
+        try:
+            return _start_daemon(config, log_dir, *extra, ports=ports, endpoint=endpoint, client_kwargs=client_kwargs)
+        except _PortTaken:
+            if endpoint is not None or attempt == 2:
+                raise
+    raise AssertionError("unreachable")
+
+
+class _PortTaken(RuntimeError):
+    """The daemon could not bind a port that was free a moment before."""
+
+
+def _start_daemon(
+    config: Path,
+    log_dir: Path,
+    *extra: str,
+    ports: dict[str, str] | None = None,
+    endpoint: str | None = None,
+    client_kwargs: dict[str, Any] | None = None,
+) -> Daemon:
     command_port = free_port()
     endpoint = endpoint or f"tcp://127.0.0.1:{command_port}"
     pub = f"tcp://127.0.0.1:{free_port()}"
@@ -79,10 +102,20 @@ def start_daemon(
     daemon = Daemon(proc, endpoint, pub, log, client_kwargs or {})
     try:
         with daemon.client() as probe:
-            probe.wait_ready(30.0)
+            deadline = time.monotonic() + 30.0
+            while True:  # in short waits, so that a daemon that exited is seen at once
+                try:
+                    probe.wait_ready(1.0)
+                    break
+                except UnreachableError:
+                    if proc.poll() is not None or time.monotonic() > deadline:
+                        raise
     except UnreachableError:
         daemon.stop()
-        raise RuntimeError(f"daemon did not answer: {log.read_text()}") from None
+        text = log.read_text()
+        if "in use" in text.lower():
+            raise _PortTaken(text) from None
+        raise RuntimeError(f"daemon did not answer: {text}") from None
     if proc.poll() is not None:
         raise RuntimeError(f"daemon exited: {log.read_text()}")
     return daemon
