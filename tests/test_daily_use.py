@@ -13,6 +13,7 @@ from collections.abc import Iterator
 from pathlib import Path
 
 import pytest
+import yaml
 
 from meshwarden.errors import MeshwardenError
 from meshwarden.journal import Journal
@@ -121,6 +122,17 @@ def test_arm_prints_a_caution(bench: tuple[Daemon, Path]) -> None:
 
 
 # ---------------------------------------------------------------- 5. value now, target apart
+
+
+def test_get_reports_what_each_table_reaches_within_the_limit(bench: tuple[Daemon, Path]) -> None:
+    """`get` gives each actuator's reachable range: its calibration file's value at 0 V and at
+    the last of its volts within the limit (the bench's tables end at 40 V, the coupler limit)."""
+    d, config = bench
+    with d.client() as mw:
+        view = mw.get()["actuators"]
+    table = yaml.safe_load((config.parent / "cal" / "c0.yaml").read_text(encoding="utf-8"))
+    assert table["volts"][-1] == 40.0
+    assert view["c0"]["reachable"] == pytest.approx([table["values"][0], table["values"][-1]], abs=1e-9)
 
 
 def test_value_is_what_outputs_mean_now_and_target_is_apart(bench: tuple[Daemon, Path]) -> None:
