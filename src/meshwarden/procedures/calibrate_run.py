@@ -64,7 +64,7 @@ DEFAULT_POINTS = 12
 MIN_POINTS, MAX_POINTS = 12, 64
 LIT_FRACTION_OF_ADC = 0.01  # the laser counts as on when a monitor reads above 1 % of its ADC range
 SPLIT = 0.5
-COUPLER_EXTEND_FRACTION = 0.0125  # a coupler's sweep goes on above its table in steps of 1.25 % of its top volts
+COUPLER_EXTEND_FRACTION = 0.025  # a coupler's sweep goes on above its table in steps of 2.5 % of its top volts
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
 PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
@@ -361,7 +361,7 @@ class Calibrator:
         settle = self.ctl.actuators[actuator].limit.dwell_s
         phases = [*self._own_phase_if_needed(step), *self._upstream_phase(step.gate)]
         turned = {p: self._half_turn_volts(p) for p in phases}
-        states = [{p: 0.0 for p in phases}, turned]
+        states = [{p: 0.0 for p in phases}, turned] if phases else [{}]  # nothing to turn: one reading
         points: dict[float, tuple[float, float]] = {}
 
         async def measure(v: float) -> None:
