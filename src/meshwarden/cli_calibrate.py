@@ -165,4 +165,10 @@ def _manifest_text(shown: dict[str, Any]) -> str:
         residual = outcome.get("residual")
         text = "" if residual is None else f"residual {residual:.3g}"
         lines.append(f"  {actuator:>8}  {outcome['status']:<12} {text} {outcome.get('reason', '')}".rstrip())
+    crosstalk = manifest.get("crosstalk") or {}
+    if crosstalk:
+        lines.append("  crosstalk (share of a neighbour's V^2 acting on an actuator; cancelled in requests):")
+        for on, row in sorted(crosstalk.items()):
+            shares = ", ".join(f"{by} {share:.4f}" for by, share in sorted(row.items()))
+            lines.append(f"  {on:>8}  <- {shares}")
     return "\n".join(lines)

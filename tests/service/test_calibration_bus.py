@@ -31,6 +31,8 @@ def test_calibrate_from_the_command_line_prints_the_pinned_report(daemon: Daemon
     assert back.returncode == 0 and "no output moved" in back.stdout
     shown = cli("calibration", "show", report["version"], "--endpoint", daemon.endpoint)
     assert shown.returncode == 0 and "method" in shown.stdout
+    # the bench's c1 has its own phase shifter as a measured neighbour (its taps see c1 directly)
+    assert "crosstalk (share of a neighbour's V^2" in shown.stdout and "      c1  <- p1 " in shown.stdout
     assert cli("calibration", "list", "--plot", "x", "--endpoint", daemon.endpoint).returncode == 2
     missing = cli("calibration", "activate", "cal-nope", "--endpoint", daemon.endpoint)
     assert missing.returncode == 1 and "no calibration version 'cal-nope'" in missing.stderr
