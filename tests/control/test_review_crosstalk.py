@@ -12,7 +12,8 @@ import pytest
 from meshsim import inprocess
 from meshwarden.api import open_controller
 from meshwarden.config import Config
-from meshwarden.errors import MeshwardenError
+from meshwarden.crosstalk import CrosstalkShares
+from meshwarden.errors import CalibrationError, MeshwardenError
 from meshwarden.writelog import check_board_log
 from tests.control.conftest import run
 
@@ -59,9 +60,10 @@ def test_a_request_the_neighbours_overshoot_is_refused_not_silently_clamped(make
 
 
 def test_a_share_matrix_that_cannot_be_solved_is_a_clear_refusal(make_bench: Bench) -> None:
-    """Shares of 0.5 between both couplers and both phase shifters (each inside 0..0.5, so the
-    version is accepted) make I + S singular: a request for all four must be refused with a
-    MeshwardenError (a stable code), never a numpy error."""
+    """Shares of 0.5 between both couplers and both phase shifters (each inside 0..0.5) make I + S
+    singular (eigenvalue -1 of S for this complete bipartite pattern): activating such a version
+    is refused with a CalibrationError and changes nothing, and solving with such shares directly
+    gives a CalibrationError, never numpy's LinAlgError."""
     config, name = make_bench()
     shares = {
         "c0": {"p0": 0.5, "p1": 0.5},
@@ -69,16 +71,19 @@ def test_a_share_matrix_that_cannot_be_solved_is_a_clear_refusal(make_bench: Ben
         "p0": {"c0": 0.5, "c1": 0.5},
         "p1": {"c0": 0.5, "c1": 0.5},
     }
+    with pytest.raises(CalibrationError, match="cannot be solved"):
+        CrosstalkShares(shares).drive_volts({a: 20.0 for a in shares}, {})
 
     async def scenario() -> None:
         async with open_controller(config) as ctl:
             await _version_with(ctl, "xt-sing", shares)
-            await ctl.activate_calibration("xt-sing")
+            with pytest.raises(CalibrationError, match="add up to"):
+                await ctl.activate_calibration("xt-sing")
+            assert ctl.calibrations.active() == "config" and not ctl.crosstalk
             await ctl.arm()
             values = {a: ctl.actuators[a].map.value_at(20.0) for a in ("c0", "c1", "p0", "p1")}
             try:
-                with pytest.raises(MeshwardenError):
-                    await ctl.set(values)
+                await ctl.set(values)
             finally:
                 await ctl.disarm()
 
