@@ -202,8 +202,10 @@ class Controller:
             targets = {aid: 0 for aid in self.actuators}
 
             async def journal(plan: RampPlan) -> None:
-                moving = {a for s in plan.steps for a in s.codes}
-                await self._durable([self._state.record(a, 0, None) for a in moving], None, client)
+                # Every output ends at 0 V, not only those this ramp moves: one a procedure lowered
+                # with unjournaled steps still has its old target in the journal, which a restart
+                # would then want restored.
+                await self._durable([self._state.record(a, 0, None) for a in self.actuators], None, client)
 
             await self._motion.run(claim, targets, allow_disarmed=True, client=client, before_first_write=journal)
             for act in self.actuators.values():

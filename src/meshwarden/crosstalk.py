@@ -32,6 +32,10 @@ import numpy as np
 from meshwarden.errors import CalibrationError
 
 MAX_SHARE = 0.5  # a neighbour acting with half an actuator's own force is not crosstalk but a wiring fault
+# All neighbours together below the actuator's own drive: then I + S is strictly diagonally dominant
+# by rows, and so is every principal part of it, so every joint solve has one solution (the
+# Levy-Desplanques theorem; Horn & Johnson, Matrix Analysis, 2nd ed., Thm 6.1.10 - from memory).
+MAX_TOTAL_SHARE = 1.0
 
 
 def share_from_shift(own_volts: float, equivalent_volts: float, neighbour_volts: float) -> float:
@@ -69,6 +73,12 @@ class CrosstalkShares:
                         f"{where}: crosstalk on '{on}' by '{by}': {share} is outside 0 to {MAX_SHARE}"
                     )
                 out.setdefault(str(on), {})[str(by)] = float(share)
+            total = sum(out.get(str(on), {}).values())
+            if total >= MAX_TOTAL_SHARE:
+                raise CalibrationError(
+                    f"{where}: crosstalk on '{on}': its neighbours' shares add up to {total:.6g}, "
+                    f"not below {MAX_TOTAL_SHARE} (they would move it as much as its own drive)"
+                )
         return cls(out)
 
     def as_data(self) -> dict[str, dict[str, float]]:
@@ -102,7 +112,12 @@ class CrosstalkShares:
                         matrix[index[on], index[by]] += share
                     else:
                         rhs[index[on]] -= share * fixed.get(by, 0.0) ** 2
-            squared = np.linalg.solve(matrix, rhs)
+            try:
+                squared = np.linalg.solve(matrix, rhs)
+            except np.linalg.LinAlgError:
+                raise CalibrationError(
+                    f"the crosstalk shares among {', '.join(free)} cannot be solved for (their matrix is singular)"
+                ) from None
             negative = [n for n, x in zip(free, squared, strict=True) if x < 0.0]
             if not negative:
                 out.update({n: math.sqrt(float(x)) for n, x in zip(free, squared, strict=True)})

@@ -99,6 +99,11 @@ class Motion:
         else:
             plan = plan_ramp(self.state.limits, current, targets)
         if before_first_write is not None:
+            if plan.steps:
+                # Again before journaling: an estop or stop may have come while planning or
+                # re-reading; targets queued after an estop's zeros would outlive it in the journal.
+                # Nothing awaits between this check and the journal's queue.
+                self._check_step(claim, plan.steps[0].codes, allow_disarmed)
             await before_first_write(plan)
         last_step = -float("inf")
         for index, step in enumerate(plan.steps):

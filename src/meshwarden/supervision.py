@@ -145,6 +145,10 @@ class Supervisor:
                 continue
             s.boards[board_id].zero_pending = None
             s.forget_values(board_id)
+            # The board holds zeros now: so must the journal (a restart would offer to restore the
+            # targets from before the stop). Queued, not awaited, as the estop's own zeros.
+            on_board = [a for a, act in s.actuators.items() if act.board.id == board_id]
+            s.journal.record_targets_async([s.record(a, 0, None) for a in on_board], None, None)
             s.emit("estop_confirmed", board=board_id)
             s.log.warning("emergency stop confirmed late: board at zero", board=board_id)
 

@@ -1,0 +1,116 @@
+"""REVIEW (these tests FAIL on purpose on main as of d94847b: each shows a defect). Adversarial checks of the crosstalk correction: what a request with shares in force really
+does at the boards and to the chip, against what the controller reports."""
+
+from __future__ import annotations
+
+import math
+from collections.abc import Callable
+from typing import Any
+
+import pytest
+
+from meshsim import inprocess
+from meshwarden.api import open_controller
+from meshwarden.config import Config
+from meshwarden.crosstalk import CrosstalkShares
+from meshwarden.errors import CalibrationError, MeshwardenError
+from meshwarden.writelog import check_board_log
+from tests.control.conftest import run
+
+Bench = Callable[..., tuple[Config, str]]
+
+
+async def _version_with(ctl: Any, name: str, shares: dict[str, dict[str, float]]) -> None:
+    """Store a version with the configuration's tables and the given crosstalk shares."""
+    tables = ctl.active_tables()
+    manifest = {"format": "meshwarden-calibration-version/1", "version": name, "crosstalk": shares}
+    ctl.calibrations.write(name, tables, manifest)
+
+
+def test_a_request_the_neighbours_overshoot_is_refused_not_silently_clamped(make_bench: Bench) -> None:
+    """With p0's share 0.3 on c0 and p0 at 40 V, c0 asked for a value whose V_eq is below
+    sqrt(0.3) x 40 V cannot be reached: the request must be refused (rule 6), not answered with
+    the asked value while c0 sits at 0 V and the chip is elsewhere."""
+    config, name = make_bench(within_gate=0.3)
+
+    async def scenario() -> tuple[float, float | None, float]:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-v1", {"c0": {"p0": 0.3}, "p0": {"c0": 0.3}})
+            await ctl.activate_calibration("xt-v1")
+            await ctl.arm()
+            await ctl.set({"p0": 40.0}, volts=True)
+            wanted = ctl.actuators["c0"].map.value_at(15.0)  # its table's value at 15 V alone
+            refused = False
+            try:
+                await ctl.set({"c0": wanted})
+            except MeshwardenError:
+                refused = True
+            described = ctl.describe("c0")
+            equivalent = math.sqrt(described["volts"] ** 2 + 0.3 * 40.0**2)
+            really = ctl.actuators["c0"].map.value_at(equivalent)
+            await ctl.disarm()
+            assert refused or described["value"] == pytest.approx(really, abs=1e-3), (
+                f"asked {wanted:.4f}, reported {described['value']}, drive {described['volts']} V, "
+                f"really {really:.4f} (V_eq {equivalent:.2f} V)"
+            )
+            return wanted, described["value"], really
+
+    run(scenario())
+    assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
+
+
+def test_a_share_matrix_that_cannot_be_solved_is_a_clear_refusal(make_bench: Bench) -> None:
+    """Shares of 0.5 between both couplers and both phase shifters (each inside 0..0.5) make I + S
+    singular (eigenvalue -1 of S for this complete bipartite pattern): activating such a version
+    is refused with a CalibrationError and changes nothing, and solving with such shares directly
+    gives a CalibrationError, never numpy's LinAlgError."""
+    config, name = make_bench()
+    shares = {
+        "c0": {"p0": 0.5, "p1": 0.5},
+        "c1": {"p0": 0.5, "p1": 0.5},
+        "p0": {"c0": 0.5, "c1": 0.5},
+        "p1": {"c0": 0.5, "c1": 0.5},
+    }
+    with pytest.raises(CalibrationError, match="cannot be solved"):
+        CrosstalkShares(shares).drive_volts({a: 20.0 for a in shares}, {})
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-sing", shares)
+            with pytest.raises(CalibrationError, match="add up to"):
+                await ctl.activate_calibration("xt-sing")
+            assert ctl.calibrations.active() == "config" and not ctl.crosstalk
+            await ctl.arm()
+            values = {a: ctl.actuators[a].map.value_at(20.0) for a in ("c0", "c1", "p0", "p1")}
+            try:
+                await ctl.set(values)
+            finally:
+                await ctl.disarm()
+
+    run(scenario())
+    assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
+
+
+def test_moving_a_neighbour_leaves_the_controller_believing_an_old_value(make_bench: Bench) -> None:
+    """c0 set to a value with p0 at 0 V; then p0 is driven to 40 V (share 0.3 on c0): the chip's
+    coupling moves, and the controller's reported value of c0 should follow (rule 7) or be unknown."""
+    config, name = make_bench(within_gate=0.3)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-v2", {"c0": {"p0": 0.3}, "p0": {"c0": 0.3}})
+            await ctl.activate_calibration("xt-v2")
+            await ctl.arm()
+            wanted = ctl.actuators["c0"].map.value_at(25.0)
+            await ctl.set({"c0": wanted})
+            await ctl.set({"p0": 40.0}, volts=True)
+            described = ctl.describe("c0")
+            equivalent = math.sqrt(described["volts"] ** 2 + 0.3 * 40.0**2)
+            really = ctl.actuators["c0"].map.value_at(equivalent)
+            await ctl.disarm()
+            assert described["value"] is None or described["value"] == pytest.approx(really, abs=1e-3), (
+                f"reported {described['value']}, really {really:.4f}"
+            )
+
+    run(scenario())
+    assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
