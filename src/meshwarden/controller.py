@@ -51,6 +51,7 @@ from meshwarden.rackstate import ActuatorState, BoardState, Listener, RackState
 from meshwarden.readout import acquire_monitors, read_sense
 from meshwarden.supervision import Supervisor
 
+REACH_TOLERANCE = 1e-3  # a request within this of its value (kappa, or rad) under crosstalk is met
 Prepared = dict[str, tuple[int, float | None]]  # actuator -> (target code, logical value or None)
 
 __all__ = ["ActuatorState", "BoardState", "Controller", "Prepared"]
@@ -280,7 +281,9 @@ class Controller:
             wanted[actuator_id] = (name, float(raw))
         drive = {a: raw if volts else self.actuators[a].map.volts_for(raw) for a, (_, raw) in wanted.items()}
         if not volts and self._crosstalk:
-            drive = self._crosstalk.drive_volts(drive, self._neighbour_volts(drive))
+            neighbours = self._neighbour_volts(drive)
+            drive = self._crosstalk.drive_volts(drive, neighbours)
+            self._check_reached({a: raw for a, (_, raw) in wanted.items()}, {**neighbours, **drive})
         out: Prepared = {}
         for actuator_id, (_, raw) in wanted.items():
             act = self.actuators[actuator_id]
@@ -298,10 +301,33 @@ class Controller:
             out[actuator_id] = (code, value)
         return out
 
+    def _check_reached(self, wanted: dict[str, float], volts: dict[str, float]) -> None:
+        """Refuse a request its neighbours' crosstalk alone carries past (its drive came out at
+        0 V): rule 6, nothing is silently clamped. Within REACH_TOLERANCE of the value it is met."""
+        for aid, value in wanted.items():
+            act = self.actuators[aid]
+            try:
+                reached = act.map.value_at(self._crosstalk.equivalent_volts(aid, volts))
+            except MeshwardenError:
+                reached = math.inf
+            miss = reached - value
+            if act.config.kind == "phase" and math.isfinite(miss):
+                miss = (miss + math.pi) % (2 * math.pi) - math.pi
+            if not abs(miss) <= REACH_TOLERANCE:
+                by = ", ".join(sorted(self._crosstalk.shares.get(aid, {})))
+                raise UnreachableRefused(
+                    f"{aid}: {value:g} cannot be reached while its neighbours ({by}) are driven as they are: "
+                    f"their crosstalk alone gives {reached:.6g}; lower them first, or ask for that much or more",
+                    actuator=aid,
+                    reachable=[reached, act.map.reachable()[1]],
+                )
+
     def _neighbour_volts(self, moving: dict[str, float]) -> dict[str, float]:
         """Present volts of every actuator whose crosstalk acts on one of ``moving``."""
         shares = self._crosstalk.shares
-        names = sorted({by for on in moving for by in shares.get(on, {}) if by not in moving})
+        return self._present_volts(sorted({by for on in moving for by in shares.get(on, {}) if by not in moving}))
+
+    def _present_volts(self, names: list[str]) -> dict[str, float]:
         codes = self._state.current_codes(names)
         return {
             n: code_to_volts(codes[n], self.actuators[n].board.full_scale_volts, self.actuators[n].board.dac_bits)
@@ -397,7 +423,23 @@ class Controller:
                     self.actuators[aid].value = value
                 elif after[aid] != before[aid]:
                     self.actuators[aid].value = None
+            self._refresh_neighbours(frozenset(a for a in prepared if after[a] != before[a]), frozenset(prepared))
         return {aid: self.describe(aid) for aid in prepared}
+
+    def _refresh_neighbours(self, moved: frozenset[str], requested: frozenset[str]) -> None:
+        """What the actuators a move's crosstalk acts on (and that it did not set) mean now - rule
+        7: the value reported is the chip's as the model has it, not the one asked before."""
+        if not self._crosstalk or not moved:
+            return
+        for aid in self._crosstalk.acting_on(moved) - requested:
+            act = self.actuators[aid]
+            if act.value is None:
+                continue
+            volts = self._present_volts([aid, *self._crosstalk.shares.get(aid, {})])
+            try:
+                act.value = act.map.value_at(self._crosstalk.equivalent_volts(aid, volts))
+            except MeshwardenError:
+                act.value = None
 
     async def _durable(self, rows: list[Any], request: str | None, client: str | None) -> None:
         """Journal targets and wait until they are synced (the writer thread commits them)."""

@@ -94,6 +94,17 @@ class CrosstalkShares:
     def __bool__(self) -> bool:
         return any(self.shares.values())
 
+    def equivalent_volts(self, name: str, volts: Mapping[str, float]) -> float:
+        """V_eq of ``name`` with every actuator at ``volts`` (absent ones at 0 V)."""
+        squared = volts.get(name, 0.0) ** 2 + sum(
+            share * volts.get(by, 0.0) ** 2 for by, share in self.shares.get(name, {}).items()
+        )
+        return math.sqrt(squared)
+
+    def acting_on(self, moved: frozenset[str]) -> set[str]:
+        """The actuators on which one of ``moved`` acts."""
+        return {on for on, row in self.shares.items() if moved.intersection(row)}
+
     def drive_volts(self, equivalent: Mapping[str, float], held: Mapping[str, float]) -> dict[str, float]:
         """Volts for the actuators of ``equivalent`` (each wants that V_eq) with every other
         actuator at its ``held`` volts: the solution of (I + S_rr) x = u - S_ro y, x = V^2 >= 0

@@ -1,5 +1,6 @@
-"""REVIEW (these tests FAIL on purpose on main as of d94847b: each shows a defect). Adversarial checks of the crosstalk correction: what a request with shares in force really
-does at the boards and to the chip, against what the controller reports."""
+"""Adversarial checks of the crosstalk correction (each found a defect in review, now mended):
+what a request with shares in force really does at the boards and to the chip, against what the
+controller reports."""
 
 from __future__ import annotations
 
