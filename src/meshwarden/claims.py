@@ -56,6 +56,15 @@ class Claim:
             self.stop_reason = reason
         self._wake.set()
 
+    def resume_for_cleanup(self) -> bool:
+        """After a requested stop (a cancel), let the procedure move once more to put outputs back
+        where it found them; False (nothing changes) once the claim was ended by disarm or estop,
+        which take the outputs over themselves."""
+        if self.ended:
+            return False
+        self.stop_reason = None
+        return True
+
     def check(self) -> None:
         """Raise :class:`StoppedRefused` if the claim was stopped or ended."""
         if self.stop_reason is not None:

@@ -7,6 +7,7 @@ import asyncio
 import math
 from collections.abc import Callable
 from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
@@ -16,7 +17,7 @@ from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.calibration_store import BASE_VERSION, CalibrationStore
 from meshwarden.config import Config
-from meshwarden.errors import CalibrationError, RefusedError
+from meshwarden.errors import CalibrationError, MeshwardenError, RefusedError
 from meshwarden.procedures.calibrate_run import calibration_job
 from meshwarden.writelog import check_board_log
 from tests.control.conftest import run
@@ -204,3 +205,31 @@ def test_a_version_without_a_sweeps_file_reads_as_none_and_a_broken_one_is_refus
     with pytest.raises(CalibrationError, match=r"sweeps\.json"):
         store.sweeps("cal-new")
     assert store.tables("cal-new") == {}  # the sweeps file is never taken for a table
+
+
+def test_a_cancelled_calibration_puts_the_outputs_back(make_bench: Bench) -> None:
+    """A cancel (the claim's cooperative stop, as the bus's `cancel` does) in the middle of a
+    calibration stops it and ramps every output back to where it began; the board holds the
+    starting codes and its writes kept the rules."""
+    config, name = make_bench()
+
+    async def scenario() -> tuple[list[int], list[int]]:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 30.0, "c1": 25.0}, volts=True)
+            board = inprocess.get(name).board("b0")
+            before = list(board.codes[:8])
+            claims: list[Any] = []
+            job = asyncio.create_task(calibration_job(ctl, on_claim=claims.append))
+            while board.writes_executed < 40:  # well into the sweeps
+                await asyncio.sleep(0.01)
+            claims[0].request_stop("cancelled by the test")
+            with pytest.raises(MeshwardenError):
+                await job
+            after = list(board.codes[:8])
+            await ctl.disarm()
+            return before, after
+
+    before, after = run(scenario())
+    assert after == before
+    assert_rules_held(config, name)

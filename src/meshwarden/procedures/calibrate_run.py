@@ -43,6 +43,7 @@ from meshwarden.errors import (
     MeshwardenError,
     OutOfRangeRefused,
     RefusedError,
+    StoppedRefused,
     UnknownTargetRefused,
 )
 from meshwarden.mapping import ActuatorMap
@@ -306,8 +307,10 @@ class Calibrator:
                 else:
                     await self._phase(step, actuator)
             except MeshwardenError as exc:
-                if self.claim.stopping:
-                    raise
+                if self.claim.stopping:  # a stop, whatever the board said meanwhile (an abort, say)
+                    if isinstance(exc, StoppedRefused):
+                        raise
+                    raise StoppedRefused(f"calibration stopped: {self.claim.stop_reason}") from exc
                 self.run.outcomes.setdefault(actuator, Outcome("failed")).status = "failed"
                 self.run.outcomes[actuator].reason = exc.message
         if self.progress is not None:
@@ -584,7 +587,9 @@ async def calibrate(
         try:
             return await calibrator.calibrate(wanted)
         finally:
-            if not claim.stopping:
+            # After a cancel too: outputs end where they began. Disarm and estop end the claim
+            # and take the outputs over themselves.
+            if claim.resume_for_cleanup() and controller.armed and not controller.estopped:
                 await claim.move(start, volts=True, journal=True)
 
 
