@@ -299,7 +299,33 @@ class Controller:
                 except MeshwardenError:
                     value = None
             out[actuator_id] = (code, value)
+        if self._crosstalk:
+            self._check_crosstalk_limits(out)
         return out
+
+    def _check_crosstalk_limits(self, prepared: Prepared) -> None:
+        """Rule 4 with the neighbours' share counted: no actuator the request moves or acts on may
+        be driven, as its own V^2 plus its neighbours' shares, past its hard limit (which the
+        configuration keeps below pull-in with the margin) - at any point of the ramp, bounded by
+        taking each output at the higher of where it starts and where it ends."""
+        moving = frozenset(prepared)
+        names = sorted(moving | self._crosstalk.acting_on(moving))
+        names += sorted({by for n in names for by in self._crosstalk.shares.get(n, {})} - set(names))
+        now = self._present_volts(names)
+        highest = dict(now)
+        for aid, (code, _) in prepared.items():
+            board = self.actuators[aid].board
+            highest[aid] = max(now[aid], code_to_volts(code, board.full_scale_volts, board.dac_bits))
+        for aid in sorted(moving | self._crosstalk.acting_on(moving)):
+            limit = self.actuators[aid].limit.hard_limit_volts
+            equivalent = self._crosstalk.equivalent_volts(aid, highest)
+            if equivalent > limit + 1e-9:
+                raise LimitRefused(
+                    f"{aid}: with its neighbours' crosstalk this request would drive it as {equivalent:.3f} V, "
+                    f"above its {limit:g} V limit; lower the neighbours first",
+                    actuator=aid,
+                    equivalent_volts=equivalent,
+                )
 
     def _check_reached(self, wanted: dict[str, float], volts: dict[str, float]) -> None:
         """Refuse a request its neighbours' crosstalk alone carries past (its drive came out at

@@ -115,3 +115,39 @@ def test_moving_a_neighbour_leaves_the_controller_believing_an_old_value(make_be
 
     run(scenario())
     assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
+
+
+def test_no_request_drives_an_actuator_past_its_limit_through_its_neighbours(make_bench: Bench) -> None:
+    """With p0's measured share 0.5 on c0 (limit 40 V): c0 at 35 V, then p0 to 44 V would drive c0
+    as sqrt(35^2 + 0.5 x 44^2) = 46.8 V - refused; p0 to 20 V (c0 as 37.7 V) is allowed; then c0
+    to 38 V (as 40.5 V) is refused. The board never received a refused value."""
+    config, name = make_bench(within_gate=0.0)
+
+    async def scenario() -> list[str]:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-limit", {"c0": {"p0": 0.5}})
+            await ctl.activate_calibration("xt-limit")
+            await ctl.arm()
+            await ctl.set({"c0": 35.0}, volts=True)
+            refusals = []
+            with pytest.raises(MeshwardenError) as err:
+                await ctl.set({"p0": 44.0}, volts=True)
+            refusals.append(err.value.code)
+            await ctl.set({"p0": 20.0}, volts=True)
+            with pytest.raises(MeshwardenError) as err:
+                await ctl.set({"c0": 38.0}, volts=True)
+            refusals.append(err.value.code)
+            await ctl.disarm()
+            return refusals
+
+    assert run(scenario()) == ["limit", "limit"]
+    log = list(inprocess.get(name).board("b0").write_log)
+    assert not check_board_log(config, "b0", log).violations
+    volts_per_code = 60.0 / 65536
+    written = {ch: [] for ch in (0, 1)}  # b0:0 is c0, b0:1 is p0
+    for _, kind, first, values in log:
+        if kind == "write":
+            for k, code in enumerate(values):
+                if first + k in written:
+                    written[first + k].append(code * volts_per_code)
+    assert max(written[0]) < 35.01 and max(written[1]) < 20.01
