@@ -66,6 +66,8 @@ MIN_POINTS, MAX_POINTS = 12, 64
 LIT_FRACTION_OF_ADC = 0.01  # the laser counts as on when a monitor reads above 1 % of its ADC range
 SPLIT = 0.5
 COUPLER_EXTEND_FRACTION = 0.025  # a coupler's sweep goes on above its table in steps of 2.5 % of its top volts
+CROSSTALK_TOP_MARGIN = 0.05  # a crosstalk reading this close to a table's top may have folded past it
+CROSSTALK_AGREE = 0.002  # besides 30 %: how far the half-drive and full-drive shares may differ
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
 PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
@@ -194,6 +196,9 @@ class Calibrator:
         self.gate_of = {g.coupler: gid for gid, g in controller.gates.items()}
         self.gate_of.update({g.phase: gid for gid, g in controller.gates.items()})
         self.held: dict[str, float] = {}
+        self.stand_ins: set[tuple[str, str]] = set()  # (coupler, phase) shares taken from other gates
+        # couplers fitted with a stand-in own-phase share: (points, V_half^2 / states, step)
+        self.refit: dict[str, tuple[dict[float, tuple[float, float]], float, CalibrationStep]] = {}
 
     # ---------------------------------------------------------------- tables in force for this run
 
@@ -305,6 +310,7 @@ class Calibrator:
                 if step.part == "coupler":
                     await self._coupler(step, actuator)
                 else:
+                    self._refit_with_measured_shares()
                     await self._phase(step, actuator)
             except MeshwardenError as exc:
                 if self.claim.stopping:  # a stop, whatever the board said meanwhile (an abort, say)
@@ -313,6 +319,7 @@ class Calibrator:
                     raise StoppedRefused(f"calibration stopped: {self.claim.stop_reason}") from exc
                 self.run.outcomes.setdefault(actuator, Outcome("failed")).status = "failed"
                 self.run.outcomes[actuator].reason = exc.message
+        self._refit_with_measured_shares()
         if self.progress is not None:
             self.progress(len(steps), len(steps), "")
         self.run.seconds = time.monotonic() - started
@@ -410,8 +417,12 @@ class Calibrator:
         self._take(actuator, outcome.table)
         await self._coupler_crosstalk(step, actuator, routing, settle)
         own_phase = self.ctl.gates[step.gate].phase
-        if own_phase not in self.run.crosstalk.get(actuator, {}) and (stand_in := self._own_phase_share(step.gate)):
-            self.run.crosstalk.setdefault(actuator, {})[own_phase] = round(stand_in, 6)  # other gates' median
+        if own_phase not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
+            self.stand_ins.add((actuator, own_phase))
+            if own in turned:
+                self.refit[actuator] = (dict(points), turned[own] ** 2 / len(states), step)
+            if stand_in := self._own_phase_share(step.gate):
+                self.run.crosstalk.setdefault(actuator, {})[own_phase] = round(stand_in, 6)
 
     def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
         """The actuators whose drive may act on a gate's coupler: the couplers of the gates side by
@@ -451,20 +462,34 @@ class Calibrator:
         if not b0 + c0 > 0:
             return
         arm = self._phase_arm_port(step)
-        for neighbour in neighbours:
-            top = min(self._map(neighbour).top_volts, self.ctl.actuators[neighbour].limit.hard_limit_volts)
-            b1, c1 = await ports({neighbour: top})
+        base = c0 / (b0 + c0)
+
+        async def share_at(neighbour: str, drive: float) -> float | None:
+            """The share a reading with ``neighbour`` at ``drive`` gives; None where the shift
+            leaves the table or reaches its top (past full transfer a shift reads back smaller)."""
+            b1, c1 = await ports({neighbour: drive})
             if neighbour == self.ctl.gates[step.gate].phase and arm == "bar":
                 shifted = c1 / (b0 + c0)  # the driven arm's own loss dims the bar port: use the other
             elif neighbour == self.ctl.gates[step.gate].phase and arm == "cross":
                 shifted = 1.0 - b1 / (b0 + c0)
             else:
                 shifted = c1 / (b1 + c1) if b1 + c1 > 0 else math.nan
-            value = amap.value_at(own) + (shifted - c0 / (b0 + c0))
-            if not (math.isfinite(value) and low < value < high):
-                continue  # moved out of the table: a wiring fault, not crosstalk; the scan will say
-            share = share_from_shift(own, amap.volts_for(value), top)
-            self.run.crosstalk.setdefault(actuator, {})[neighbour] = round(max(share, 0.0), 6)
+            value = amap.value_at(own) + (shifted - base)
+            if not (math.isfinite(value) and low < value < high - CROSSTALK_TOP_MARGIN):
+                return None
+            return max(share_from_shift(own, amap.volts_for(value), drive), 0.0)
+
+        for neighbour in neighbours:
+            top = min(self._map(neighbour).top_volts, self.ctl.actuators[neighbour].limit.hard_limit_volts)
+            # At half its top the neighbour gives a quarter of the shift: a large share stays on
+            # the rising side there, where at the top it might fold past full transfer and read
+            # small. The top's reading (four times the signal) is kept where the two agree.
+            half = await share_at(neighbour, top / 2)
+            full = await share_at(neighbour, top)
+            agree = half is not None and full is not None and abs(full - half) <= 0.3 * half + CROSSTALK_AGREE
+            share = full if agree else half
+            if share is not None:
+                self.run.crosstalk.setdefault(actuator, {})[neighbour] = round(share, 6)
 
     def _phase_arm_port(self, step: CalibrationStep) -> str | None:
         """Which port's taps see the gate's phase arm (its top mode): "bar", "cross" or None.
@@ -488,14 +513,32 @@ class Calibrator:
         """The share of a gate's own phase shifter's V^2 on its coupler: measured on this gate if
         it was, else the median of the gates of this run that were (one design, one layout)."""
         coupler, phase = self.ctl.gates[gate].coupler, self.ctl.gates[gate].phase
-        if phase in self.run.crosstalk.get(coupler, {}):
+        if phase in self.run.crosstalk.get(coupler, {}) and (coupler, phase) not in self.stand_ins:
             return self.run.crosstalk[coupler][phase]
         measured = [
-            row[self.ctl.gates[g].phase]
-            for g in self.ctl.gates
-            if self.ctl.gates[g].phase in (row := self.run.crosstalk.get(self.ctl.gates[g].coupler, {}))
+            row[g.phase]
+            for g in self.ctl.gates.values()
+            if g.phase in (row := self.run.crosstalk.get(g.coupler, {})) and (g.coupler, g.phase) not in self.stand_ins
         ]
         return float(np.median(measured)) if measured else 0.0
+
+    def _refit_with_measured_shares(self) -> None:
+        """Couplers fitted before any own-phase share was measured (the first columns come first)
+        are fitted again from their stored points with the median measured since, before any
+        phase shifter is calibrated through them."""
+        for actuator, (points, per_share, step) in list(self.refit.items()):
+            share = self._own_phase_share(step.gate)
+            fit = self._coupler_fit(points, share * per_share)
+            outcome = self.run.outcomes[actuator]
+            if coupler_gate(fit, needed_low=0.5, needed_high=0.5).ok:
+                outcome.table = fit.to_calibration(
+                    actuator, self.run.version, note="measured in place: bar/cross sweep"
+                )
+                outcome.points, outcome.residual = fit.points_used, fit.residual_rms
+                self._take(actuator, outcome.table)
+            if share > 0.0:
+                self.run.crosstalk.setdefault(actuator, {})[self.ctl.gates[step.gate].phase] = round(share, 6)
+        self.refit.clear()
 
     async def _past_full_transfer(
         self,
