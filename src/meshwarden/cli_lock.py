@@ -16,6 +16,7 @@ import math
 import sys
 from typing import Any
 
+from meshwarden.cli_common import UsageError, add_client_options, open_client
 from meshwarden.errors import MeshwardenError, UnreachableError
 
 EXIT_OK, EXIT_REFUSED, EXIT_USAGE = 0, 1, 2
@@ -39,12 +40,7 @@ def add_parsers(sub: Any) -> None:
     stop.add_argument("name", nargs="?", help="the lock to stop")
     stop.add_argument("--all", action="store_true", help="stop every running lock")
     for cmd in (start, listing, stop):
-        cmd.add_argument("--endpoint", default="tcp://127.0.0.1:7640", help="the daemon's command endpoint")
-        cmd.add_argument("--json", action="store_true", help="machine-readable output")
-        cmd.add_argument("--timeout", type=float, default=2.0, help="seconds per try (default 2)")
-        cmd.add_argument("--retries", type=int, default=2, help="tries after the first (default 2)")
-        cmd.add_argument("--key", help="this client's CURVE key file (NAME.key_secret)")
-        cmd.add_argument("--server-key", help="the daemon's public key file")
+        add_client_options(cmd)
     lock.set_defaults(run=run)
 
 
@@ -75,8 +71,6 @@ def render_locks(table: dict[str, dict[str, Any]]) -> str:
 
 def run(args: argparse.Namespace) -> int:
     """Run ``meshwarden lock ACTION``."""
-    from meshwarden.client import Client
-
     action = getattr(args, "lock_action", None)
     if action is None:
         print("meshwarden: lock: give an action: start, list or stop", file=sys.stderr)
@@ -85,13 +79,7 @@ def run(args: argparse.Namespace) -> int:
         print("meshwarden: lock stop: give a NAME or --all (not both)", file=sys.stderr)
         return EXIT_USAGE
     try:
-        with Client(
-            args.endpoint,
-            timeout_s=args.timeout,
-            retries=args.retries,
-            key_file=args.key,
-            server_key_file=args.server_key,
-        ) as client:
+        with open_client(args) as client:
             if action == "start":
                 result: Any = client.lock_start(
                     args.name,
@@ -109,8 +97,8 @@ def run(args: argparse.Namespace) -> int:
             else:
                 result = {"stopped": client.lock_stop(None if args.all else args.name)}
                 text = "stopped: " + (", ".join(result["stopped"]) or "none")
-    except UnreachableError:
-        raise
+    except (UnreachableError, UsageError):
+        raise  # the command line's own exit codes
     except MeshwardenError as exc:
         print(f"meshwarden: {exc.code}: {exc.message}", file=sys.stderr)
         return EXIT_REFUSED

@@ -19,6 +19,7 @@ import threading
 from pathlib import Path
 from typing import Any
 
+from meshwarden.cli_common import UsageError, add_client_options, open_client
 from meshwarden.errors import MeshwardenError, UnreachableError
 from meshwarden.lattice_plot import NO_MATPLOTLIB, draw_lattice, load_pyplot, save_figure
 
@@ -39,35 +40,18 @@ COLOURS = {
 }
 
 
-def _common(cmd: argparse.ArgumentParser) -> None:
-    cmd.add_argument("--endpoint", default="tcp://127.0.0.1:7640", help="the daemon's command endpoint")
-    cmd.add_argument("--json", action="store_true", help="machine-readable output")
-    cmd.add_argument("--timeout", type=float, default=2.0, help="seconds per try (default 2)")
-    cmd.add_argument("--retries", type=int, default=2, help="tries after the first (default 2)")
-    cmd.add_argument("--key", help="this client's CURVE key file (NAME.key_secret)")
-    cmd.add_argument("--server-key", help="the daemon's public key file")
-
-
 def add_parsers(sub: Any) -> None:
     """Add ``scan`` and ``scans`` to the command line's subparsers."""
     scan = sub.add_parser("scan", help="run a fault scan: stuck actuators, driver and monitor faults")
     scan.add_argument("targets", nargs="*", metavar="ID", help="actuators or gates (default: all)")
     scan.add_argument("--report", metavar="FILE", help="write the whole report (JSON if FILE ends in .json)")
     scan.add_argument("--plot", metavar="FILE", help="draw the lattice coloured by verdict (needs matplotlib)")
-    _common(scan)
+    add_client_options(scan)
     scan.set_defaults(run=run)
     scans = sub.add_parser("scans", help="past fault scans with their counts of findings")
     scans.add_argument("--limit", type=int, default=100, help="how many, newest first (default 100)")
-    _common(scans)
+    add_client_options(scans)
     scans.set_defaults(run=run)
-
-
-def _client(args: argparse.Namespace) -> Any:
-    from meshwarden.client import Client
-
-    return Client(
-        args.endpoint, timeout_s=args.timeout, retries=args.retries, key_file=args.key, server_key_file=args.server_key
-    )
 
 
 def run(args: argparse.Namespace) -> int:
@@ -77,6 +61,8 @@ def run(args: argparse.Namespace) -> int:
     except UnreachableError as exc:
         print(f"meshwarden: unreachable: {exc.message}", file=sys.stderr)
         return EXIT_UNREACHABLE
+    except UsageError:
+        raise  # the command line's own exit code (2)
     except MeshwardenError as exc:
         print(f"meshwarden: {exc.code}: {exc.message}", file=sys.stderr)
         return EXIT_REFUSED
@@ -86,7 +72,7 @@ def _scans(args: argparse.Namespace) -> int:
     if not 1 <= args.limit <= 1000:
         print("meshwarden: scans: --limit must be 1 to 1000", file=sys.stderr)
         return EXIT_USAGE
-    with _client(args) as client:
+    with open_client(args) as client:
         history = client.scans(limit=args.limit)
     if args.json:
         print(json.dumps(history, indent=2, sort_keys=True))
@@ -120,7 +106,7 @@ def _scan(args: argparse.Namespace) -> int:
 
 
 def _run_plain(args: argparse.Namespace) -> dict[str, Any]:
-    with _client(args) as client:
+    with open_client(args) as client:
         result = client.scan(args.targets or None, wait=True)
     report: dict[str, Any] = result["scan"]
     return report
@@ -129,7 +115,7 @@ def _run_plain(args: argparse.Namespace) -> dict[str, Any]:
 def _run_with_progress(args: argparse.Namespace) -> dict[str, Any]:
     """Wait for the scan in a helper thread while this one shows the job's progress from telemetry."""
     outcome: dict[str, Any] = {}
-    with _client(args) as watcher:
+    with open_client(args) as watcher:
         stream = watcher.subscribe(["job"], timeout_s=0.2)
 
         def work() -> None:

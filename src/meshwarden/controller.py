@@ -309,14 +309,13 @@ class Controller:
         configuration keeps below pull-in with the margin) - at any point of the ramp, bounded by
         taking each output at the higher of where it starts and where it ends."""
         moving = frozenset(prepared)
-        names = sorted(moving | self._crosstalk.acting_on(moving))
-        names += sorted({by for n in names for by in self._crosstalk.shares.get(n, {})} - set(names))
-        now = self._present_volts(names)
-        highest = dict(now)
+        driven = sorted(moving | self._crosstalk.acting_on(moving))
+        by = {b for n in driven for b in self._crosstalk.shares.get(n, {})} - set(driven)
+        highest = self._present_volts([*driven, *sorted(by)])
         for aid, (code, _) in prepared.items():
             board = self.actuators[aid].board
-            highest[aid] = max(now[aid], code_to_volts(code, board.full_scale_volts, board.dac_bits))
-        for aid in sorted(moving | self._crosstalk.acting_on(moving)):
+            highest[aid] = max(highest[aid], code_to_volts(code, board.full_scale_volts, board.dac_bits))
+        for aid in driven:
             limit = self.actuators[aid].limit.hard_limit_volts
             equivalent = self._crosstalk.equivalent_volts(aid, highest)
             if equivalent > limit + 1e-9:
@@ -332,10 +331,8 @@ class Controller:
         0 V): rule 6, nothing is silently clamped. Within REACH_TOLERANCE of the value it is met."""
         for aid, value in wanted.items():
             act = self.actuators[aid]
-            try:
-                reached = act.map.value_at(self._crosstalk.equivalent_volts(aid, volts))
-            except MeshwardenError:
-                reached = math.inf
+            meaning = self._meaning(aid, volts)
+            reached = math.inf if meaning is None else meaning
             miss = reached - value
             if act.config.kind == "phase" and math.isfinite(miss):
                 miss = (miss + math.pi) % (2 * math.pi) - math.pi
@@ -461,11 +458,15 @@ class Controller:
             act = self.actuators[aid]
             if act.value is None:
                 continue
-            volts = self._present_volts([aid, *self._crosstalk.shares.get(aid, {})])
-            try:
-                act.value = act.map.value_at(self._crosstalk.equivalent_volts(aid, volts))
-            except MeshwardenError:
-                act.value = None
+            act.value = self._meaning(aid, self._present_volts([aid, *self._crosstalk.shares.get(aid, {})]))
+
+    def _meaning(self, aid: str, volts: dict[str, float]) -> float | None:
+        """The logical value ``aid`` has with every actuator at ``volts``, its neighbours' crosstalk
+        counted (None: outside its table)."""
+        try:
+            return self.actuators[aid].map.value_at(self._crosstalk.equivalent_volts(aid, volts))
+        except MeshwardenError:
+            return None
 
     async def _durable(self, rows: list[Any], request: str | None, client: str | None) -> None:
         """Journal targets and wait until they are synced (the writer thread commits them)."""

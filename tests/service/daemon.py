@@ -50,29 +50,25 @@ def start_daemon(
     another process before the daemon binds it (the OS hands out the same range to outgoing
     connections): a daemon that exits saying so is started again on other ports, twice at most."""
     for attempt in range(3):
-        try:
-            return _start_daemon(config, log_dir, *extra, ports=ports, endpoint=endpoint, client_kwargs=client_kwargs)
-        except _PortTaken:
-            if endpoint is not None or attempt == 2:
-                raise
+        bind = endpoint or f"tcp://127.0.0.1:{free_port()}"
+        daemon = _launch(config, log_dir, extra, ports, bind, f"tcp://127.0.0.1:{free_port()}", client_kwargs or {})
+        failure = _failure_to_answer(daemon)
+        if failure is None:
+            return daemon
+        if "in use" not in failure.lower() or endpoint is not None or attempt == 2:
+            raise RuntimeError(failure)
     raise AssertionError("unreachable")
 
 
-class _PortTaken(RuntimeError):
-    """The daemon could not bind a port that was free a moment before."""
-
-
-def _start_daemon(
+def _launch(
     config: Path,
     log_dir: Path,
-    *extra: str,
-    ports: dict[str, str] | None = None,
-    endpoint: str | None = None,
-    client_kwargs: dict[str, Any] | None = None,
+    extra: tuple[str, ...],
+    ports: dict[str, str] | None,
+    endpoint: str,
+    pub: str,
+    client_kwargs: dict[str, Any],
 ) -> Daemon:
-    command_port = free_port()
-    endpoint = endpoint or f"tcp://127.0.0.1:{command_port}"
-    pub = f"tcp://127.0.0.1:{free_port()}"
     args = [
         sys.executable,
         "-m",
@@ -99,23 +95,25 @@ def _start_daemon(
         proc = subprocess.Popen(
             args, stdout=out, stderr=subprocess.STDOUT, cwd=Path(__file__).resolve().parents[2], env=dict(os.environ)
         )
-    daemon = Daemon(proc, endpoint, pub, log, client_kwargs or {})
+    return Daemon(proc, endpoint, pub, log, client_kwargs)
+
+
+def _failure_to_answer(daemon: Daemon) -> str | None:
+    """None once the daemon answers ``status``; else why not (it is stopped then). Waits in short
+    steps, so that a daemon that exited is seen at once."""
     try:
         with daemon.client() as probe:
             deadline = time.monotonic() + 30.0
-            while True:  # in short waits, so that a daemon that exited is seen at once
+            while True:
                 try:
                     probe.wait_ready(1.0)
                     break
                 except UnreachableError:
-                    if proc.poll() is not None or time.monotonic() > deadline:
+                    if daemon.proc.poll() is not None or time.monotonic() > deadline:
                         raise
     except UnreachableError:
         daemon.stop()
-        text = log.read_text()
-        if "in use" in text.lower():
-            raise _PortTaken(text) from None
-        raise RuntimeError(f"daemon did not answer: {text}") from None
-    if proc.poll() is not None:
-        raise RuntimeError(f"daemon exited: {log.read_text()}")
-    return daemon
+        return f"daemon did not answer: {daemon.log.read_text()}"
+    if daemon.proc.poll() is not None:
+        return f"daemon exited: {daemon.log.read_text()}"
+    return None

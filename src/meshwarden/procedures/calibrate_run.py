@@ -388,8 +388,10 @@ class Calibrator:
             await measure(v)
         await self._past_full_transfer(actuator, points, measure)
         own = self.ctl.gates[step.gate].phase
-        # Half of the readings had the own phase shifter at a half turn: its crosstalk share.
-        extra = self._own_phase_share(step.gate) * turned[own] ** 2 / len(states) if own in turned else 0.0
+        # Half of the readings had the own phase shifter at a half turn: per unit of its share on
+        # the coupler, that much more V^2 on average.
+        per_share = turned[own] ** 2 / len(states) if own in turned else 0.0
+        extra = self._own_phase_share(step.gate) * per_share
         fit = self._coupler_fit(points, extra)
         full = fit.full_transfer_volts
         for _ in range(COUPLER_REFINE_ROUNDS):  # pin full transfer down: a point on it reads the top
@@ -416,13 +418,12 @@ class Calibrator:
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
         await self._coupler_crosstalk(step, actuator, routing, settle)
-        own_phase = self.ctl.gates[step.gate].phase
-        if own_phase not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
-            self.stand_ins.add((actuator, own_phase))
-            if own in turned:
-                self.refit[actuator] = (dict(points), turned[own] ** 2 / len(states), step)
+        if own not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
+            self.stand_ins.add((actuator, own))
+            if per_share:
+                self.refit[actuator] = (dict(points), per_share, step)
             if stand_in := self._own_phase_share(step.gate):
-                self.run.crosstalk.setdefault(actuator, {})[own_phase] = round(stand_in, 6)
+                self.run.crosstalk.setdefault(actuator, {})[own] = round(stand_in, 6)
 
     def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
         """The actuators whose drive may act on a gate's coupler: the couplers of the gates side by
@@ -439,8 +440,8 @@ class Calibrator:
     ) -> None:
         """Measure the share of each neighbour's V^2 acting on this coupler: hold it at its split
         (where kappa moves most with drive), read kappa with every neighbour at 0 V and with one
-        neighbour at a time driven to its top; the shift read through the fresh table is the
-        extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`). Kappa is the
+        neighbour at a time driven to half its top and to its top; the shift read through the
+        fresh table is the extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`). Kappa is the
         plain ratio here: only its change counts, and the two paths' fixed transmissions scale
         that by the same factor as the table's points (within their imbalance). For the gate's
         own phase shifter, only the port off its arm counts (:meth:`_phase_arm_port`)."""

@@ -167,15 +167,21 @@ def incoherent_powers(topology: LatticeTopology, kappas: Mapping[str, float | No
         power[mode] = 1.0
     out = {m: power[mode] for m, (after, mode) in topology.taps.items() if after == -1}
     for column in range(topology.columns):
-        for gate, (col, top) in topology.gates.items():
-            if col != column:
-                continue
-            kappa = kappas.get(gate)
-            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
-            upper, lower = power[top], power[top + 1]
-            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        _mix_column(topology, kappas, column, power)
         out |= {m: power[mode] for m, (after, mode) in topology.taps.items() if after == column}
     return out
+
+
+def _mix_column(topology: LatticeTopology, kappas: Mapping[str, float | None], column: int, power: list[float]) -> None:
+    """Power-summed light through one column, in place: each gate sends 1 - kappa of each input
+    straight on and kappa across (unknown kappa: 1/2)."""
+    for gate, (col, top) in topology.gates.items():
+        if col != column:
+            continue
+        kappa = kappas.get(gate)
+        k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
+        upper, lower = power[top], power[top + 1]
+        power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
 
 
 def _powers(
@@ -185,13 +191,7 @@ def _powers(
     power = [start.get(m, 0.0) for m in range(topology.modes)]
     out = {first - 1: list(power)}
     for column in range(first, topology.columns):
-        for gate, (col, top) in topology.gates.items():
-            if col != column:
-                continue
-            kappa = kappas.get(gate)
-            k = 0.5 if kappa is None else min(max(kappa, 0.0), 1.0)
-            upper, lower = power[top], power[top + 1]
-            power[top], power[top + 1] = (1 - k) * upper + k * lower, k * upper + (1 - k) * lower
+        _mix_column(topology, kappas, column, power)
         out[column] = list(power)
     return out
 

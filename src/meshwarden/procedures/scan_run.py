@@ -270,7 +270,6 @@ async def run_scan(
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
-                    # rest, stepped, rest again: the light drifts meanwhile, and a straight drift cancels
                     # rest, half way, all the way, rest again: two sizes of step leave a working actuator no operating
                     # point where both show nothing; the light drifts meanwhile, and a straight drift cancels
                     halfway = {
