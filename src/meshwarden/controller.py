@@ -52,6 +52,10 @@ from meshwarden.readout import acquire_monitors, read_sense
 from meshwarden.supervision import Supervisor
 
 REACH_TOLERANCE = 1e-3  # a request within this of its value (kappa, or rad) under crosstalk is met
+# An emergency stop's reply waits at most this long, after the boards are zero, for its journal
+# marker (one fsync, normally done while the boards were being zeroed): a stalled disk may delay
+# the answer by this much, never the zeroing itself.
+ESTOP_MARK_WAIT_S = 0.025
 Prepared = dict[str, tuple[int, float | None]]  # actuator -> (target code, logical value or None)
 
 __all__ = ["ActuatorState", "BoardState", "Controller", "Prepared"]
@@ -223,6 +227,10 @@ class Controller:
         self._state.armed = False
         self._stops += 1
         self.claims.closing += 1  # no new held claim while the boards are being zeroed
+        # The journal's marker commits on its own thread while the boards are zeroed: the reply
+        # below waits for it (briefly), so a stop that was answered is never undone by a restart.
+        marked = asyncio.wrap_future(self.journal.mark_all_zero_async())
+        marked.add_done_callback(lambda f: f.cancelled() or f.exception())  # a late failure is logged below, not lost
         try:
             self.claims.end_all("emergency stop")
             results = await self._state.rack.each(lambda d: d.emergency_zero(), priority=EMERGENCY)
@@ -246,6 +254,13 @@ class Controller:
             (self._state.record(a, 0, None, now) for a in zeroed), None, client, lazy=True
         )
         self._emit("estop", client=client, reason=reason, boards=outcome)
+        try:
+            await asyncio.wait_for(asyncio.shield(marked), ESTOP_MARK_WAIT_S)
+        except Exception as exc:  # a slow or failing disk: the boards are zero; say so, never raise
+            detail = "not yet on disk" if isinstance(exc, TimeoutError) else str(exc)
+            asyncio.get_running_loop().call_soon(
+                functools.partial(self.log.error, "emergency stop marker not journaled", error=detail)
+            )
         # The log line waits its turn: a slow console or log file must not delay the reply.
         asyncio.get_running_loop().call_soon(
             functools.partial(self.log.warning, "emergency stop", reason=reason, boards=outcome)

@@ -15,10 +15,19 @@ future that completes once the targets are durable, and the controller awaits it
 first write of those targets. Reads use their own connection after waiting for what was queued
 before them, so a reader always sees every earlier write.
 
+An emergency stop is the one change that reaches the boards before the journal (it never waits
+on the disk before zeroing). So that a crash right after it cannot leave the old targets as the
+journal's last word - a restart would then offer ``restore`` to bring back what the stop took
+away - the stop queues a one-row marker, :meth:`Journal.mark_all_zero_async`, before it zeroes
+the boards; the marker commits while the boards are being zeroed, and every target recorded
+before it reads as zero from then on (the marker's ``meta`` row holds the last target id it covers).
+
 Tables:
   targets(id, ts, actuator, board, channel, volts, code, value, calibration_version, request, client)
   events(id, ts, kind, board, actuator, detail, client)
   boards(board PRIMARY KEY, boot_count, serial, ts)
+  meta(key PRIMARY KEY, value): 'schema'; 'zeroed_through' = "<last target id> <ts>" of the last
+  emergency stop's marker
 """
 
 from __future__ import annotations
@@ -31,7 +40,7 @@ import threading
 import time
 from collections.abc import Iterable
 from concurrent.futures import Future
-from dataclasses import dataclass
+from dataclasses import dataclass, replace
 from pathlib import Path
 from typing import Any
 
@@ -216,6 +225,18 @@ class Journal:
         )
         return self._submit(self._TARGETS_SQL, values if lazy else list(values), wait=True)
 
+    def mark_all_zero_async(self) -> Future[None]:
+        """Queue the marker "every output is zero from here": each target recorded before it
+        reads as code 0 (its value unknown) until a later one is recorded. The future completes once
+        the marker is durable. Queued in order, so it covers exactly the targets queued before it."""
+        row = (f"{time.time()!r}",)
+        return self._submit(
+            "INSERT OR REPLACE INTO meta (key, value) "
+            "SELECT 'zeroed_through', COALESCE(MAX(id), 0) || ' ' || ? FROM targets",
+            [row],
+            wait=True,
+        )
+
     def record_targets(
         self, rows: Iterable[TargetRecord], request: str | None = None, client: str | None = None
     ) -> None:
@@ -248,10 +269,18 @@ class Journal:
         self.flush()
         with self._lock:
             rows = self._db.execute(
-                "SELECT actuator, board, channel, volts, code, value, calibration_version, ts FROM targets "
+                "SELECT id, actuator, board, channel, volts, code, value, calibration_version, ts FROM targets "
                 "WHERE id IN (SELECT MAX(id) FROM targets GROUP BY actuator)"
             ).fetchall()
-        return {r[0]: TargetRecord(*r) for r in rows}
+            marker = self._db.execute("SELECT value FROM meta WHERE key = 'zeroed_through'").fetchone()
+        through, marked_ts = (int(marker[0].split()[0]), float(marker[0].split()[1])) if marker else (0, 0.0)
+        out = {}
+        for row_id, *fields in rows:
+            record = TargetRecord(*fields)
+            if row_id <= through:  # an emergency stop came after it
+                record = replace(record, volts=0.0, code=0, value=None, ts=marked_ts)
+            out[record.actuator] = record
+        return out
 
     def board_boot_counts(self) -> dict[str, int]:
         self.flush()

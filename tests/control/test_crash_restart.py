@@ -7,13 +7,14 @@ import os
 import signal
 import subprocess
 import sys
+import time
 from pathlib import Path
 
 from meshsim.rack import SimRack
 from meshsim.serve import RackServer
 from meshwarden.api import open_controller
 from meshwarden.config import load_config
-from meshwarden.journal import Journal
+from meshwarden.journal import Journal, TargetRecord
 from tests.control.bench import write_bench
 from tests.control.conftest import run
 
@@ -88,3 +89,58 @@ def test_journal_is_durable_by_configuration(tmp_path: Path) -> None:
         mode = journal._db.execute("PRAGMA journal_mode").fetchone()[0]
         sync = journal._db.execute("PRAGMA synchronous").fetchone()[0]
     assert (mode, sync) == ("wal", 2)
+
+
+def test_kill_minus_9_the_instant_an_estop_answers_never_offers_the_old_targets(tmp_path: Path) -> None:
+    """The controller in a child process sets three outputs, is stopped, and kills itself with
+    SIGKILL the instant the stop has answered (before the journal's rows of zeros may be on disk).
+    The boards hold zero. A new controller must not offer to restore the values the stop took away,
+    not even after a board reset: the journal's last word for every output is zero."""
+    config_path, _ = write_bench(tmp_path)
+    config = load_config(config_path)
+    rack = SimRack.from_config(config_path)
+    with RackServer(rack, "pty") as server:
+        ports = server.ports()
+        with (tmp_path / "child.log").open("w") as log:
+            child = subprocess.run(
+                [sys.executable, "-m", "tests.control.hold_controller", str(config_path), json.dumps(ports), "estop"],
+                stdout=subprocess.PIPE,
+                stderr=log,
+                text=True,
+                cwd=Path(__file__).resolve().parents[2],
+                timeout=60,
+            )
+        assert child.returncode == -signal.SIGKILL, (tmp_path / "child.log").read_text()
+        assert child.stdout.startswith("READY ")
+        board = rack.board("b0")
+        assert not board.codes.any()  # what the board received: the stop zeroed it
+        with Journal(config.journal.path) as journal:
+            assert {a: r.code for a, r in journal.latest_targets().items()} == {"c0": 0, "p0": 0, "c1": 0}
+
+        async def start_again() -> None:
+            async with open_controller(config, ports) as ctl:
+                assert not ctl.boards["b0"].needs_restore
+
+        run(start_again())
+        board.power_cycle(rack.clock.now() - 1.0)  # and a brown-out while no daemon was running
+        run(start_again())
+        assert not board.codes.any()
+
+
+def test_emergency_marker_reads_earlier_targets_as_zero_and_later_ones_as_recorded(tmp_path: Path) -> None:
+    """Targets recorded before an emergency stop's marker read as code 0 with no value, also after
+    the file is opened again; a target recorded after the marker reads as recorded."""
+
+    def record(actuator: str, code: int) -> TargetRecord:
+        return TargetRecord(actuator, "b0", int(actuator[1:]), code * 1e-3, code, 0.5, None, time.time())
+
+    path = tmp_path / "j.sqlite"
+    with Journal(path) as journal:
+        journal.record_targets([record("c0", 4000), record("c1", 5000)])
+        journal.mark_all_zero_async().result()
+        journal.record_targets([record("c1", 6000)])
+    with Journal(path) as journal:
+        latest = journal.latest_targets()
+        assert (latest["c0"].code, latest["c0"].volts, latest["c0"].value) == (0, 0.0, None)
+        assert (latest["c1"].code, latest["c1"].value) == (6000, 0.5)
+        assert journal.target_count() == 3  # nothing rewritten: the history stays
