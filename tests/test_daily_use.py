@@ -379,3 +379,29 @@ def test_a_margin_override_is_journaled_and_announced_at_start(tmp_path: Path) -
     log = d.log.read_text()
     assert "WARNING: pull-in margin 0.03 is below the usual minimum by override" in log
     assert "WARNING: limits within 5% of pull-in: c0, c1" in log
+
+
+def test_a_stored_calibration_that_no_longer_fits_names_the_way_out(tmp_path: Path) -> None:
+    """When the active calibration version no longer fits the configuration (here a phase table
+    stored for a coupler), the daemon refuses to start with a message that says why and how to
+    start on another version, and `serve --calibration config` then starts on the configuration's
+    own tables and makes that the active choice."""
+    config, _ = write_bench(tmp_path)
+    version = tmp_path / "calibration" / "versions" / "20260101T000000Z"
+    version.mkdir(parents=True)
+    (version / "manifest.yaml").write_text("{}\n", encoding="utf-8")
+    (version / "c0.yaml").write_text((tmp_path / "cal" / "p0.yaml").read_text(encoding="utf-8"), encoding="utf-8")
+    (tmp_path / "calibration" / "active").write_text("20260101T000000Z\n", encoding="utf-8")
+    result = cli("serve", "--config", str(config), "--bind", "tcp://127.0.0.1:9", "--pub", "tcp://127.0.0.1:9")
+    assert result.returncode == 2, result.stdout + result.stderr
+    assert "'20260101T000000Z' cannot be used" in result.stderr and "table c0 does not fit" in result.stderr
+    assert "serve --calibration VERSION" in result.stderr and "Traceback" not in result.stderr
+    d = start_daemon(config, tmp_path, "--calibration", "config")
+    try:
+        with d.client() as mw:
+            assert mw.status()["armed"] is False
+    finally:
+        assert d.stop() == 0
+    assert (tmp_path / "calibration" / "active").read_text(encoding="utf-8").strip() == "config"
+    result = cli("serve", "--config", str(config), "--calibration", "nosuch", "--bind", "tcp://127.0.0.1:9")
+    assert result.returncode == 2 and "no calibration version 'nosuch'" in result.stderr

@@ -141,6 +141,11 @@ def build_parser() -> argparse.ArgumentParser:
         default="hold",
         help="outputs at shutdown: hold for the next start to adopt (default; they stay live), or ramp to zero",
     )
+    serve.add_argument(
+        "--calibration",
+        metavar="VERSION",
+        help="make VERSION the active calibration before starting ('config': the configuration's own tables)",
+    )
     serve.set_defaults(run=cmd_serve)
 
     keygen = sub.add_parser("keygen", help="create a CURVE key pair for the daemon or a client")

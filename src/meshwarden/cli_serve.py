@@ -78,6 +78,14 @@ def cmd_serve(args: argparse.Namespace) -> int:
     if packaged:
         config = _with_user_journal(config)
         _say(f"meshwarden: demo journal: {config.journal.path}")
+    if args.calibration:
+        from meshwarden.calibration_store import CalibrationStore
+
+        try:  # the pointer moves before the daemon reads it: no output is touched
+            CalibrationStore(config.journal.path.parent / "calibration").set_active(args.calibration)
+        except MeshwardenError as exc:
+            _say(f"meshwarden: {exc.message}")
+            return EXIT_USAGE
     ports = None
     if args.ports_file:
         try:

@@ -78,8 +78,17 @@ class Controller:
         self._crosstalk = CrosstalkShares()
         active = self.calibrations.active()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
-            self._swap_tables(self._tables_of(active))
-            self._crosstalk = self._crosstalk_of(active)
+            try:
+                tables, crosstalk = self._tables_of(active), self._crosstalk_of(active)
+            except MeshwardenError as exc:  # e.g. the configuration changed since it was made
+                stored = ", ".join(self.calibrations.names())
+                raise CalibrationError(
+                    f"the active calibration version '{active}' cannot be used with this configuration: "
+                    f"{exc.message}. Start on another with `meshwarden serve --calibration VERSION` "
+                    f"('{BASE_VERSION}': the configuration's own tables; stored versions: {stored})"
+                ) from exc
+            self._swap_tables(tables)
+            self._crosstalk = crosstalk
 
     # ------------------------------------------------------------------ state, read-only views
 
