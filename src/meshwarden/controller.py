@@ -87,8 +87,7 @@ class Controller:
                     f"{exc.message}. Start on another with `meshwarden serve --calibration VERSION` "
                     f"('{BASE_VERSION}': the configuration's own tables; stored versions: {stored})"
                 ) from exc
-            self._swap_tables(tables)
-            self._crosstalk = crosstalk
+            self._swap_tables(tables, crosstalk)
 
     # ------------------------------------------------------------------ state, read-only views
 
@@ -593,22 +592,26 @@ class Controller:
         """The table in force for every actuator."""
         return {aid: a.map.table for aid, a in self.actuators.items()}
 
-    def _swap_tables(self, tables: dict[str, CalibrationTable]) -> dict[str, dict[str, float | None]]:
-        """Install tables; returns the actuators whose present volts now mean another value."""
-        changed: dict[str, dict[str, float | None]] = {}
+    def _swap_tables(
+        self, tables: dict[str, CalibrationTable], crosstalk: CrosstalkShares
+    ) -> dict[str, dict[str, float | None]]:
+        """Install tables and the shares measured with them; returns the actuators whose present
+        volts now mean another value (their neighbours' crosstalk under the new shares counted)."""
+        before = {aid: self.actuators[aid].value for aid in tables}
         for aid, table in tables.items():
             act = self.actuators[aid]
-            new_map = ActuatorMap(aid, act.config.kind, table, act.limit.hard_limit_volts)
-            volts = self.describe(aid)["volts"]
-            try:
-                meaning: float | None = new_map.value_at(volts)
-            except MeshwardenError:
-                meaning = None
-            before = act.value
-            act.map, act.calibration_version, act.calibration_origin = new_map, table.version, table.origin
-            if before is not None and (meaning is None or abs(meaning - before) > 1e-6):
-                changed[aid] = {"volts": volts, "before": before, "now": meaning}
-            act.value = meaning if before is not None else None
+            act.map = ActuatorMap(aid, act.config.kind, table, act.limit.hard_limit_volts)
+            act.calibration_version, act.calibration_origin = table.version, table.origin
+        self._crosstalk = crosstalk
+        changed: dict[str, dict[str, float | None]] = {}
+        for aid, previous in before.items():
+            if previous is None:
+                continue
+            volts = self._present_volts([aid, *crosstalk.shares.get(aid, {})])
+            meaning = self._meaning(aid, volts)
+            if meaning is None or abs(meaning - previous) > 1e-6:
+                changed[aid] = {"volts": volts[aid], "before": previous, "now": meaning}
+            self.actuators[aid].value = meaning
         return changed
 
     async def activate_calibration(self, version: str, client: str | None = None) -> dict[str, Any]:
@@ -617,8 +620,7 @@ class Controller:
         tables = self._tables_of(version)
         crosstalk = self._crosstalk_of(version)
         async with self.claim(list(tables), owner=client or "local", purpose="calibration switch"):
-            changed = self._swap_tables(tables)
-            self._crosstalk = crosstalk
+            changed = self._swap_tables(tables, crosstalk)
             self.calibrations.set_active(version)
             self._emit("calibration_activated", client=client, version=version, changed=sorted(changed)[:32])
         return {"version": version, "activated": True, "changed": changed}

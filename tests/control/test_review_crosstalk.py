@@ -151,3 +151,30 @@ def test_no_request_drives_an_actuator_past_its_limit_through_its_neighbours(mak
                 if first + k in written:
                     written[first + k].append(code * volts_per_code)
     assert max(written[0]) < 35.01 and max(written[1]) < 20.01
+
+
+def test_activating_shares_reports_what_the_present_volts_mean_with_them(make_bench: Bench) -> None:
+    """c0 set to a value under the configuration's tables, p0 at 40 V; then a version with the same
+    tables and p0's share 0.3 on c0 is activated: no output moves, and c0's reported value (and the
+    activation's list of changed meanings) is its table at V_eq = sqrt(V^2 + 0.3 V_p0^2), the
+    superposition of squared drives (electrostatic force goes as V^2: Senturia, Microsystem
+    Design, ch. 6)."""
+    config, name = make_bench(within_gate=0.3)
+
+    async def scenario() -> None:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"p0": 40.0}, volts=True)
+            await ctl.set({"c0": ctl.actuators["c0"].map.value_at(20.0)})
+            volts = ctl.describe("c0")["volts"]
+            writes = len(inprocess.get(name).board("b0").write_log)
+            await _version_with(ctl, "xt-v3", {"c0": {"p0": 0.3}, "p0": {"c0": 0.3}})
+            outcome = await ctl.activate_calibration("xt-v3")
+            expected = ctl.actuators["c0"].map.value_at(math.sqrt(volts**2 + 0.3 * 40.0**2))
+            assert ctl.describe("c0")["value"] == pytest.approx(expected, abs=1e-4)  # volts as reported: rounded
+            assert outcome["changed"]["c0"]["now"] == pytest.approx(expected, abs=1e-4)
+            assert len(inprocess.get(name).board("b0").write_log) == writes  # nothing written
+            await ctl.disarm()
+
+    run(scenario())
+    assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
