@@ -76,6 +76,7 @@ class Controller:
         self._interlocks = InterlockWatch(self._state, self.estop)
         self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
         self._crosstalk = CrosstalkShares()
+        self._ramps: list[dict[str, int]] = []  # the codes each move in progress ends at
         active = self.calibrations.active()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
             try:
@@ -330,14 +331,17 @@ class Controller:
         """Rule 4 with the neighbours' share counted: no actuator the request moves or acts on may
         be driven, as its own V^2 plus its neighbours' shares, past its hard limit (which the
         configuration keeps below pull-in with the margin) - at any point of the ramp, bounded by
-        taking each output at the higher of where it starts and where it ends."""
+        taking each output at the higher of where it starts and where it ends. A neighbour another
+        move is ramping counts at the higher of where it is and where that move ends."""
         moving = frozenset(prepared)
         driven = sorted(moving | self._crosstalk.acting_on(moving))
         by = {b for n in driven for b in self._crosstalk.shares.get(n, {})} - set(driven)
         highest = self._present_volts([*driven, *sorted(by)])
-        for aid, (code, _) in prepared.items():
-            board = self.actuators[aid].board
-            highest[aid] = max(highest[aid], code_to_volts(code, board.full_scale_volts, board.dac_bits))
+        ends = [{a: code for a, (code, _) in prepared.items()}, *self._ramps]  # moves under way end there
+        for codes in ends:
+            for aid in highest.keys() & codes.keys():
+                board = self.actuators[aid].board
+                highest[aid] = max(highest[aid], code_to_volts(codes[aid], board.full_scale_volts, board.dac_bits))
         for aid in driven:
             limit = self.actuators[aid].limit.hard_limit_volts
             equivalent = self._crosstalk.equivalent_volts(aid, highest)
@@ -446,6 +450,12 @@ class Controller:
         journal: bool = True,
     ) -> dict[str, dict[str, Any]]:
         before = self._state.current_codes(list(prepared))
+        ends = {a: code for a, (code, _) in prepared.items()}
+        if self._crosstalk:
+            # Again, with nothing awaited until this move is listed: a neighbour's move checked
+            # while this one waited for its claim did not know where this one ends, nor the reverse.
+            self._check_crosstalk_limits(prepared)
+        self._ramps.append(ends)
 
         async def record(plan: RampPlan) -> None:
             if journal:
@@ -463,6 +473,7 @@ class Controller:
                 before_first_write=record,
             )
         finally:
+            self._ramps.remove(ends)
             after = self._state.current_codes(list(prepared))
             for aid, (code, value) in prepared.items():
                 if after[aid] == code:

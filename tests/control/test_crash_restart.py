@@ -115,7 +115,8 @@ def test_kill_minus_9_the_instant_an_estop_answers_never_offers_the_old_targets(
         board = rack.board("b0")
         assert not board.codes.any()  # what the board received: the stop zeroed it
         with Journal(config.journal.path) as journal:
-            assert {a: r.code for a, r in journal.latest_targets().items()} == {"c0": 0, "p0": 0, "c1": 0}
+            latest = {a: r.code for a, r in journal.latest_targets().items()}  # the stop's own rows may be there too
+            assert {"c0", "p0", "c1"} <= set(latest) and not any(latest.values()), latest
 
         async def start_again() -> None:
             async with open_controller(config, ports) as ctl:

@@ -4,6 +4,7 @@ controller reports."""
 
 from __future__ import annotations
 
+import asyncio
 import math
 from collections.abc import Callable
 from typing import Any
@@ -178,3 +179,40 @@ def test_activating_shares_reports_what_the_present_volts_mean_with_them(make_be
 
     run(scenario())
     assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
+
+
+def test_a_neighbour_mid_ramp_counts_where_its_ramp_ends(make_bench: Bench) -> None:
+    """With p0's share 0.5 on c0 (limit 40 V): p0 ramps from 0 to 44 V (c0 at 0 V: fine alone);
+    while it ramps, another client asks c0 for 35 V - with p0 where it is then that looks fine, but
+    where p0's ramp ends c0 would be driven as sqrt(35^2 + 0.5 x 44^2) = 46.8 V. It must be
+    refused; what the board ends with keeps c0 within its limit."""
+    config, name = make_bench(within_gate=0.0)
+
+    async def scenario() -> str:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-race", {"c0": {"p0": 0.5}})
+            await ctl.activate_calibration("xt-race")
+            await ctl.arm()
+            ramp = asyncio.create_task(ctl.set({"p0": 44.0}, volts=True, client="first"))
+            while not 0.0 < ctl.describe("p0")["volts"] < 30.0:
+                await asyncio.sleep(0.0005)
+            outcome = "applied"
+            try:
+                await ctl.set({"c0": 35.0}, volts=True, client="second")
+            except MeshwardenError as exc:
+                outcome = exc.code
+            await ramp
+            await ctl.disarm()
+            return outcome
+
+    assert run(scenario()) == "limit"
+    log = list(inprocess.get(name).board("b0").write_log)
+    assert not check_board_log(config, "b0", log).violations
+    volts_per_code = 60.0 / 65536
+    held = {0: 0.0, 1: 0.0}  # b0:0 is c0, b0:1 is p0: what the board held after every write
+    for _, kind, first, values in log:
+        if kind == "write":
+            for k, code in enumerate(values):
+                if first + k in held:
+                    held[first + k] = code * volts_per_code
+            assert math.sqrt(held[0] ** 2 + 0.5 * held[1] ** 2) <= 40.0 + 1e-6, held
