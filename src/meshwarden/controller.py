@@ -562,14 +562,22 @@ class Controller:
         targets = {a: r for a, r in journaled.items() if a in self.actuators and self.actuators[a].board.id in waiting}
         claim = await self.claims.acquire(client or "local", targets, held=False, mover=self)
         try:
+            ends = {a: r.code for a, r in targets.items()}
+            if self._crosstalk:
+                # Rule 4 as for any move: the journaled targets together with what the neighbours
+                # hold now (or another move will end at) must not drive an actuator past its limit.
+                self._check_crosstalk_limits({a: (r.code, r.value) for a, r in targets.items()})
+            self._ramps.append(ends)  # a request on a neighbour meanwhile counts where this ends
             for b in waiting:  # the restore itself is what these boards wait for
                 self.boards[b].needs_restore = False
             try:
-                await self._motion.run(claim, {a: r.code for a, r in targets.items()}, allow_disarmed=False)
+                await self._motion.run(claim, ends, allow_disarmed=False)
             except BaseException:
                 for b in waiting:
                     self.boards[b].needs_restore = True
                 raise
+            finally:
+                self._ramps.remove(ends)
             for aid, record in targets.items():
                 self.actuators[aid].value = record.value
         finally:
