@@ -5,13 +5,20 @@ from __future__ import annotations
 
 import asyncio
 import math
+import shutil
+import subprocess
+import sys
 from collections.abc import Callable
+from pathlib import Path
+
+import pytest
 
 from meshsim import inprocess
 from meshwarden.api import open_controller
 from meshwarden.config import Config
 from meshwarden.errors import MeshwardenError
 from meshwarden.writelog import check_board_log
+from tests.control.bench import write_bench
 from tests.control.conftest import run
 from tests.control.test_review_crosstalk import _version_with
 
@@ -66,3 +73,66 @@ def test_a_set_beside_a_restore_cannot_pass_the_limit_through_crosstalk(make_ben
     assert not check_board_log(config, "b0", log).violations
     worst = _worst_equivalent(log, 0, 1, 0.5)  # b0:0 is c0, b0:1 is p0
     assert worst <= 40.0 + 1e-6, f"set beside restore: {outcome}; c0 driven as {worst:.2f} V"
+
+
+def _serve(config: Path, *more: str) -> subprocess.CompletedProcess[str]:
+    """`meshwarden serve` on ports it cannot bind (port 9): it stops at start, after the
+    calibration choice, so only what that choice did is seen."""
+    unbindable = ["--bind", "tcp://127.0.0.1:9", "--pub", "tcp://127.0.0.1:9"]
+    return subprocess.run(
+        [sys.executable, "-m", "meshwarden.cli", "serve", "--config", str(config), *more, *unbindable],
+        capture_output=True,
+        text=True,
+        timeout=120,
+    )
+
+
+def _stored(tmp_path: Path, version: str) -> Path:
+    """A version folder holding copies of the bench's own tables and an empty manifest."""
+    folder = tmp_path / "calibration" / "versions" / version
+    folder.mkdir(parents=True)
+    for table in (tmp_path / "cal").glob("*.yaml"):
+        shutil.copy(table, folder / table.name)
+    (folder / "manifest.yaml").write_text("{}\n", encoding="utf-8")
+    return folder
+
+
+@pytest.mark.parametrize("version", ["..", ".", "", ".good.partial"])
+def test_serve_calibration_refuses_a_name_that_is_no_version_and_keeps_the_pointer(
+    tmp_path: Path, version: str
+) -> None:
+    """`serve --calibration` with '..', '.', an empty name or a staging folder's name is a usage
+    error naming the version, and the active pointer stays on the version it named before."""
+    config, _ = write_bench(tmp_path)
+    _stored(tmp_path, "good")
+    (tmp_path / "calibration" / "versions" / ".good.partial").mkdir()
+    (tmp_path / "calibration" / "active").write_text("good\n", encoding="utf-8")
+    result = _serve(config, "--calibration", version)
+    assert result.returncode == 2, result.stderr
+    assert f"no calibration version '{version}'" in result.stderr, result.stderr
+    assert (tmp_path / "calibration" / "active").read_text(encoding="utf-8").strip() == "good"
+
+
+def test_serve_calibration_that_does_not_fit_leaves_the_active_version_as_it_was(tmp_path: Path) -> None:
+    """A start refused because the version named by `serve --calibration` does not fit the
+    configuration changes nothing: the version active before stays active."""
+    config, _ = write_bench(tmp_path)
+    _stored(tmp_path, "good")
+    bad = _stored(tmp_path, "bad")
+    shutil.copy(tmp_path / "cal" / "p0.yaml", bad / "c0.yaml")  # a phase table for a coupler
+    (tmp_path / "calibration" / "active").write_text("good\n", encoding="utf-8")
+    result = _serve(config, "--calibration", "bad")
+    assert result.returncode == 2 and "table c0 does not fit" in result.stderr, result.stderr
+    assert (tmp_path / "calibration" / "active").read_text(encoding="utf-8").strip() == "good"
+
+
+@pytest.mark.parametrize("manifest", [b": : :\n  - [\n", b"\xff\xfe\x00garbage"])
+def test_a_version_whose_manifest_is_garbage_is_refused_by_name(tmp_path: Path, manifest: bytes) -> None:
+    """A version folder whose manifest is not YAML (or not text) is refused at start with a
+    message that names the version and the way out, not reported as an internal error."""
+    config, _ = write_bench(tmp_path)
+    (_stored(tmp_path, "junk") / "manifest.yaml").write_bytes(manifest)
+    result = _serve(config, "--calibration", "junk")
+    assert result.returncode == 2, result.stderr
+    assert "internal error" not in result.stderr and "Traceback" not in result.stderr, result.stderr
+    assert "calibration version 'junk'" in result.stderr and "serve --calibration VERSION" in result.stderr
