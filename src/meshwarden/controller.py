@@ -333,6 +333,11 @@ class Controller:
         configuration keeps below pull-in with the margin) - at any point of the ramp, bounded by
         taking each output at the higher of where it starts and where it ends. A neighbour another
         move is ramping counts at the higher of where it is and where that move ends."""
+        present = self._state.current_codes(list(prepared))
+        if all(code <= present[a] for a, (code, _) in prepared.items()):
+            # It raises nothing, so it drives no actuator harder than now: always the way out, also
+            # of a state that shares activated since show past a limit ("lower the neighbours").
+            return
         moving = frozenset(prepared)
         driven = sorted(moving | self._crosstalk.acting_on(moving))
         by = {b for n in driven for b in self._crosstalk.shares.get(n, {})} - set(driven)
@@ -477,7 +482,7 @@ class Controller:
             after = self._state.current_codes(list(prepared))
             for aid, (code, value) in prepared.items():
                 if after[aid] == code:
-                    self.actuators[aid].value = value
+                    self.actuators[aid].value = self._settled(aid, value)
                 elif after[aid] != before[aid]:
                     self.actuators[aid].value = None
             self._refresh_neighbours(frozenset(a for a in prepared if after[a] != before[a]), frozenset(prepared))
@@ -493,6 +498,21 @@ class Controller:
             if act.value is None:
                 continue
             act.value = self._meaning(aid, self._present_volts([aid, *self._crosstalk.shares.get(aid, {})]))
+
+    def _settled(self, aid: str, asked: float | None) -> float | None:
+        """The value of an actuator that reached its target code: the one asked, unless its
+        neighbours' crosstalk makes the drive mean another (a neighbour another request moved
+        meanwhile, or a request in volts, whose value is its own table's at its own volts)."""
+        by = self._crosstalk.shares.get(aid, {})
+        if not by:
+            return asked
+        meaning = self._meaning(aid, self._present_volts([aid, *by]))
+        if asked is None or meaning is None:
+            return meaning
+        miss = meaning - asked
+        if self.actuators[aid].config.kind == "phase":
+            miss = (miss + math.pi) % (2 * math.pi) - math.pi
+        return asked if abs(miss) <= REACH_TOLERANCE else meaning
 
     def _meaning(self, aid: str, volts: dict[str, float]) -> float | None:
         """The logical value ``aid`` has with every actuator at ``volts``, its neighbours' crosstalk

@@ -136,3 +136,87 @@ def test_a_version_whose_manifest_is_garbage_is_refused_by_name(tmp_path: Path, 
     assert result.returncode == 2, result.stderr
     assert "internal error" not in result.stderr and "Traceback" not in result.stderr, result.stderr
     assert "calibration version 'junk'" in result.stderr and "serve --calibration VERSION" in result.stderr
+
+
+def test_after_activating_shares_that_show_a_limit_passed_lowering_is_still_allowed(make_bench: Bench) -> None:
+    """c0 at 38 V and p0 at 40 V, then a version with p0's share 0.5 on c0 is activated (c0 now
+    driven as 47.4 V against its 40 V limit): a request that only lowers outputs is the way out and
+    is applied at the board, not refused as 'limit'."""
+    config, name = make_bench(within_gate=0.0)
+
+    async def scenario() -> list[str]:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 38.0, "p0": 40.0}, volts=True)
+            await _version_with(ctl, "xt-over", {"c0": {"p0": 0.5}})
+            await ctl.activate_calibration("xt-over")
+            outcomes = []
+            for request in ({"p0": 30.0}, {"c0": 30.0, "p0": 20.0}):
+                try:
+                    await ctl.set(request, volts=True)
+                    outcomes.append("applied")
+                except MeshwardenError as exc:
+                    outcomes.append(exc.code)
+            await ctl.disarm()
+            return outcomes
+
+    assert run(scenario()) == ["applied", "applied"]
+    log = list(inprocess.get(name).board("b0").write_log)
+    assert not check_board_log(config, "b0", log).violations
+    lowest = {0: 60.0, 1: 60.0}
+    for _, kind, first, values in log:
+        if kind == "write" and first == 0 and len(values) == 2 and values[0]:
+            lowest = {0: min(lowest[0], values[0] * VOLTS_PER_CODE), 1: min(lowest[1], values[1] * VOLTS_PER_CODE)}
+    assert lowest[0] < 30.01 and lowest[1] < 20.01  # the board received the lowered drives
+
+
+def test_a_request_in_volts_reports_the_value_its_neighbours_crosstalk_gives(make_bench: Bench) -> None:
+    """With p0's share 0.3 on c0 and p0 at 40 V, c0 set to 25 V (in volts) is reported at its
+    table's value for V_eq = sqrt(25^2 + 0.3 x 40^2), the superposition of squared drives
+    (electrostatic force goes as V^2: Senturia, Microsystem Design, ch. 6), not its value at 25 V
+    alone."""
+    config, _ = make_bench(within_gate=0.3)
+
+    async def scenario() -> tuple[float | None, float]:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-volts", {"c0": {"p0": 0.3}})
+            await ctl.activate_calibration("xt-volts")
+            await ctl.arm()
+            await ctl.set({"p0": 40.0}, volts=True)
+            await ctl.set({"c0": 25.0}, volts=True)
+            described = ctl.describe("c0")
+            volts_p0 = ctl.describe("p0")["volts"]
+            really = ctl.actuators["c0"].map.value_at(math.sqrt(described["volts"] ** 2 + 0.3 * volts_p0**2))
+            await ctl.disarm()
+            return described["value"], really
+
+    reported, really = run(scenario())
+    assert reported is not None and abs(reported - really) < 1e-3, (reported, really)
+
+
+def test_a_neighbour_moved_while_a_logical_set_ramps_is_counted_in_its_reported_value(make_bench: Bench) -> None:
+    """c0 asked for its value at 25 V alone while another client drives p0 (share 0.3 on c0) to
+    40 V at the same time: once both are done, c0's reported value is its table at
+    V_eq = sqrt(V_c0^2 + 0.3 V_p0^2) of what the board holds (Senturia, Microsystem Design, ch. 6),
+    not the value asked with p0 at 0 V."""
+    config, name = make_bench(within_gate=0.3)
+
+    async def scenario() -> tuple[float | None, float]:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-both", {"c0": {"p0": 0.3}, "p0": {"c0": 0.3}})
+            await ctl.activate_calibration("xt-both")
+            await ctl.arm()
+            wanted = ctl.actuators["c0"].map.value_at(25.0)
+            first = asyncio.create_task(ctl.set({"c0": wanted}, client="first"))
+            await asyncio.sleep(0)
+            second = asyncio.create_task(ctl.set({"p0": 40.0}, volts=True, client="second"))
+            await asyncio.gather(first, second)
+            codes = inprocess.get(name).board("b0").codes
+            volts_c0, volts_p0 = codes[0] * VOLTS_PER_CODE, codes[1] * VOLTS_PER_CODE  # what the board holds
+            really = ctl.actuators["c0"].map.value_at(math.sqrt(volts_c0**2 + 0.3 * volts_p0**2))
+            reported = ctl.describe("c0")["value"]
+            await ctl.disarm()
+            return reported, really
+
+    reported, really = run(scenario())
+    assert reported is not None and abs(reported - really) < 1e-3, (reported, really)
