@@ -14,6 +14,7 @@ from pathlib import Path
 import pytest
 
 from meshsim import inprocess
+from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.config import Config
 from meshwarden.errors import MeshwardenError
@@ -220,3 +221,37 @@ def test_a_neighbour_moved_while_a_logical_set_ramps_is_counted_in_its_reported_
 
     reported, really = run(scenario())
     assert reported is not None and abs(reported - really) < 1e-3, (reported, really)
+
+
+def test_a_restart_finishes_an_emergency_stop_that_never_reached_a_board(make_bench: Bench) -> None:
+    """An emergency stop that could not reach b0 (its link dropping every frame) answers that its
+    zero is retried and the board's watchdog will act; the daemon is then stopped and started again
+    with the link back. The new daemon must not adopt and keep feeding the pre-stop outputs: it
+    starts with the stop latched and b0's zero pending, and its first heartbeat zeroes the board."""
+    config, name = make_bench(timeout_s=0.02, retries=1, error_rate_limit=0.2)
+
+    async def first() -> list[int]:
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(name)  # made when the link first opens
+            await ctl.arm()
+            await ctl.set({"c0": 20.0, "p0": 30.0}, volts=True)
+            rack.inject(Fault("drop", "*", 1.0))
+            outcome = await ctl.estop(reason="review")
+            assert outcome["b0"].startswith("not confirmed"), outcome
+            return [int(c) for c in rack.board("b0").codes[:2]]
+
+    async def second() -> tuple[bool, list[int], list[int]]:
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(name)
+            at_start = [int(c) for c in rack.board("b0").codes[:2]]
+            await ctl.heartbeat_once()
+            return ctl.estopped, at_start, [int(c) for c in rack.board("b0").codes[:2]]
+
+    held = run(first())
+    assert all(held)  # the stop never reached the board: it still holds c0 and p0
+    rack = inprocess.get(name)
+    rack.links["b0"].rates.clear()
+    estopped, at_start, after_beat = run(second())
+    assert at_start == held  # nothing written while starting (rule 5)
+    assert estopped and after_beat == [0, 0], (estopped, at_start, after_beat)
+    assert not check_board_log(config, "b0", list(rack.board("b0").write_log)).violations
