@@ -255,3 +255,74 @@ def test_a_restart_finishes_an_emergency_stop_that_never_reached_a_board(make_be
     assert at_start == held  # nothing written while starting (rule 5)
     assert estopped and after_beat == [0, 0], (estopped, at_start, after_beat)
     assert not check_board_log(config, "b0", list(rack.board("b0").write_log)).violations
+
+
+def test_a_set_journaled_before_a_stop_and_released_after_a_rearm_writes_nothing(make_bench: Bench) -> None:
+    """A set whose targets were queued in the journal before an emergency stop's marker, and whose
+    wait for the disk ends only after the stop and a re-arm, writes nothing: the board keeps c0 at
+    0 V, so the marker reading those targets as zero is the truth at the board."""
+    config, name = make_bench()
+
+    async def scenario() -> str:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            gate = asyncio.Event()
+            durable = ctl._durable
+
+            async def slow_disk(*args: object, **kwargs: object) -> None:
+                await durable(*args, **kwargs)  # type: ignore[arg-type]
+                await gate.wait()
+
+            ctl._durable = slow_disk  # type: ignore[method-assign]
+            first = asyncio.create_task(ctl.set({"c0": 20.0}, volts=True))
+            while ctl.journal.target_count() == 0:
+                await asyncio.sleep(0.001)
+            await ctl.estop(reason="review")
+            await ctl.arm()
+            gate.set()
+            outcome = "applied"
+            try:
+                await first
+            except MeshwardenError as exc:
+                outcome = exc.code
+            ctl._durable = durable  # type: ignore[method-assign]
+            assert {a: r.code for a, r in ctl.journal.latest_targets().items()}.get("c0", 0) == 0
+            await ctl.disarm()
+            return outcome
+
+    outcome = run(scenario())
+    log = list(inprocess.get(name).board("b0").write_log)
+    assert not [entry for entry in log if entry[1] == "write" and any(entry[3])], (outcome, log)
+    assert outcome == "stopped"  # refused whole, as any motion a stop overtook
+
+
+def test_a_target_set_after_a_stop_and_rearm_is_adopted_and_restored(make_bench: Bench) -> None:
+    """Re-armed right after an emergency stop, c0 set to 20 V: a restart adopts it without a write
+    (rule 5), and after a brown-out restore brings back 20 V, not the zero of the earlier stop."""
+    config, name = make_bench()
+
+    async def first() -> int:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 30.0, "p0": 10.0}, volts=True)
+            await ctl.estop(reason="review")
+            await ctl.arm()
+            return int((await ctl.set({"c0": 20.0}, volts=True))["c0"]["code"])
+
+    async def second() -> tuple[bool, int, int]:
+        async with open_controller(config) as ctl:
+            rack = inprocess.get(name)
+            writes = rack.board("b0").writes_executed
+            adopted = not ctl.boards["b0"].needs_restore and ctl.describe("c0")["value"] is not None
+            rack.board("b0").power_cycle(rack.clock.now() - 1.0)
+            await ctl.heartbeat_once()
+            await ctl.arm()
+            await ctl.restore()
+            held = int(rack.board("b0").codes[0]), int(rack.board("b0").codes[1])
+            await ctl.disarm()
+            return adopted and rack.board("b0").writes_executed > writes, held[0], held[1]
+
+    code = run(first())
+    adopted, c0, p0 = run(second())
+    assert adopted and (c0, p0) == (code, 0), (adopted, c0, p0, code)
+    assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
