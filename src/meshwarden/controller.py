@@ -635,8 +635,9 @@ class Controller:
         self, tables: dict[str, CalibrationTable], crosstalk: CrosstalkShares
     ) -> dict[str, dict[str, float | None]]:
         """Install tables and the shares measured with them; returns the actuators whose present
-        volts now mean another value (their neighbours' crosstalk under the new shares counted)."""
-        before = {aid: self.actuators[aid].value for aid in tables}
+        volts now mean another value (their neighbours' crosstalk under the new shares counted) -
+        every actuator, not only those with a table here: the shares act on them all."""
+        before = {aid: act.value for aid, act in self.actuators.items()}
         for aid, table in tables.items():
             act = self.actuators[aid]
             act.map = ActuatorMap(aid, act.config.kind, table, act.limit.hard_limit_volts)
@@ -658,7 +659,9 @@ class Controller:
         actuators it covers: no output moves; the next request maps through the new tables."""
         tables = self._tables_of(version)
         crosstalk = self._crosstalk_of(version)
-        async with self.claim(list(tables), owner=client or "local", purpose="calibration switch"):
+        # Every actuator, not only those with a table in it: its shares change what any may mean,
+        # and which move rule 4 allows, so no move may be under way across the switch.
+        async with self.claim(list(self.actuators), owner=client or "local", purpose="calibration switch"):
             changed = self._swap_tables(tables, crosstalk)
             self.calibrations.set_active(version)
             self._emit("calibration_activated", client=client, version=version, changed=sorted(changed)[:32])

@@ -326,3 +326,29 @@ def test_a_target_set_after_a_stop_and_rearm_is_adopted_and_restored(make_bench:
     adopted, c0, p0 = run(second())
     assert adopted and (c0, p0) == (code, 0), (adopted, c0, p0, code)
     assert not check_board_log(config, "b0", list(inprocess.get(name).board("b0").write_log)).violations
+
+
+def test_activating_a_version_of_some_tables_recomputes_every_value_its_shares_change(make_bench: Bench) -> None:
+    """A stored version holding c0's table alone, with c0's share 0.3 on p0: activating it changes
+    what p0's present drive means too, so p0's reported value becomes its table at
+    V_eq = sqrt(V_p0^2 + 0.3 V_c0^2) (Senturia, Microsystem Design, ch. 6), not the value it had
+    without the share."""
+    config, _ = make_bench(within_gate=0.3)
+
+    async def scenario() -> tuple[float | None, float]:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set({"c0": 35.0}, volts=True)
+            await ctl.set({"p0": ctl.actuators["p0"].map.value_at(30.0)})
+            tables = {"c0": ctl.active_tables()["c0"]}
+            manifest = {"format": "meshwarden-calibration-version/1", "crosstalk": {"p0": {"c0": 0.3}}}
+            ctl.calibrations.write("c0-only", tables, manifest)
+            await ctl.activate_calibration("c0-only")
+            volts_c0, volts_p0 = ctl.describe("c0")["volts"], ctl.describe("p0")["volts"]
+            really = ctl.actuators["p0"].map.value_at(math.sqrt(volts_p0**2 + 0.3 * volts_c0**2))
+            reported = ctl.describe("p0")["value"]
+            await ctl.disarm()
+            return reported, really
+
+    reported, really = run(scenario())
+    assert reported is not None and abs(reported - really) < 1e-3, (reported, really)
