@@ -352,3 +352,38 @@ def test_activating_a_version_of_some_tables_recomputes_every_value_its_shares_c
 
     reported, really = run(scenario())
     assert reported is not None and abs(reported - really) < 1e-3, (reported, really)
+
+
+def test_a_procedure_move_and_a_set_on_neighbours_cannot_both_pass(make_bench: Bench) -> None:
+    """Shares 0.5 both ways between c0 (limit 40 V) and p0 (limit 44 V): while a procedure's
+    claim ramps c0 to 35 V, another client's set of p0 to 44 V (c0 as 46.8 V, p0 as 50.5 V where
+    both end) is refused, and a cancelled procedure move leaves no ramp behind: p0 to 20 V is then
+    applied. The board never holds either past its limit."""
+    config, name = make_bench(within_gate=0.0)
+
+    async def scenario() -> tuple[str, int]:
+        async with open_controller(config) as ctl:
+            await _version_with(ctl, "xt-claim", {"c0": {"p0": 0.5}, "p0": {"c0": 0.5}})
+            await ctl.activate_calibration("xt-claim")
+            await ctl.arm()
+            async with ctl.claim(["c0"], owner="procedure", purpose="review") as held:
+                moving = asyncio.create_task(held.move({"c0": 35.0}, volts=True))
+                while not 0.0 < ctl.describe("c0")["volts"] < 20.0:
+                    await asyncio.sleep(0.0005)
+                outcome = "applied"
+                try:
+                    await ctl.set({"p0": 44.0}, volts=True, client="other")
+                except MeshwardenError as exc:
+                    outcome = exc.code
+                moving.cancel()
+                await asyncio.gather(moving, return_exceptions=True)
+            await ctl.set({"p0": 20.0}, volts=True, client="other")
+            p0_code = int(inprocess.get(name).board("b0").codes[1])
+            await ctl.disarm()
+            return outcome, p0_code
+
+    outcome, p0_code = run(scenario())
+    assert outcome == "limit" and abs(p0_code * VOLTS_PER_CODE - 20.0) < 0.01
+    log = list(inprocess.get(name).board("b0").write_log)
+    assert not check_board_log(config, "b0", log).violations
+    assert _worst_equivalent(log, 0, 1, 0.5) <= 40.0 + 1e-6 and _worst_equivalent(log, 1, 0, 0.5) <= 44.0 + 1e-6
