@@ -78,7 +78,6 @@ def adopt(found: BoardFound, expected: list[int], journaled_boot: int | None) ->
     return Adoption("adoption_mismatch", needs, differ)
 
 
-
 def stop_never_reached(board_id: str, found: BoardFound, journaled: dict[str, TargetRecord]) -> bool:
     """Whether an emergency stop before this start never reached the board: every journaled output
     of it is still read as zeroed by the stop's marker (none recorded since: the stop journals zeros
