@@ -17,7 +17,10 @@ from meshsim import inprocess
 from meshsim.faults import Fault
 from meshwarden.api import open_controller
 from meshwarden.config import Config
+from meshwarden.drivers.base import BoardIdentity
 from meshwarden.errors import MeshwardenError
+from meshwarden.journal import Journal, TargetRecord
+from meshwarden.startup import BoardFound, stop_never_reached
 from meshwarden.writelog import check_board_log
 from tests.control.bench import write_bench
 from tests.control.conftest import run
@@ -387,3 +390,24 @@ def test_a_procedure_move_and_a_set_on_neighbours_cannot_both_pass(make_bench: B
     log = list(inprocess.get(name).board("b0").write_log)
     assert not check_board_log(config, "b0", log).violations
     assert _worst_equivalent(log, 0, 1, 0.5) <= 40.0 + 1e-6 and _worst_equivalent(log, 1, 0, 0.5) <= 44.0 + 1e-6
+
+
+def test_only_a_board_with_nothing_journaled_since_the_stop_is_taken_as_never_reached(tmp_path: Path) -> None:
+    """A board is taken as never reached by a stop only while every journaled output of it is read
+    as zeroed by the stop's marker and it holds a code the stop took away: once its zeros (or any
+    later target) are journaled, codes it holds are an ordinary mismatch, not a stop to finish."""
+
+    def record(actuator: str, channel: int, code: int) -> TargetRecord:
+        return TargetRecord(actuator, "b0", channel, code * VOLTS_PER_CODE, code, None, None, 0.0)
+
+    identity = BoardIdentity("sim", (1, 0, 0), 16, 8, 16, 16, 60.0, 2.5, 1, 3, (100_000,))
+    holding = BoardFound(identity, (21845, 32768) + (0,) * 14, watchdog_tripped=False)
+    with Journal(tmp_path / "j.sqlite") as journal:
+        journal.record_targets([record("c0", 0, 21845), record("p0", 1, 32768)])
+        journal.mark_all_zero_async().result()
+        assert stop_never_reached("b0", holding, journal.latest_targets())
+        zeroed = BoardFound(identity, (0,) * 16, watchdog_tripped=False)
+        assert not stop_never_reached("b0", zeroed, journal.latest_targets())
+        assert not stop_never_reached("b1", holding, journal.latest_targets())
+        journal.record_targets([record("c0", 0, 0)])  # a zero journaled since the stop
+        assert not stop_never_reached("b0", holding, journal.latest_targets())
