@@ -130,12 +130,18 @@ class CalibrationStore:
         return sorted(p.name for p in self.versions_dir.iterdir() if p.is_dir() and not p.name.startswith("."))
 
     def active(self) -> str:
+        name = self.chosen()
+        return name if self.exists(name) else BASE_VERSION
+
+    def chosen(self) -> str:
+        """The version the active pointer names, whether or not it is still stored (the daemon's
+        start refuses one that is not, rather than run silently on the configuration's tables)."""
         pointer = self.root / "active"
-        if pointer.exists():
-            name = pointer.read_text(encoding="utf-8").strip()
-            if self.exists(name):
-                return name
-        return BASE_VERSION
+        try:
+            name = pointer.read_text(encoding="utf-8").strip() if pointer.exists() else ""
+        except (OSError, UnicodeDecodeError):
+            name = "?"  # unreadable: no version by that name, so the start says so
+        return name or BASE_VERSION
 
     def set_active(self, version: str) -> None:
         if not self.exists(version):

@@ -77,7 +77,7 @@ class Controller:
         self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
         self._crosstalk = CrosstalkShares()
         self._ramps: list[dict[str, int]] = []  # the codes each move in progress ends at
-        active = self.calibrations.active()
+        active = self.calibrations.chosen()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
             try:
                 tables, crosstalk = self._tables_of(active), self._crosstalk_of(active)

@@ -411,3 +411,15 @@ def test_only_a_board_with_nothing_journaled_since_the_stop_is_taken_as_never_re
         assert not stop_never_reached("b1", holding, journal.latest_targets())
         journal.record_targets([record("c0", 0, 0)])  # a zero journaled since the stop
         assert not stop_never_reached("b0", holding, journal.latest_targets())
+
+
+def test_a_start_on_an_active_version_whose_folder_is_gone_is_refused_not_silently_config(tmp_path: Path) -> None:
+    """The active pointer names a version whose folder has been removed: the daemon must refuse to
+    start with the reason and the way out, not start silently on the configuration's own tables
+    (the outputs it adopts would then mean other values than the operator chose)."""
+    config, _ = write_bench(tmp_path)
+    (tmp_path / "calibration" / "versions").mkdir(parents=True)
+    (tmp_path / "calibration" / "active").write_text("cal-removed\n", encoding="utf-8")
+    result = _serve(config)
+    assert result.returncode == 2, result.stderr
+    assert "'cal-removed' cannot be used" in result.stderr and "serve --calibration VERSION" in result.stderr
