@@ -35,7 +35,8 @@ from meshwarden.errors import CalibrationError, UnknownTargetRefused
 BASE_VERSION = "config"
 SWEEPS_FILE = "sweeps.json"
 SWEEPS_FORMAT = "meshwarden-calibration-sweeps/1"
-_NAME = re.compile(r"^[A-Za-z0-9_.-]{1,64}$")
+# A version's folder name: never '.' or '..' (the folders above it) nor a staging folder's '.name.partial'.
+_NAME = re.compile(r"^[A-Za-z0-9_-][A-Za-z0-9_.-]{0,63}$")
 
 
 def config_hash(source: Path | None) -> str:
@@ -89,7 +90,10 @@ class CalibrationStore:
         path = self._folder(version) / "manifest.yaml"
         if not path.exists():
             raise UnknownTargetRefused(f"no calibration version '{version}'", target=version)
-        data = yaml.safe_load(path.read_text(encoding="utf-8"))
+        try:
+            data = yaml.safe_load(path.read_text(encoding="utf-8"))
+        except (OSError, UnicodeDecodeError, yaml.YAMLError) as exc:
+            raise CalibrationError(f"calibration version '{version}': manifest.yaml cannot be read: {exc}") from None
         return data if isinstance(data, dict) else {}
 
     def sweeps(self, version: str) -> dict[str, dict[str, Any]] | None:
@@ -126,12 +130,18 @@ class CalibrationStore:
         return sorted(p.name for p in self.versions_dir.iterdir() if p.is_dir() and not p.name.startswith("."))
 
     def active(self) -> str:
+        name = self.chosen()
+        return name if self.exists(name) else BASE_VERSION
+
+    def chosen(self) -> str:
+        """The version the active pointer names, whether or not it is still stored (the daemon's
+        start refuses one that is not, rather than run silently on the configuration's tables)."""
         pointer = self.root / "active"
-        if pointer.exists():
-            name = pointer.read_text(encoding="utf-8").strip()
-            if self.exists(name):
-                return name
-        return BASE_VERSION
+        try:
+            name = pointer.read_text(encoding="utf-8").strip() if pointer.exists() else ""
+        except (OSError, UnicodeDecodeError):
+            name = "?"  # unreadable: no version by that name, so the start says so
+        return name or BASE_VERSION
 
     def set_active(self, version: str) -> None:
         if not self.exists(version):

@@ -78,14 +78,19 @@ def cmd_serve(args: argparse.Namespace) -> int:
     if packaged:
         config = _with_user_journal(config)
         _say(f"meshwarden: demo journal: {config.journal.path}")
-    if args.calibration:
+    pointer: tuple[Path, bytes | None] | None = None  # the active pointer as it was, if this start moves it
+    if args.calibration is not None:
         from meshwarden.calibration_store import CalibrationStore
 
+        store = CalibrationStore(config.journal.path.parent / "calibration")
+        active = store.root / "active"
+        before = active.read_bytes() if active.exists() else None
         try:  # the pointer moves before the daemon reads it: no output is touched
-            CalibrationStore(config.journal.path.parent / "calibration").set_active(args.calibration)
+            store.set_active(args.calibration)
         except MeshwardenError as exc:
             _say(f"meshwarden: {exc.message}")
             return EXIT_USAGE
+        pointer = (active, before)
     ports = None
     if args.ports_file:
         try:
@@ -97,7 +102,11 @@ def cmd_serve(args: argparse.Namespace) -> int:
             _say(f'meshwarden: {args.ports_file} must hold a JSON object {{"board_id": "url"}}')
             return EXIT_USAGE
 
+    serving = False
+
     def ready(bus: object) -> None:
+        nonlocal serving
+        serving = True
         _say(f"meshwarden: serving commands on {bus.bound}, telemetry on {bus.pub_bound}")  # type: ignore[attr-defined]
 
     # The event loop shares the interpreter with a thread per board: a thread that wants the
@@ -117,11 +126,23 @@ def cmd_serve(args: argparse.Namespace) -> int:
                 run_token=args.run_token,
             )
         )
-    except ConfigError as exc:
-        for issue in exc.issues:
-            print(issue, file=sys.stderr)
-        return EXIT_USAGE
     except MeshwardenError as exc:
-        _say(f"meshwarden: {exc.message}")
+        if pointer is not None and not serving:  # a refused start changes nothing
+            _put_back(*pointer)
+        if isinstance(exc, ConfigError):
+            for issue in exc.issues:
+                print(issue, file=sys.stderr)
+        else:
+            _say(f"meshwarden: {exc.message}")
         return EXIT_USAGE
     return EXIT_OK
+
+
+def _put_back(active: Path, before: bytes | None) -> None:
+    """Leave the active calibration pointer as it was before this start moved it."""
+    if before is None:
+        active.unlink(missing_ok=True)
+        return
+    staging = active.with_name(".active.partial")
+    staging.write_bytes(before)
+    staging.replace(active)

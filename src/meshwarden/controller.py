@@ -77,7 +77,7 @@ class Controller:
         self.calibrations = CalibrationStore(config.journal.path.parent / "calibration")
         self._crosstalk = CrosstalkShares()
         self._ramps: list[dict[str, int]] = []  # the codes each move in progress ends at
-        active = self.calibrations.active()
+        active = self.calibrations.chosen()
         if active != BASE_VERSION:  # the version last activated, before any output is adopted
             try:
                 tables, crosstalk = self._tables_of(active), self._crosstalk_of(active)
@@ -333,6 +333,11 @@ class Controller:
         configuration keeps below pull-in with the margin) - at any point of the ramp, bounded by
         taking each output at the higher of where it starts and where it ends. A neighbour another
         move is ramping counts at the higher of where it is and where that move ends."""
+        present = self._state.current_codes(list(prepared))
+        if all(code <= present[a] for a, (code, _) in prepared.items()):
+            # It raises nothing, so it drives no actuator harder than now: always the way out, also
+            # of a state that shares activated since show past a limit ("lower the neighbours").
+            return
         moving = frozenset(prepared)
         driven = sorted(moving | self._crosstalk.acting_on(moving))
         by = {b for n in driven for b in self._crosstalk.shares.get(n, {})} - set(driven)
@@ -477,7 +482,7 @@ class Controller:
             after = self._state.current_codes(list(prepared))
             for aid, (code, value) in prepared.items():
                 if after[aid] == code:
-                    self.actuators[aid].value = value
+                    self.actuators[aid].value = self._settled(aid, value)
                 elif after[aid] != before[aid]:
                     self.actuators[aid].value = None
             self._refresh_neighbours(frozenset(a for a in prepared if after[a] != before[a]), frozenset(prepared))
@@ -493,6 +498,21 @@ class Controller:
             if act.value is None:
                 continue
             act.value = self._meaning(aid, self._present_volts([aid, *self._crosstalk.shares.get(aid, {})]))
+
+    def _settled(self, aid: str, asked: float | None) -> float | None:
+        """The value of an actuator that reached its target code: the one asked, unless its
+        neighbours' crosstalk makes the drive mean another (a neighbour another request moved
+        meanwhile, or a request in volts, whose value is its own table's at its own volts)."""
+        by = self._crosstalk.shares.get(aid, {})
+        if not by:
+            return asked
+        meaning = self._meaning(aid, self._present_volts([aid, *by]))
+        if asked is None or meaning is None:
+            return meaning
+        miss = meaning - asked
+        if self.actuators[aid].config.kind == "phase":
+            miss = (miss + math.pi) % (2 * math.pi) - math.pi
+        return asked if abs(miss) <= REACH_TOLERANCE else meaning
 
     def _meaning(self, aid: str, volts: dict[str, float]) -> float | None:
         """The logical value ``aid`` has with every actuator at ``volts``, its neighbours' crosstalk
@@ -562,14 +582,22 @@ class Controller:
         targets = {a: r for a, r in journaled.items() if a in self.actuators and self.actuators[a].board.id in waiting}
         claim = await self.claims.acquire(client or "local", targets, held=False, mover=self)
         try:
+            ends = {a: r.code for a, r in targets.items()}
+            if self._crosstalk:
+                # Rule 4 as for any move: the journaled targets together with what the neighbours
+                # hold now (or another move will end at) must not drive an actuator past its limit.
+                self._check_crosstalk_limits({a: (r.code, r.value) for a, r in targets.items()})
+            self._ramps.append(ends)  # a request on a neighbour meanwhile counts where this ends
             for b in waiting:  # the restore itself is what these boards wait for
                 self.boards[b].needs_restore = False
             try:
-                await self._motion.run(claim, {a: r.code for a, r in targets.items()}, allow_disarmed=False)
+                await self._motion.run(claim, ends, allow_disarmed=False)
             except BaseException:
                 for b in waiting:
                     self.boards[b].needs_restore = True
                 raise
+            finally:
+                self._ramps.remove(ends)
             for aid, record in targets.items():
                 self.actuators[aid].value = record.value
         finally:
@@ -607,8 +635,9 @@ class Controller:
         self, tables: dict[str, CalibrationTable], crosstalk: CrosstalkShares
     ) -> dict[str, dict[str, float | None]]:
         """Install tables and the shares measured with them; returns the actuators whose present
-        volts now mean another value (their neighbours' crosstalk under the new shares counted)."""
-        before = {aid: self.actuators[aid].value for aid in tables}
+        volts now mean another value (their neighbours' crosstalk under the new shares counted) -
+        every actuator, not only those with a table here: the shares act on them all."""
+        before = {aid: act.value for aid, act in self.actuators.items()}
         for aid, table in tables.items():
             act = self.actuators[aid]
             act.map = ActuatorMap(aid, act.config.kind, table, act.limit.hard_limit_volts)
@@ -630,7 +659,9 @@ class Controller:
         actuators it covers: no output moves; the next request maps through the new tables."""
         tables = self._tables_of(version)
         crosstalk = self._crosstalk_of(version)
-        async with self.claim(list(tables), owner=client or "local", purpose="calibration switch"):
+        # Every actuator, not only those with a table in it: its shares change what any may mean,
+        # and which move rule 4 allows, so no move may be under way across the switch.
+        async with self.claim(list(self.actuators), owner=client or "local", purpose="calibration switch"):
             changed = self._swap_tables(tables, crosstalk)
             self.calibrations.set_active(version)
             self._emit("calibration_activated", client=client, version=version, changed=sorted(changed)[:32])

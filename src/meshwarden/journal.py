@@ -70,6 +70,9 @@ class TargetRecord:
     value: float | None
     calibration_version: str | None
     ts: float
+    # Read as zero because an emergency stop's marker came after it: the code recorded before
+    # (None: read as recorded). A board still holding it at a start was never reached by that stop.
+    stopped_code: int | None = None
 
 
 @dataclass(frozen=True)
@@ -278,7 +281,7 @@ class Journal:
         for row_id, *fields in rows:
             record = TargetRecord(*fields)
             if row_id <= through:  # an emergency stop came after it
-                record = replace(record, volts=0.0, code=0, value=None, ts=marked_ts)
+                record = replace(record, volts=0.0, code=0, value=None, ts=marked_ts, stopped_code=record.code)
             out[record.actuator] = record
         return out
 

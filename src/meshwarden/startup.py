@@ -76,3 +76,14 @@ def adopt(found: BoardFound, expected: list[int], journaled_boot: int | None) ->
         return Adoption("adopted", False)
     differ = tuple(i for i, (a, b) in enumerate(zip(found.codes, expected, strict=True)) if a != b)
     return Adoption("adoption_mismatch", needs, differ)
+
+
+def stop_never_reached(board_id: str, found: BoardFound, journaled: dict[str, TargetRecord]) -> bool:
+    """Whether an emergency stop before this start never reached the board: every journaled output
+    of it is still read as zeroed by the stop's marker (none recorded since: the stop journals zeros
+    for each board it reached, and so does a zero confirmed later), and the board still holds a
+    code the stop took away. That stop is not over: the board's zero is still due."""
+    records = [r for r in journaled.values() if r.board == board_id and r.channel < len(found.codes)]
+    if not records or any(r.stopped_code is None for r in records):
+        return False
+    return any(r.stopped_code and found.codes[r.channel] for r in records)

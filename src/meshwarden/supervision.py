@@ -19,7 +19,7 @@ from meshwarden.errors import AbortedError, FaultedRefused, MeshwardenError, Unk
 from meshwarden.journal import TargetRecord
 from meshwarden.motion import Motion
 from meshwarden.rackstate import BoardState, RackState
-from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes
+from meshwarden.startup import BoardFound, adopt, bring_up, journaled_codes, stop_never_reached
 
 
 class Supervisor:
@@ -71,6 +71,13 @@ class Supervisor:
         elif verdict.kind == "adoption_mismatch":
             detail["channels"] = list(verdict.channels[:16])
         self.state.emit(verdict.kind, **detail)
+        if verdict.kind == "adoption_mismatch" and stop_never_reached(board_id, found, journaled):
+            # The stop's answer promised its zero would be retried and the watchdog left to act:
+            # it stays latched, the board is not fed, and the heartbeat zeroes it (rule 4).
+            board.zero_pending = "an emergency stop before this start never reached it"
+            self.state.estopped = True
+            self.state.emit("estop_unfinished", board=board_id)
+            self.state.log.error("an emergency stop never reached this board: zeroing it now", board=board_id)
         if verdict.kind != "adopted":
             self.state.log.warning(
                 "board not adopted; outputs left as found",
