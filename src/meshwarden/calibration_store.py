@@ -30,7 +30,7 @@ from typing import Any
 import yaml
 
 from meshwarden.calibration import CalibrationTable, dump_calibration, load_calibration
-from meshwarden.errors import CalibrationError, UnknownTargetRefused
+from meshwarden.errors import CalibrationError, MeshwardenError, UnknownTargetRefused
 
 BASE_VERSION = "config"
 SWEEPS_FILE = "sweeps.json"
@@ -156,11 +156,16 @@ class CalibrationStore:
         active = self.active()
         rows: list[dict[str, Any]] = [{"version": BASE_VERSION, "created": None, "active": active == BASE_VERSION}]
         for name in self.names():
-            manifest = self.manifest(name)
-            outcomes = manifest.get("actuators", {})
+            try:
+                manifest = self.manifest(name)
+            except MeshwardenError as exc:  # one damaged version must not hide the others
+                rows.append({"version": name, "created": None, "active": active == name, "error": exc.message})
+                continue
+            outcomes = manifest.get("actuators")
             counts: dict[str, int] = {}
-            for outcome in outcomes.values():
-                counts[outcome.get("status", "?")] = counts.get(outcome.get("status", "?"), 0) + 1
+            for outcome in outcomes.values() if isinstance(outcomes, dict) else ():
+                status = str(outcome.get("status", "?")) if isinstance(outcome, dict) else "?"
+                counts[status] = counts.get(status, 0) + 1
             rows.append(
                 {
                     "version": name,

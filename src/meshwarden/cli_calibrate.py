@@ -131,8 +131,11 @@ def cmd_versions(args: argparse.Namespace) -> int:
                 return EXIT_OK
             for row in rows:
                 counts = ", ".join(f"{n} {s}" for s, n in sorted((row.get("counts") or {}).items()))
+                if row.get("error"):
+                    counts = f"cannot be read: {row['error']}"
                 mark = "*" if row["active"] else " "
-                print(f"{mark} {row['version']:<32} {row.get('created') or '(configuration)':<22} {counts}")
+                created = row.get("created") or ("(configuration)" if row["version"] == "config" else "?")
+                print(f"{mark} {row['version']:<32} {created:<22} {counts}")
             return EXIT_OK
         if args.action == "show":
             shown = client.calibration(args.version, sweeps=plt is not None)

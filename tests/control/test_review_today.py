@@ -16,6 +16,7 @@ import pytest
 from meshsim import inprocess
 from meshsim.faults import Fault
 from meshwarden.api import open_controller
+from meshwarden.calibration_store import CalibrationStore
 from meshwarden.config import Config
 from meshwarden.drivers.base import BoardIdentity
 from meshwarden.errors import MeshwardenError
@@ -423,3 +424,17 @@ def test_a_start_on_an_active_version_whose_folder_is_gone_is_refused_not_silent
     result = _serve(config)
     assert result.returncode == 2, result.stderr
     assert "'cal-removed' cannot be used" in result.stderr and "serve --calibration VERSION" in result.stderr
+
+
+def test_one_damaged_version_does_not_hide_the_others_in_the_list(tmp_path: Path) -> None:
+    """`calibration list` with one version whose manifest is not YAML, one whose manifest is a
+    list and one whose outcomes are not mappings: every version is listed, the damaged one with
+    why it cannot be read, the others with their counts."""
+    _stored(tmp_path, "a-good")
+    (_stored(tmp_path, "b-junk") / "manifest.yaml").write_bytes(b": : :\n  - [\n")
+    (_stored(tmp_path, "c-list") / "manifest.yaml").write_text("[1, 2]\n", encoding="utf-8")
+    (_stored(tmp_path, "d-odd") / "manifest.yaml").write_text("actuators: {c0: 3, c1: {status: ok}}\n", "utf-8")
+    rows = {row["version"]: row for row in CalibrationStore(tmp_path / "calibration").summary()}
+    assert list(rows) == ["config", "a-good", "b-junk", "c-list", "d-odd"]
+    assert "calibration version 'b-junk'" in rows["b-junk"]["error"]
+    assert rows["c-list"]["counts"] == {} and rows["d-odd"]["counts"] == {"?": 1, "ok": 1}
