@@ -10,6 +10,7 @@ from meshwarden.calibration import table_from_dict
 from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures import ProcedureInputError
 from meshwarden.procedures.coupler_fit import (
+    angle_curve,
     coupler_gate,
     coupling_ratio,
     fit_coupler_angle_table,
@@ -178,3 +179,59 @@ def test_light_in_the_other_input_is_found_and_taken_out(share: float) -> None:
     probe = np.linspace(0.0, fit.volts[-1], 200)
     truth = np.sin(0.06 * np.exp(3.3 * (probe / 30.0) ** 2)) ** 2
     assert max(abs(curve.value_at(float(v)) - t) for v, t in zip(probe, truth, strict=True)) < 0.012
+
+
+def _plate_coupler_angle(volts: np.ndarray) -> np.ndarray:
+    """Coupling angle of a gap-closing coupler on a parallel-plate actuator, plus a splitting error.
+    Source: the plate's stable equilibrium u (1 - u)^2 = (4/27) (V / V_PI)^2, u = x / g0 (Nathanson
+    et al., IEEE Trans. Electron Devices 14:117, 1967), the coupling C = C0 exp(-(g - g_ref) / d)
+    (Chrostowski & Hochberg, Silicon Photonics Design, 2015; from memory) and theta = C L (Yariv
+    1973). Invented demo-sized numbers: V_PI 50 V, g0 3 um, optical gap 700 nm at rest, d 113 nm,
+    C L = pi/2 at a 365 nm gap, splitting error -0.03 rad."""
+    pull_in_v, gap_nm = 50.0, 3000.0
+    travel = []
+    for v in volts:
+        roots = np.roots([1.0, -2.0, 1.0, -(4.0 / 27.0) * (v / pull_in_v) ** 2])
+        travel.append(min(r.real for r in roots if abs(r.imag) < 1e-9 and r.real >= 0) * gap_nm)
+    optical_gap = 700.0 - np.array(travel)
+    return np.asarray((np.pi / 2) * np.exp(-(optical_gap - 365.0) / 113.0) - 0.03)
+
+
+def test_angle_curve_passes_through_its_points_and_rises_between_them() -> None:
+    """The interpolating curve returns the given angles at the given volts and never falls between."""
+    volts = np.array([0.0, 10.0, 20.0, 30.0, 35.0, 38.0])
+    theta = _plate_coupler_angle(volts)
+    curve = angle_curve(volts, theta)
+    assert np.allclose(curve(volts), theta, rtol=1e-12)
+    dense = curve(np.linspace(0.0, 38.0, 2000))
+    assert np.all(np.diff(dense) >= -1e-15)
+
+
+def test_angle_table_follows_a_plate_coupler_between_sparse_points() -> None:
+    """Noise-free readings at a calibration's sparse points (0 V, two below the first step, seven
+    even in kappa, full transfer, three past it) give a table that the daemon's map reads within
+    0.002 of sin^2 of the true angle everywhere below full transfer (coupled-mode kappa, Yariv 1973);
+    a cubic through (V, theta) with four table points per interval missed by about 0.005."""
+    dense = np.linspace(0.0, 45.0, 9001)
+    theta = _plate_coupler_angle(dense)
+    full = float(dense[np.argmax(theta >= np.pi / 2)])
+    rising = dense[dense < full]
+    kappa_rising = np.sin(_plate_coupler_angle(rising)) ** 2
+    even = [float(rising[np.argmax(kappa_rising >= k)]) for k in np.linspace(0, 1, 9)[1:-1]]
+    volts = np.array(sorted({0.0, even[0] * 0.35, even[0] * 0.7, *even, full, full + 1.0, full + 2.0, full + 3.0}))
+    kappa = np.sin(_plate_coupler_angle(volts)) ** 2
+    fit = fit_coupler_angle_table(volts, 1.0 - kappa, kappa)
+    assert fit.full_transfer_volts == pytest.approx(full, abs=0.02)
+    curve = ActuatorMap("c00", "coupler", table_from_dict(fit.to_calibration("c00", "v1").as_dict()), 60.0)
+    probe = np.linspace(0.0, fit.volts[-1], 400)
+    truth = np.sin(np.minimum(_plate_coupler_angle(probe), np.pi / 2)) ** 2
+    assert max(abs(curve.value_at(float(v)) - t) for v, t in zip(probe, truth, strict=True)) < 0.002
+
+
+@pytest.mark.parametrize(
+    ("volts", "theta"), [([0.0, 1.0], [0.2]), ([1.0, 0.5], [0.1, 0.2]), ([-1.0, 1.0], [0.1, 0.2]), ([0, 1], [0.2, 0.1])]
+)
+def test_angle_curve_refuses_bad_points(volts: list[float], theta: list[float]) -> None:
+    """Mismatched lengths, falling volts, negative volts or falling angles are refused."""
+    with pytest.raises(ProcedureInputError):
+        angle_curve(volts, theta)

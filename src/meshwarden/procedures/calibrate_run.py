@@ -27,6 +27,7 @@ reads) are counted per actuator.
 from __future__ import annotations
 
 import asyncio
+import itertools
 import math
 import time
 from collections.abc import Awaitable, Callable
@@ -199,6 +200,8 @@ class Calibrator:
         self.stand_ins: set[tuple[str, str]] = set()  # (coupler, phase) shares taken from other gates
         # couplers fitted with a stand-in own-phase share: (points, V_half^2 / states, step)
         self.refit: dict[str, tuple[dict[float, tuple[float, float]], float, CalibrationStep]] = {}
+        # couplers read at half turns of uncalibrated phase shifters: (step, those shifters, volts)
+        self.revisit: dict[str, tuple[CalibrationStep, tuple[str, ...], tuple[float, ...]]] = {}
 
     # ---------------------------------------------------------------- tables in force for this run
 
@@ -320,6 +323,7 @@ class Calibrator:
                 self.run.outcomes.setdefault(actuator, Outcome("failed")).status = "failed"
                 self.run.outcomes[actuator].reason = exc.message
         self._refit_with_measured_shares()
+        await self._second_pass()
         if self.progress is not None:
             self.progress(len(steps), len(steps), "")
         self.run.seconds = time.monotonic() - started
@@ -400,6 +404,20 @@ class Calibrator:
             await measure(round(full, 6))
             fit = self._coupler_fit(points, extra)
             full = fit.full_transfer_volts
+        if not self._keep_coupler_fit(actuator, points, fit):
+            return
+        if phases:
+            self.revisit[actuator] = (step, tuple(phases), tuple(sorted(points)))
+        await self._coupler_crosstalk(step, actuator, routing, settle)
+        if own not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
+            self.stand_ins.add((actuator, own))
+            if per_share:
+                self.refit[actuator] = (dict(points), per_share, step)
+            if stand_in := self._own_phase_share(step.gate):
+                self.run.crosstalk.setdefault(actuator, {})[own] = round(stand_in, 6)
+
+    def _keep_coupler_fit(self, actuator: str, points: dict[float, tuple[float, float]], fit: CouplerTableFit) -> bool:
+        """Record a coupler's sweep and fit; take its table for the rest of the run if it passes its gate."""
         outcome = self.run.outcomes[actuator]
         outcome.sweep = sweep_record(
             "kappa",
@@ -413,17 +431,86 @@ class Calibrator:
         outcome.points, outcome.residual = fit.points_used, fit.residual_rms
         if not verdict.ok:
             outcome.status, outcome.reason = "failed", verdict.reason
-            return
+            return False
         outcome.table = fit.to_calibration(actuator, self.run.version, note="measured in place: bar/cross sweep")
         outcome.status, outcome.reason = "ok", ""
         self._take(actuator, outcome.table)
-        await self._coupler_crosstalk(step, actuator, routing, settle)
-        if own not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
-            self.stand_ins.add((actuator, own))
-            if per_share:
-                self.refit[actuator] = (dict(points), per_share, step)
-            if stand_in := self._own_phase_share(step.gate):
-                self.run.crosstalk.setdefault(actuator, {})[own] = round(stand_in, 6)
+        return True
+
+    async def _second_pass(self) -> None:
+        """Couplers read at half turns of phase shifters not yet calibrated are read again, now
+        that those are: at every combination of exact half turns (see :meth:`_coupler_again`)."""
+        for actuator, (step, phases, volts) in sorted(self.revisit.items()):
+            # A shifter this run could not calibrate sees (next to) no light: it stays at 0 V.
+            phases = tuple(p for p in phases if p in self.maps)
+            if self.run.outcomes[actuator].status != "ok" or not phases:
+                continue
+            self.claim.check()
+            if self.progress is not None:
+                self.progress(len(self.run.outcomes), len(self.run.outcomes), actuator)
+            await self._coupler_again(step, actuator, phases, volts)
+        self.revisit.clear()
+
+    async def _coupler_again(
+        self, step: CalibrationStep, actuator: str, phases: tuple[str, ...], volts: tuple[float, ...]
+    ) -> None:
+        """Read a coupler's sweep again at every combination of 0 and an exact half turn of the
+        phase shifters whose light interferes at its taps (tables of this run). Light leaked
+        upstream (its phase turned by the shifter feeding the inputs), light a gate at rest mixes
+        back downstream (turned by the gate's own shifter) and their product each change sign with
+        one of the half turns or with both; the mean over all combinations keeps only the
+        incoherent sum, which :func:`fit_coupler_angle_table` takes out as a second input's
+        share. The own shifter's crosstalk is cancelled in the coupler's drive where it can be."""
+        routing = self._routing(step)
+        settle = self.ctl.actuators[actuator].limit.dwell_s
+        own = self.ctl.gates[step.gate].phase
+        share = self._own_phase_share(step.gate) if own in phases else 0.0
+        choices = list(itertools.product((False, True), repeat=len(phases)))
+        points: dict[float, tuple[float, float]] = {}
+
+        def state_volts(v: float, turned: tuple[bool, ...]) -> dict[str, float]:
+            """The coupler's and the shifters' drives for one combination (two rounds: each
+            one's drive sets the other's crosstalk)."""
+            drives = {**routing, actuator: v, **{p: 0.0 for p in phases}}
+            for _ in range(2):
+                for p, on in zip(phases, turned, strict=True):
+                    drives[p] = self._half_turn_drive(p, drives) if on else 0.0
+                drives[actuator] = math.sqrt(max(v * v - share * drives.get(own, 0.0) ** 2, 0.0))
+            return drives
+
+        async def measure(v: float) -> None:
+            b = c = squared = 0.0
+            for turned in choices:
+                drives = state_volts(v, turned)
+                await self._hold(drives, exact=(actuator, *phases))
+                powers = await self._read(actuator, settle)
+                b += sum(powers[m] for m in step.bar_taps) / len(choices)
+                c += sum(powers[m] for m in step.cross_taps) / len(choices)
+                squared += (drives[actuator] ** 2 + share * drives.get(own, 0.0) ** 2) / len(choices)
+            # A table starts at 0 V: the point at 0 V stays there (kappa is flat at the bottom).
+            points[math.sqrt(squared) if v > 0 else 0.0] = (b, c)
+
+        for v in volts:
+            await measure(v)
+        fit = self._coupler_fit(points)
+        for _ in range(COUPLER_REFINE_ROUNDS):
+            full = fit.full_transfer_volts
+            if full is None or _point_on_top(fit, points):
+                break
+            await measure(round(full, 6))
+            fit = self._coupler_fit(points)
+        first = self.run.outcomes[actuator].table
+        if not self._keep_coupler_fit(actuator, points, fit) and first is not None:
+            self.run.outcomes[actuator].status = "ok"  # the first reading's table stands
+            self._take(actuator, first)
+
+    def _half_turn_drive(self, phase: str, drives: dict[str, float]) -> float:
+        """Volts that turn a calibrated phase shifter exactly half a turn from where it is at 0 V
+        with the other ``drives`` (its own coupler's crosstalk moves it a little even then)."""
+        coupler = self.ctl.gates[self.gate_of[phase]].coupler
+        base = self.run.crosstalk.get(phase, {}).get(coupler, 0.0) * drives.get(coupler, 0.0) ** 2
+        target = self._volts_for(phase, self._value_at(phase, math.sqrt(base)) + math.pi)
+        return math.sqrt(max(target * target - base, 0.0))
 
     def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
         """The actuators whose drive may act on a gate's coupler: the couplers of the gates side by

@@ -19,6 +19,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -218,7 +219,7 @@ def coupler_gate(
 
 
 HALF_PI = math.pi / 2
-TABLE_STEPS_PER_INTERVAL = 4  # table points per measured interval, from the fit in angle space
+TABLE_STEPS_PER_INTERVAL = 12  # table points per measured interval, from the fit in angle space
 FOLD_ANGLE_RAD = 0.05  # a point this close to full transfer reads its kappa within 0.0025 of the top
 CLEARLY_SMOOTHER = 0.5
 TOP_NOISE = 0.005  # how far above 1 - r the highest reading may lie (noise)
@@ -312,6 +313,35 @@ def second_input_share(volts: Any, kappa: Any) -> float:
     return best if best_rms < CLEARLY_SMOOTHER * plain else 0.0
 
 
+MIN_ANGLE_RAD = 1e-3  # angles are interpolated on a log scale: a bar reading of exactly 0 sits here
+
+
+def angle_curve(volts: Any, theta: Any) -> Callable[[Any], FloatArray]:
+    """A monotone curve theta(V) through measured coupling angles, for the points between them.
+
+    The coupling coefficient of a directional coupler falls exponentially with its gap, C = C0
+    exp(-gamma g) (Chrostowski & Hochberg, *Silicon Photonics Design*, CUP 2015), and a parallel
+    plate's travel grows as V^2 while it is small against its gap (F = eps0 A V^2 / (2 g^2) on a
+    spring; Senturia, *Microsystem Design*, 2001, ch. 6): log theta is nearly linear in V^2 where
+    theta itself curves steeply up in V. A monotone cubic (PCHIP; Fritsch & Carlson, SIAM J.
+    Numer. Anal. 17:238, 1980) through (V^2, log theta) therefore follows the curve between
+    sparse points far closer than one through (V, theta), whose slopes at the knots (a harmonic
+    mean of the two sides) flatten a steep convex curve. ``volts`` strictly increasing, from >= 0;
+    ``theta`` non-decreasing (angles below MIN_ANGLE_RAD count as it)."""
+    v = float_vector("volts", volts, min_length=2)
+    t = float_vector("theta", theta, min_length=2)
+    same_length("volts", v, "theta", t)
+    strictly_increasing("volts", v)
+    if v[0] < 0 or np.any(np.diff(t) < 0):
+        raise ProcedureInputError("volts must be >= 0 and theta non-decreasing")
+    log_curve = PchipInterpolator(v * v, np.log(np.maximum(t, MIN_ANGLE_RAD)))
+
+    def curve(x: Any) -> FloatArray:
+        return np.asarray(np.exp(log_curve(np.square(np.asarray(x, dtype=float)))))
+
+    return curve
+
+
 def _fit_angles(v: FloatArray, kappa: FloatArray) -> CouplerTableFit:
     """The angle-space fit of :func:`fit_coupler_angle_table` on ratios already made."""
     theta, used = unfold_coupling_angle(kappa, v)
@@ -324,7 +354,7 @@ def _fit_angles(v: FloatArray, kappa: FloatArray) -> CouplerTableFit:
     block_theta = fitted[starts]
     if block_volts.size < 2:
         raise ProcedureInputError("kappa does not rise over the sweep: no table can be made (is the coupler moving?)")
-    curve = PchipInterpolator(block_volts, block_theta)
+    curve = angle_curve(block_volts, block_theta)
     full: float | None = None
     beyond = np.flatnonzero(block_theta >= HALF_PI)
     if beyond.size and beyond[0] > 0:
