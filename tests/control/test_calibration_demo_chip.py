@@ -49,9 +49,11 @@ def _demo_chip(folder: Path) -> Path:
 def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
     """After one calibration: every part the light reaches is measured (at most one fails its
     gate); couplers set all at once to random ratios land within 0.01 of the truth for at least
-    85 % of them and within 0.05 for all (the rest: leaks remixed before the taps); phase steps
-    land within 0.02 rad; the route the calibrated ranges choose puts at least 95 % of the light at
-    the chosen output (the truth's own tap powers); every write kept the rules."""
+    95 % of them and within 0.02 for all (the rest: a coupler whose full transfer lies above its
+    hard limit, so the light remixed before its taps cannot be measured, and routing couplers
+    charged by the run); phase steps land within 0.02 rad; the route the calibrated ranges choose
+    puts at least 96.5 % of the light at the chosen output (the truth's own tap powers); every
+    write kept the rules."""
     config = load_config(_demo_chip(tmp_path))
     route = route_light_script()
     rng = np.random.default_rng(9)
@@ -101,9 +103,9 @@ def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
         statuses = [o["status"] for o in report["actuators"].values()]
         assert statuses.count("ok") >= 34 and statuses.count("failed") <= 1, report["actuators"]
         errors = np.array(kappa_errors)
-        assert float(np.mean(errors <= 0.01)) >= 0.85 and float(errors.max()) <= 0.05, sorted(errors)[-6:]
+        assert float(np.mean(errors <= 0.01)) >= 0.95 and float(errors.max()) <= 0.02, sorted(errors)[-6:]
         assert max(phase_errors) <= 0.02, phase_errors
-        assert share >= 0.95, share
+        assert share >= 0.965, share
         for board in ("b0", "b1"):
             result = check_board_log(config, board, list(inprocess.get(RACK).board(board).write_log))
             assert not result.violations, result.violations[:5]
