@@ -11,11 +11,14 @@ from meshwarden.mapping import ActuatorMap
 from meshwarden.procedures import ProcedureInputError
 from meshwarden.procedures.coupler_fit import (
     angle_curve,
+    balance_weights,
+    combined_share,
     coupler_gate,
     coupling_ratio,
     fit_coupler_angle_table,
     fit_coupler_table,
     isotonic_increasing,
+    mixed_share_from_swing,
     second_input_share,
     unfold_coupling_angle,
 )
@@ -235,3 +238,71 @@ def test_angle_curve_refuses_bad_points(volts: list[float], theta: list[float]) 
     """Mismatched lengths, falling volts, negative volts or falling angles are refused."""
     with pytest.raises(ProcedureInputError):
         angle_curve(volts, theta)
+
+
+def _two_inputs_out(kappa: float, share: float, psi: float) -> tuple[float, float]:
+    """Bar and cross powers of a lossless coupler with powers 1 - share and share in its two inputs,
+    psi apart. Source: the standard 2x2 coupler matrix [[sqrt(1-k), i sqrt(k)], [i sqrt(k), sqrt(1-k)]]."""
+    matrix = np.array([[np.sqrt(1 - kappa), 1j * np.sqrt(kappa)], [1j * np.sqrt(kappa), np.sqrt(1 - kappa)]])
+    field = np.array([np.sqrt(1 - share), np.sqrt(share) * np.exp(1j * psi)])
+    out = np.abs(matrix @ field) ** 2
+    return float(out[0]), float(out[1])
+
+
+@pytest.mark.parametrize(("kappa", "share"), [(0.5, 0.01), (0.3, 0.03), (0.8, 0.002), (0.45, 0.2)])
+def test_mixed_share_from_the_swing_of_a_turned_input(kappa: float, share: float) -> None:
+    """The cross ratio's swing as the other input's phase turns a full circle (four steps, Creath
+    1988) gives back the share of light in that input, and the mean over the circle is the
+    incoherent r + (1 - 2 r) kappa (2x2 coupler matrix recomputed with numpy)."""
+    ratios = []
+    for k in range(4):
+        bar, cross = _two_inputs_out(kappa, share, 0.7 + k * np.pi / 2)
+        ratios.append(cross / (bar + cross))
+    swing = 0.5 * np.hypot(ratios[3] - ratios[1], ratios[0] - ratios[2])
+    assert mixed_share_from_swing(kappa, swing) == pytest.approx(share, rel=1e-9)
+    assert np.mean(ratios) == pytest.approx(share + (1 - 2 * share) * kappa, abs=1e-12)
+
+
+def test_shares_in_a_row_combine_as_their_affine_maps() -> None:
+    """Two mixings in a row (r1, then r2 on the result) read as one share r with 1 - 2 r the product;
+    none is no share; a share of 1/2 or more is refused."""
+    kappa, r1, r2 = 0.37, 0.02, 0.05
+    once = r1 + (1 - 2 * r1) * kappa
+    twice = r2 + (1 - 2 * r2) * once
+    r = combined_share([r1, r2])
+    assert r + (1 - 2 * r) * kappa == pytest.approx(twice, abs=1e-12)
+    assert combined_share([]) == 0.0
+    with pytest.raises(ProcedureInputError):
+        combined_share([0.5])
+    with pytest.raises(ProcedureInputError):
+        mixed_share_from_swing(1.0, 0.1)
+
+
+def test_balance_weights_undo_two_ports_fixed_transmissions() -> None:
+    """Bar and cross seen through transmissions 0.9 and 0.7: the weights are their inverses up to a
+    common factor, so the balanced ratio is kappa (a lossless coupler conserves power)."""
+    kappa = np.linspace(0.02, 0.98, 12)
+    weights = balance_weights(0.9 * (1 - kappa), 0.7 * kappa)
+    assert weights is not None
+    assert weights[0] * 0.9 == pytest.approx(1.0) and weights[1] * 0.7 == pytest.approx(1.0)
+    assert balance_weights([0.5, 0.5, 0.5], [0.5, 0.5, 0.5]) is None
+
+
+def test_a_sweep_short_of_full_transfer_takes_a_known_share_out() -> None:
+    """A sweep that never reaches full transfer cannot find the mixed share from the fold; given it,
+    the table follows sin^2 of the true angle (Yariv 1973) within 0.002 instead of r off at the bottom;
+    a share of 1/2 or more is refused."""
+    share = 0.03
+    volts = np.linspace(0.0, 28.0, 15)
+    kappa = np.sin(0.06 * np.exp(3.3 * (volts / 30.0) ** 2)) ** 2
+    bar = (1 - share) * (1 - kappa) + share * kappa
+    cross = (1 - share) * kappa + share * (1 - kappa)
+    plain = fit_coupler_angle_table(volts, bar, cross)
+    assert plain.full_transfer_volts is None and plain.kappa_low == pytest.approx(kappa[0] + share * (1 - 2 * kappa[0]))
+    fit = fit_coupler_angle_table(volts, bar, cross, known_share=share)
+    curve = ActuatorMap("c00", "coupler", table_from_dict(fit.to_calibration("c00", "v1").as_dict()), 60.0)
+    probe = np.linspace(0.0, 28.0, 200)
+    truth = np.sin(0.06 * np.exp(3.3 * (probe / 30.0) ** 2)) ** 2
+    assert max(abs(curve.value_at(float(v)) - t) for v, t in zip(probe, truth, strict=True)) < 0.002
+    with pytest.raises(ProcedureInputError):
+        fit_coupler_angle_table(volts, bar, cross, known_share=0.5)

@@ -52,10 +52,13 @@ from meshwarden.procedures.coupler_fit import (
     FOLD_ANGLE_RAD,
     MAX_RESIDUAL_KAPPA,
     CouplerTableFit,
+    balance_weights,
+    combined_share,
     coupler_gate,
     fit_coupler_angle_table,
+    mixed_share_from_swing,
 )
-from meshwarden.procedures.fringe import fit_fringe
+from meshwarden.procedures.fringe import fit_fringe, four_step_phase
 from meshwarden.procedures.interferometer import fringe_reference
 from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.order import CalibrationStep, calibration_order
@@ -460,35 +463,36 @@ class Calibrator:
         back downstream (turned by the gate's own shifter) and their product each change sign with
         one of the half turns or with both; the mean over all combinations keeps only the
         incoherent sum, which :func:`fit_coupler_angle_table` takes out as a second input's
-        share. The own shifter's crosstalk is cancelled in the coupler's drive where it can be."""
+        share where the sweep crosses full transfer, and :meth:`_mixed_share` measures where it
+        does not. The own shifter's crosstalk is cancelled in the coupler's drive where it can be."""
         routing = self._routing(step)
         settle = self.ctl.actuators[actuator].limit.dwell_s
         own = self.ctl.gates[step.gate].phase
         share = self._own_phase_share(step.gate) if own in phases else 0.0
-        choices = list(itertools.product((False, True), repeat=len(phases)))
+        choices = [tuple(math.pi * t for t in c) for c in itertools.product((0, 1), repeat=len(phases))]
         points: dict[float, tuple[float, float]] = {}
+        readings: dict[float, list[tuple[float, float]]] = {}  # sweep volts -> (bar, cross) per choice
 
-        def state_volts(v: float, turned: tuple[bool, ...]) -> dict[str, float]:
-            """The coupler's and the shifters' drives for one combination (two rounds: each
-            one's drive sets the other's crosstalk)."""
+        async def read(v: float, turns: tuple[float, ...]) -> tuple[float, float, float]:
+            """Bar and cross powers with the shifters turned by ``turns`` (rad; the coupler's
+            and the shifters' drives are set in two rounds: each one's drive sets the other's
+            crosstalk), and the coupler's V_eq^2."""
             drives = {**routing, actuator: v, **{p: 0.0 for p in phases}}
             for _ in range(2):
-                for p, on in zip(phases, turned, strict=True):
-                    drives[p] = self._half_turn_drive(p, drives) if on else 0.0
+                for p, turn in zip(phases, turns, strict=True):
+                    drives[p] = self._turn_drive(p, drives, turn) if turn else 0.0
                 drives[actuator] = math.sqrt(max(v * v - share * drives.get(own, 0.0) ** 2, 0.0))
-            return drives
+            await self._hold(drives, exact=(actuator, *phases))
+            powers = await self._read(actuator, settle)
+            squared = drives[actuator] ** 2 + share * drives.get(own, 0.0) ** 2
+            return sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps), squared
 
         async def measure(v: float) -> None:
-            b = c = squared = 0.0
-            for turned in choices:
-                drives = state_volts(v, turned)
-                await self._hold(drives, exact=(actuator, *phases))
-                powers = await self._read(actuator, settle)
-                b += sum(powers[m] for m in step.bar_taps) / len(choices)
-                c += sum(powers[m] for m in step.cross_taps) / len(choices)
-                squared += (drives[actuator] ** 2 + share * drives.get(own, 0.0) ** 2) / len(choices)
+            rows = [await read(v, turns) for turns in choices]
+            readings[v] = [(b, c) for b, c, _ in rows]
+            mean = [sum(column) / len(rows) for column in zip(*rows, strict=True)]
             # A table starts at 0 V: the point at 0 V stays there (kappa is flat at the bottom).
-            points[math.sqrt(squared) if v > 0 else 0.0] = (b, c)
+            points[math.sqrt(mean[2]) if v > 0 else 0.0] = (mean[0], mean[1])
 
         for v in volts:
             await measure(v)
@@ -499,17 +503,70 @@ class Calibrator:
                 break
             await measure(round(full, 6))
             fit = self._coupler_fit(points)
+        if fit.full_transfer_volts is None:
+            mixed = await self._mixed_share(phases, choices, readings, points, read)
+            if mixed > 0.0:
+                fit = self._coupler_fit(points, known_share=mixed)
         first = self.run.outcomes[actuator].table
         if not self._keep_coupler_fit(actuator, points, fit) and first is not None:
             self.run.outcomes[actuator].status = "ok"  # the first reading's table stands
             self._take(actuator, first)
 
-    def _half_turn_drive(self, phase: str, drives: dict[str, float]) -> float:
-        """Volts that turn a calibrated phase shifter exactly half a turn from where it is at 0 V
-        with the other ``drives`` (its own coupler's crosstalk moves it a little even then)."""
+    async def _mixed_share(
+        self,
+        phases: tuple[str, ...],
+        choices: list[tuple[float, ...]],
+        readings: dict[float, list[tuple[float, float]]],
+        points: dict[float, tuple[float, float]],
+        read: Callable[[float, tuple[float, ...]], Awaitable[tuple[float, float, float]]],
+    ) -> float:
+        """The incoherent share mixed into a coupler's reading, for a sweep that cannot reach full
+        transfer (where the fold would show it): at the sweep point nearest a split, each shifter
+        is also turned a quarter and three quarters (the others at 0 and a half turn, averaged),
+        which with its 0 and half-turn readings gives the full swing of the light it turns
+        (four-step phase stepping); each swing gives its share
+        (:func:`mixed_share_from_swing`), and the shares combine (:func:`combined_share`)."""
+        bar, cross = zip(*(points[v] for v in sorted(points)), strict=True)
+        weights = balance_weights(bar, cross) or (1.0, 1.0)
+
+        def ratio(b: float, c: float) -> float:
+            return weights[1] * c / (weights[0] * b + weights[1] * c) if b + c > 0 else math.nan
+
+        def mean_ratio(rows: list[tuple[float, float]]) -> float:
+            return ratio(sum(b for b, _ in rows) / len(rows), sum(c for _, c in rows) / len(rows))
+
+        at = min(readings, key=lambda v: abs(mean_ratio(readings[v]) - SPLIT))
+        level = mean_ratio(readings[at])
+        if not 0.05 < level < 0.95:
+            return 0.0
+        swings = []
+        for i in range(len(phases)):
+            samples = {}
+            for turn in (0.0, math.pi):
+                rows = [r for r, c in zip(readings[at], choices, strict=True) if c[i] == turn]
+                samples[turn] = mean_ratio(rows)
+            for turn in (math.pi / 2, 3 * math.pi / 2):
+                rows = []
+                for c in choices:
+                    if c[i] == 0.0:
+                        b, cr, _ = await read(at, (*c[:i], turn, *c[i + 1 :]))
+                        rows.append((b, cr))
+                samples[turn] = mean_ratio(rows)
+            stepped = four_step_phase([samples[t] for t in (0.0, math.pi / 2, math.pi, 3 * math.pi / 2)])
+            swings.append(stepped.amplitude)
+        kappa = level
+        share = 0.0
+        for _ in range(3):  # the swing's own kappa is the corrected one
+            share = combined_share([mixed_share_from_swing(kappa, s) for s in swings])
+            kappa = min(max((level - share) / (1.0 - 2.0 * share), 0.01), 0.99)
+        return share
+
+    def _turn_drive(self, phase: str, drives: dict[str, float], turn_rad: float) -> float:
+        """Volts that turn a calibrated phase shifter by exactly ``turn_rad`` from where it is at
+        0 V with the other ``drives`` (its own coupler's crosstalk moves it a little even then)."""
         coupler = self.ctl.gates[self.gate_of[phase]].coupler
         base = self.run.crosstalk.get(phase, {}).get(coupler, 0.0) * drives.get(coupler, 0.0) ** 2
-        target = self._volts_for(phase, self._value_at(phase, math.sqrt(base)) + math.pi)
+        target = self._volts_for(phase, self._value_at(phase, math.sqrt(base)) + turn_rad)
         return math.sqrt(max(target * target - base, 0.0))
 
     def _coupler_neighbours(self, step: CalibrationStep) -> list[str]:
@@ -590,12 +647,16 @@ class Calibrator:
         return None
 
     @staticmethod
-    def _coupler_fit(points: dict[float, tuple[float, float]], extra_squared: float = 0.0) -> CouplerTableFit:
+    def _coupler_fit(
+        points: dict[float, tuple[float, float]], extra_squared: float = 0.0, known_share: float | None = None
+    ) -> CouplerTableFit:
         """The angle-space fit; ``extra_squared`` (V^2) is the mean crosstalk drive the sweep's
-        readings carried, added to every point above 0 V so the table is the coupler's alone."""
+        readings carried, added to every point above 0 V so the table is the coupler's alone;
+        ``known_share`` the light mixed in, measured apart (for a sweep short of full transfer)."""
         volts = sorted(points)
         placed = [math.sqrt(v * v + extra_squared) if v > 0 else 0.0 for v in volts]
-        return fit_coupler_angle_table(placed, [points[v][0] for v in volts], [points[v][1] for v in volts])
+        bar, cross = [points[v][0] for v in volts], [points[v][1] for v in volts]
+        return fit_coupler_angle_table(placed, bar, cross, known_share=known_share)
 
     def _own_phase_share(self, gate: str) -> float:
         """The share of a gate's own phase shifter's V^2 on its coupler: measured on this gate if
