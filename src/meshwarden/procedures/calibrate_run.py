@@ -27,7 +27,6 @@ reads) are counted per actuator.
 from __future__ import annotations
 
 import asyncio
-import itertools
 import math
 import time
 from collections.abc import Awaitable, Callable
@@ -383,6 +382,7 @@ class Calibrator:
 
         async def measure(v: float) -> None:
             b = c = 0.0
+            states.reverse()  # the last state of one point is the first of the next: no extra travel
             for state in states:
                 await self._hold({**routing, actuator: v, **state})
                 powers = await self._read(actuator, settle)
@@ -469,7 +469,11 @@ class Calibrator:
         settle = self.ctl.actuators[actuator].limit.dwell_s
         own = self.ctl.gates[step.gate].phase
         share = self._own_phase_share(step.gate) if own in phases else 0.0
-        choices = [tuple(math.pi * t for t in c) for c in itertools.product((0, 1), repeat=len(phases))]
+        # Gray-code order, reversed at every other point: one shifter moves between readings
+        # (a half turn is tens of volts, ramped in guarded steps: the run's time is mostly these).
+        gray = [i ^ (i >> 1) for i in range(1 << len(phases))]
+        choices = [tuple(math.pi * ((g >> j) & 1) for j in range(len(phases))) for g in gray]
+        snake = list(choices)
         points: dict[float, tuple[float, float]] = {}
         readings: dict[float, list[tuple[float, float]]] = {}  # sweep volts -> (bar, cross) per choice
 
@@ -488,7 +492,9 @@ class Calibrator:
             return sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps), squared
 
         async def measure(v: float) -> None:
-            rows = [await read(v, turns) for turns in choices]
+            snake.reverse()
+            by_turns = {turns: await read(v, turns) for turns in snake}
+            rows = [by_turns[turns] for turns in choices]
             readings[v] = [(b, c) for b, c, _ in rows]
             mean = [sum(column) / len(rows) for column in zip(*rows, strict=True)]
             # A table starts at 0 V: the point at 0 V stays there (kappa is flat at the bottom).
