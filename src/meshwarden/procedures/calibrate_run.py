@@ -411,7 +411,9 @@ class Calibrator:
             return
         if phases:
             self.revisit[actuator] = (step, tuple(phases), tuple(sorted(points)))
-        await self._coupler_crosstalk(step, actuator, routing, settle)
+        bar, cross = zip(*(points[v] for v in sorted(points)), strict=True)
+        weights = balance_weights(bar, cross) or (1.0, 1.0)
+        await self._coupler_crosstalk(step, actuator, routing, settle, weights)
         if own not in self.run.crosstalk.get(actuator, {}):  # not measurable here: the others' median
             self.stand_ins.add((actuator, own))
             if per_share:
@@ -586,15 +588,22 @@ class Calibrator:
         return [self.ctl.gates[g].coupler for g in sorted(beside)] + own
 
     async def _coupler_crosstalk(
-        self, step: CalibrationStep, actuator: str, routing: dict[str, float], settle: float
+        self,
+        step: CalibrationStep,
+        actuator: str,
+        routing: dict[str, float],
+        settle: float,
+        weights: tuple[float, float] = (1.0, 1.0),
     ) -> None:
         """Measure the share of each neighbour's V^2 acting on this coupler: hold it at its split
         (where kappa moves most with drive), read kappa with every neighbour at 0 V and with one
         neighbour at a time driven to half its top and to its top; the shift read through the
-        fresh table is the extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`). Kappa is the
-        plain ratio here: only its change counts, and the two paths' fixed transmissions scale
-        that by the same factor as the table's points (within their imbalance). For the gate's
-        own phase shifter, only the port off its arm counts (:meth:`_phase_arm_port`)."""
+        fresh table is the extra V^2 the neighbour gave (:func:`meshwarden.crosstalk.share_from_shift`).
+        Each port is weighted as the table's points were (``weights``: the sweep's
+        :func:`balance_weights`), so a change reads on the table's own scale; the plain ratio
+        shrinks it by the two paths' imbalance (0.0188 read for a simulated 0.02 where the cross
+        light passes a gate at rest). For the gate's own phase shifter, only the port off its arm
+        counts (:meth:`_phase_arm_port`)."""
         amap = self.maps[actuator]
         low, high = amap.reachable()
         if not low < SPLIT < high:
@@ -604,7 +613,8 @@ class Calibrator:
         async def ports(extra: dict[str, float]) -> tuple[float, float]:
             await self._hold({**routing, actuator: own, **extra}, exact=(actuator,))
             powers = await self._read(actuator, settle)
-            return sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps)
+            bar = sum(powers[m] for m in step.bar_taps)
+            return weights[0] * bar, weights[1] * sum(powers[m] for m in step.cross_taps)
 
         neighbours = [n for n in self._coupler_neighbours(step) if n not in routing and self._map(n).top_volts > 0]
         if not neighbours:
@@ -745,7 +755,7 @@ class Calibrator:
             placed.append(math.sqrt(v * v + coupler_share * self.held.get(coupler, 0.0) ** 2))
             power.append(sum(powers[m] for m in step.fringe_taps))
         outcome.sweep = sweep_record("power_w", volts, power)
-        fit = fit_fringe(placed, power, with_growth=True)
+        fit = fit_fringe(placed, power, with_growth=True, with_loss=True)
         share = fit.residual_rms / fit.amplitude / MAX_RESIDUAL_FRACTION if fit.amplitude > 0 else None
         outcome.sweep = sweep_record("power_w", volts, power, list(fit.power_at(placed)), fit.model(), share)
         table = build_phase_table(fit, hard_limit_volts=act.limit.hard_limit_volts, reference_rad=reference)
