@@ -102,6 +102,7 @@ def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
         report, kappa_errors, phase_errors, share = run(scenario())
         statuses = [o["status"] for o in report["actuators"].values()]
         assert statuses.count("ok") >= 34 and statuses.count("failed") <= 1, report["actuators"]
+        assert report["frames"] / len(statuses) <= 20  # the goal: frames per actuator of the chip
         errors = np.array(kappa_errors)
         assert float(np.mean(errors <= 0.01)) >= 0.95 and float(errors.max()) <= 0.02, sorted(errors)[-6:]
         assert max(phase_errors) <= 0.02, phase_errors

@@ -73,6 +73,7 @@ CROSSTALK_TOP_MARGIN = 0.05  # a crosstalk reading this close to a table's top m
 CROSSTALK_AGREE = 0.0005  # besides 10 %: how far the half-drive and full-drive shares may differ
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
+REVISIT_SPREAD = 0.01  # a coupler whose two states read further apart than this is read again
 PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
 PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
 
@@ -380,14 +381,19 @@ class Calibrator:
         states = [{p: 0.0 for p in phases}, turned] if phases else [{}]  # nothing to turn: one reading
         points: dict[float, tuple[float, float]] = {}
 
+        spread = [0.0]  # the largest difference of the plain ratio between the states at one point
+
         async def measure(v: float) -> None:
             b = c = 0.0
+            ratios = []
             states.reverse()  # the last state of one point is the first of the next: no extra travel
             for state in states:
                 await self._hold({**routing, actuator: v, **state})
                 powers = await self._read(actuator, settle)
-                b += sum(powers[m] for m in step.bar_taps) / len(states)
-                c += sum(powers[m] for m in step.cross_taps) / len(states)
+                bar, cross = sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps)
+                b, c = b + bar / len(states), c + cross / len(states)
+                ratios.append(cross / (bar + cross) if bar + cross > 0 else 0.0)
+            spread[0] = max(spread[0], max(ratios) - min(ratios))
             points[v] = (b, c)
 
         sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
@@ -409,7 +415,7 @@ class Calibrator:
             full = fit.full_transfer_volts
         if not self._keep_coupler_fit(actuator, points, fit):
             return
-        if phases:
+        if phases and spread[0] > REVISIT_SPREAD:  # light that interferes enough to matter
             self.revisit[actuator] = (step, tuple(phases), tuple(sorted(points)))
         bar, cross = zip(*(points[v] for v in sorted(points)), strict=True)
         weights = balance_weights(bar, cross) or (1.0, 1.0)
