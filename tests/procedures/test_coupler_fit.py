@@ -21,6 +21,7 @@ from meshwarden.procedures.coupler_fit import (
     mixed_share_from_swing,
     second_input_share,
     unfold_coupling_angle,
+    widest_gap_volts,
 )
 
 
@@ -306,3 +307,18 @@ def test_a_sweep_short_of_full_transfer_takes_a_known_share_out() -> None:
     assert max(abs(curve.value_at(float(v)) - t) for v, t in zip(probe, truth, strict=True)) < 0.002
     with pytest.raises(ProcedureInputError):
         fit_coupler_angle_table(volts, bar, cross, known_share=0.5)
+
+
+def test_the_widest_step_in_kappa_below_full_transfer_is_split() -> None:
+    """Points at kappa 0.01, 0.2, 0.4 and 0.6 with full transfer above them: the widest step (0.6
+    to 1 at full transfer) is split at the volts where the table reads its middle, 0.8; with a
+    limit of 0.45 nothing is asked for."""
+    volts = np.linspace(0.0, 40.0, 81)
+    kappa = np.sin(np.minimum(0.05 + 1.52 * (volts / 40.0) ** 3, np.pi / 2)) ** 2
+    fit = fit_coupler_angle_table(volts, 1.0 - kappa, kappa)
+    measured = [float(np.interp(k, kappa[: int(np.argmax(kappa)) + 1], volts[: int(np.argmax(kappa)) + 1]))
+                for k in (0.01, 0.2, 0.4, 0.6)]  # fmt: skip
+    middle = widest_gap_volts(fit, measured, 0.12)
+    assert middle is not None
+    assert float(np.interp(middle, fit.volts, fit.kappa)) == pytest.approx(0.8, abs=0.005)
+    assert widest_gap_volts(fit, measured, 0.45) is None

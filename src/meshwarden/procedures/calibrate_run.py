@@ -56,6 +56,7 @@ from meshwarden.procedures.coupler_fit import (
     coupler_gate,
     fit_coupler_angle_table,
     mixed_share_from_swing,
+    widest_gap_volts,
 )
 from meshwarden.procedures.fringe import fit_fringe, four_step_phase
 from meshwarden.procedures.interferometer import fringe_reference
@@ -72,6 +73,8 @@ COUPLER_EXTEND_FRACTION = 0.025  # a coupler's sweep goes on above its table in 
 CROSSTALK_TOP_MARGIN = 0.05  # a crosstalk reading this close to a table's top may have folded past it
 CROSSTALK_AGREE = 0.0005  # besides 10 %: how far the half-drive and full-drive shares may differ
 COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below its largest value
+COUPLER_GAP_FILLS = 2  # at most this many points more where the sweep left a wide step in kappa
+MAX_KAPPA_GAP = 0.12  # ... wider than this
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
 REVISIT_SPREAD = 0.01  # a coupler whose two states read further apart than this is read again
 PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
@@ -406,6 +409,12 @@ class Calibrator:
         per_share = turned[own] ** 2 / len(states) if own in turned else 0.0
         extra = self._own_phase_share(step.gate) * per_share
         fit = self._coupler_fit(points, extra)
+        for _ in range(COUPLER_GAP_FILLS):
+            placed = [math.sqrt(v * v + extra) if v > 0 else 0.0 for v in points]
+            if (middle := widest_gap_volts(fit, placed, MAX_KAPPA_GAP)) is None:
+                break
+            await measure(round(math.sqrt(max(middle * middle - extra, 0.0)), 6))
+            fit = self._coupler_fit(points, extra)
         full = fit.full_transfer_volts
         for _ in range(COUPLER_REFINE_ROUNDS):  # pin full transfer down: a point on it reads the top
             if full is None or _point_on_top(fit, points):
@@ -511,6 +520,11 @@ class Calibrator:
         for v in volts:
             await measure(v)
         fit = self._coupler_fit(points)
+        for _ in range(COUPLER_GAP_FILLS):
+            if (middle := widest_gap_volts(fit, list(points), MAX_KAPPA_GAP)) is None:
+                break
+            await measure(round(middle, 6))
+            fit = self._coupler_fit(points)
         for _ in range(COUPLER_REFINE_ROUNDS):
             full = fit.full_transfer_volts
             if full is None or _point_on_top(fit, points):

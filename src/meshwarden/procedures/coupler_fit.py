@@ -301,6 +301,27 @@ def fit_coupler_angle_table(
     return dataclasses.replace(_fit_angles(v, corrected), second_input_share=share)
 
 
+def widest_gap_volts(fit: CouplerTableFit, volts: Any, max_gap: float) -> float | None:
+    """Volts halfway (in the table's kappa) across the widest step of kappa between measured
+    points below full transfer, if that step is wider than ``max_gap``; else None. A sweep even in
+    a design table's kappa samples a real coupler unevenly (its curve sits a volt or two off the
+    design's): the steepest stretch, just below full transfer, may get a step of 0.2 in kappa,
+    where even a good interpolant strays by 0.01."""
+    top = fit.full_transfer_volts if fit.full_transfer_volts is not None else fit.volts[-1]
+    at = np.array(sorted(float(x) for x in float_vector("volts", volts) if x <= top + 1e-9))
+    if at.size < 2:
+        return None
+    kappa = np.interp(at, fit.volts, fit.kappa)
+    if fit.full_transfer_volts is not None and at[-1] < top - 1e-9:
+        at, kappa = np.r_[at, top], np.r_[kappa, 1.0]
+    steps = np.diff(kappa)
+    i = int(np.argmax(steps))
+    if steps[i] <= max_gap:
+        return None
+    middle = 0.5 * (kappa[i] + kappa[i + 1])
+    return float(np.interp(middle, fit.kappa, fit.volts))
+
+
 def mixed_share_from_swing(kappa: float, swing: float) -> float:
     """The power share r that a small coherent field mixes in, from the swing it causes.
 
