@@ -314,7 +314,7 @@ def test_the_widest_step_in_kappa_below_full_transfer_is_split() -> None:
     to 1 at full transfer) is split at the volts where the table reads its middle, 0.8; with a
     limit of 0.45 nothing is asked for."""
     volts = np.linspace(0.0, 40.0, 81)
-    kappa = np.sin(np.minimum(0.05 + 1.52 * (volts / 40.0) ** 3, np.pi / 2)) ** 2
+    kappa = np.sin(0.05 + 2.0 * (volts / 40.0) ** 3) ** 2  # full transfer near 36.5 V, then down
     fit = fit_coupler_angle_table(volts, 1.0 - kappa, kappa)
     measured = [float(np.interp(k, kappa[: int(np.argmax(kappa)) + 1], volts[: int(np.argmax(kappa)) + 1]))
                 for k in (0.01, 0.2, 0.4, 0.6)]  # fmt: skip
