@@ -76,7 +76,6 @@ COUPLER_TURN_DROP = 0.1  # ... until its plain ratio has fallen this far below i
 COUPLER_GAP_FILLS = 2  # at most this many points more where the sweep left a wide step in kappa
 MAX_KAPPA_GAP = 0.15  # ... wider than this (an even sweep of 12 points steps by 0.125)
 COUPLER_REFINE_ROUNDS = 3  # full transfer is measured (and the fit made again) at most this often
-REVISIT_SPREAD = 0.01  # a coupler whose two states read further apart than this is read again
 PHASE_LOW_FRACTIONS = (0.5, 0.75)  # of a phase sweep's first step: two more points inside it
 PHASE_SWEEP_TURNS = 1.5  # a phase sweep covers this many turns of the table in force (>= 1 needed)
 
@@ -384,19 +383,14 @@ class Calibrator:
         states = [{p: 0.0 for p in phases}, turned] if phases else [{}]  # nothing to turn: one reading
         points: dict[float, tuple[float, float]] = {}
 
-        spread = [0.0]  # the largest difference of the plain ratio between the states at one point
-
         async def measure(v: float) -> None:
             b = c = 0.0
-            ratios = []
             states.reverse()  # the last state of one point is the first of the next: no extra travel
             for state in states:
                 await self._hold({**routing, actuator: v, **state})
                 powers = await self._read(actuator, settle)
-                bar, cross = sum(powers[m] for m in step.bar_taps), sum(powers[m] for m in step.cross_taps)
-                b, c = b + bar / len(states), c + cross / len(states)
-                ratios.append(cross / (bar + cross) if bar + cross > 0 else 0.0)
-            spread[0] = max(spread[0], max(ratios) - min(ratios))
+                b += sum(powers[m] for m in step.bar_taps) / len(states)
+                c += sum(powers[m] for m in step.cross_taps) / len(states)
             points[v] = (b, c)
 
         sweep = self._sweep_values(actuator, max(6, self.points // 2 + 3))
@@ -424,7 +418,10 @@ class Calibrator:
             full = fit.full_transfer_volts
         if not self._keep_coupler_fit(actuator, points, fit):
             return
-        if phases and spread[0] > REVISIT_SPREAD:  # light that interferes enough to matter
+        # Every coupler read at phase states is read again: two states that read alike do not
+        # show that little light interferes (a shifter whose table in force is far off may have
+        # turned by nearly a full turn; seed 777 left c46 0.025 off that way).
+        if phases:
             self.revisit[actuator] = (step, tuple(phases), tuple(sorted(points)))
         bar, cross = zip(*(points[v] for v in sorted(points)), strict=True)
         weights = balance_weights(bar, cross) or (1.0, 1.0)
