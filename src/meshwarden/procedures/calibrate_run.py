@@ -125,6 +125,14 @@ def _rounded(values: Any) -> list[float | None]:
     return [float(f"{float(v):.9g}") if v is not None and math.isfinite(v) else None for v in values]
 
 
+def _table_for_plot(fit: CouplerTableFit, every: int = 3) -> dict[str, list[float | None]]:
+    """A coupler's table for its stored sweep (drawn in plots, never mapped through): every
+    ``every``-th point and the last, so the record stays about as small as with four points per
+    measured interval while the table itself keeps twelve."""
+    keep = sorted({*range(0, len(fit.volts), every), len(fit.volts) - 1})
+    return {"volts": _rounded([fit.volts[i] for i in keep]), "kappa": _rounded([fit.kappa[i] for i in keep])}
+
+
 def sweep_record(
     quantity: str,
     volts: list[float],
@@ -441,7 +449,7 @@ class Calibrator:
             sorted(points),
             list(fit.measured_kappa),
             list(fit.fitted_kappa),
-            {"volts": _rounded(fit.volts), "kappa": _rounded(fit.kappa)},
+            _table_for_plot(fit),
             fit.residual_rms / MAX_RESIDUAL_KAPPA,
         )
         verdict = coupler_gate(fit, needed_low=0.5, needed_high=0.5)  # the range is reported, not demanded
