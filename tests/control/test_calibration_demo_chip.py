@@ -4,6 +4,7 @@ crosstalk, phase-dependent loss) on a seed of its own, checked against the simul
 from __future__ import annotations
 
 import asyncio
+import itertools
 import shutil
 from pathlib import Path
 
@@ -52,18 +53,19 @@ def _demo_chip(folder: Path) -> Path:
 
 def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
     """After one calibration: every part the light reaches is measured and passes its gate, in
-    at most 20 frames per actuator of the chip; couplers set all at once to random ratios all
+    at most 20 frames per actuator of the chip, its progress counted to one end; couplers set all at once to random ratios all
     land within 0.01 of the truth and phase steps within 0.02 rad (the issue's target); the route
     the calibrated ranges choose puts at least 96.5 % of the light at the chosen output (the
     truth's own tap powers); every write kept the rules."""
     config = load_config(_demo_chip(tmp_path))
     route = route_light_script()
     rng = np.random.default_rng(9)
+    ticks: list[tuple[int, int, str]] = []
 
     async def scenario() -> tuple[dict, list[float], list[float], float]:
         async with open_controller(config) as ctl:
             await ctl.arm()
-            report = await calibration_job(ctl)
+            report = await calibration_job(ctl, progress=lambda done, total, what: ticks.append((done, total, what)))
             rack = inprocess.get(RACK)
             gate = {g: i for i, g in enumerate(rack.truth().gate_ids)}
             ok = [a for a, o in report["actuators"].items() if o["status"] == "ok"]
@@ -105,6 +107,10 @@ def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
         statuses = [o["status"] for o in report["actuators"].values()]
         assert statuses.count("ok") == 35 and statuses.count("failed") == 0, report["actuators"]
         assert report["frames"] / len(statuses) <= 20  # the issue's goal: frames per actuator of the chip
+        # Progress counts the second pass too: one total, never backwards, done only at the end.
+        assert len({total for _, total, _ in ticks}) == 1 and ticks[-1] == (ticks[-1][1], ticks[-1][1], "")
+        assert all(a[0] <= b[0] for a, b in itertools.pairwise(ticks))
+        assert all(done < total for done, total, _ in ticks[:-1])
         errors = np.array(kappa_errors)
         assert float(errors.max()) <= 0.01, sorted(errors)[-6:]
         assert max(phase_errors) <= 0.02, phase_errors

@@ -317,11 +317,20 @@ class Calibrator:
             if actuator not in self.gate_of or self.gate_of[actuator] not in self.topology.gates:
                 self.run.outcomes[actuator] = Outcome("unobservable", "its gate is not placed in chip.lattice")
         await self.check_laser()
+        # The second pass comes after the steps: count the couplers it will likely read again
+        # (those a shifter this run has a step for turns), so the bar does not sit at its end.
+        phased = {self._actuator(s) for s in steps if s.part == "phase"}
+        again = sum(
+            1
+            for s in steps
+            if s.part == "coupler" and phased & {*self._own_phase_if_needed(s), *self._upstream_phase(s.gate)}
+        )
+        total = len(steps) + again
         for index, step in enumerate(steps):
             self.claim.check()
             actuator = self._actuator(step)
             if self.progress is not None:
-                self.progress(index, len(steps), actuator)
+                self.progress(index, total, actuator)
             try:
                 if step.part == "coupler":
                     await self._coupler(step, actuator)
@@ -336,9 +345,9 @@ class Calibrator:
                 self.run.outcomes.setdefault(actuator, Outcome("failed")).status = "failed"
                 self.run.outcomes[actuator].reason = exc.message
         self._refit_with_measured_shares()
-        await self._second_pass()
+        await self._second_pass(len(steps), total)
         if self.progress is not None:
-            self.progress(len(steps), len(steps), "")
+            self.progress(total, total, "")
         self.run.seconds = time.monotonic() - started
         return self.run
 
@@ -462,9 +471,10 @@ class Calibrator:
         self._take(actuator, outcome.table)
         return True
 
-    async def _second_pass(self) -> None:
+    async def _second_pass(self, done: int, total: int) -> None:
         """Couplers read at half turns of phase shifters not yet calibrated are read again, now
-        that those are: at every combination of exact half turns (see :meth:`_coupler_again`)."""
+        that those are: at every combination of exact half turns (see :meth:`_coupler_again`).
+        A coupler whose second reading a refusal ends keeps its first table, and says why."""
         for actuator, (step, phases, volts) in sorted(self.revisit.items()):
             # A shifter this run could not calibrate sees (next to) no light: it stays at 0 V.
             phases = tuple(p for p in phases if p in self.maps)
@@ -472,8 +482,21 @@ class Calibrator:
                 continue
             self.claim.check()
             if self.progress is not None:
-                self.progress(len(self.run.outcomes), len(self.run.outcomes), actuator)
-            await self._coupler_again(step, actuator, phases, volts)
+                self.progress(min(done, total - 1), total, actuator)
+            done += 1
+            outcome = self.run.outcomes[actuator]
+            first = (outcome.table, outcome.sweep, outcome.points, outcome.residual)
+            try:
+                await self._coupler_again(step, actuator, phases, volts)
+            except MeshwardenError as exc:
+                if self.claim.stopping:
+                    if isinstance(exc, StoppedRefused):
+                        raise
+                    raise StoppedRefused(f"calibration stopped: {self.claim.stop_reason}") from exc
+                outcome.table, outcome.sweep, outcome.points, outcome.residual = first
+                outcome.status, outcome.reason = "ok", f"first reading kept: the second ended with: {exc.message}"
+                if first[0] is not None:
+                    self._take(actuator, first[0])
         self.revisit.clear()
 
     async def _coupler_again(
@@ -540,10 +563,13 @@ class Calibrator:
             mixed = await self._mixed_share(phases, choices, readings, points, read)
             if mixed > 0.0:
                 fit = self._coupler_fit(points, known_share=mixed)
-        first = self.run.outcomes[actuator].table
-        if not self._keep_coupler_fit(actuator, points, fit) and first is not None:
-            self.run.outcomes[actuator].status = "ok"  # the first reading's table stands
-            self._take(actuator, first)
+        outcome = self.run.outcomes[actuator]
+        first = (outcome.table, outcome.sweep, outcome.points, outcome.residual)
+        if not self._keep_coupler_fit(actuator, points, fit) and first[0] is not None:
+            reason = outcome.reason  # the first reading's table stands, with its own record
+            outcome.table, outcome.sweep, outcome.points, outcome.residual = first
+            outcome.status, outcome.reason = "ok", f"first reading kept: the second failed its gate: {reason}"
+            self._take(actuator, first[0])
 
     async def _mixed_share(
         self,
