@@ -63,9 +63,11 @@ def test_calibration_measures_the_bench_and_switches_without_moving_outputs(make
     assert statuses == {"c0": "ok", "c1": "ok", "p0": "ok", "p1": "unobservable"}
     assert report["actuators"]["p1"]["reason"]
     measured = [o["frames"] for o in report["actuators"].values() if o["status"] == "ok"]
-    # The issue's goal is at most 20 monitor reads per actuator (of the demo chip: about 7 there);
-    # per measured part here, the crosstalk readings (a base and two per neighbour) add about 3.
-    assert sum(measured) / len(measured) <= 21
+    # The issue's goal is at most 20 monitor reads per actuator of the demo chip (about 11.5 there,
+    # tests/control/test_calibration_demo_chip.py). Here the resting gates' leaks swing both
+    # couplers' readings by 0.12 between phase states, so both are read again at exact half turns
+    # once p0 is calibrated (the second pass: about 26 more each); the crosstalk readings add about 3.
+    assert sum(measured) / len(measured) <= 40
     assert report["frames"] == sum(o["frames"] for o in report["actuators"].values())
     assert_rules_held(config, name)
 

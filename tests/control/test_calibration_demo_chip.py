@@ -4,6 +4,7 @@ crosstalk, phase-dependent loss) on a seed of its own, checked against the simul
 from __future__ import annotations
 
 import asyncio
+import itertools
 import shutil
 from pathlib import Path
 
@@ -24,10 +25,14 @@ RACK = "caldemo"
 
 def _demo_chip(folder: Path) -> Path:
     """The demo configuration with the simulator drawn from SEED and its drift off (a drifting
-    chip would move while it is checked)."""
+    chip would move while it is checked), the dielectric charging too: a routing coupler held at
+    cross (about 38 V) through the run charges by 2 % of that with a 300 s time constant, and
+    right after a 30 s run reads 0.007-0.008 low at the steep middle of its curve until it
+    relaxes, in proportion to the run's wall-clock length (longer on a loaded machine)."""
     sim = yaml.safe_load((REPO / "config" / "demo" / "simulator.yaml").read_text(encoding="utf-8"))
     sim["seed"] = SEED
     sim["drift"].update(random_walk_rad_per_sqrt_s=0.0, temperature_steps=[], temperature_step_interval_s=0)
+    sim["coupler"]["charging_fraction"] = sim["phase"]["charging_fraction"] = 0.0
     (folder / "sim.yaml").write_text(yaml.safe_dump(sim), encoding="utf-8")
     rack = yaml.safe_load((REPO / "config" / "demo" / "rack.yaml").read_text(encoding="utf-8"))
     for board in rack["boards"]:
@@ -47,19 +52,20 @@ def _demo_chip(folder: Path) -> Path:
 
 
 def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
-    """After one calibration: every part the light reaches is measured (at most one fails its
-    gate); couplers set all at once to random ratios land within 0.01 of the truth for at least
-    85 % of them and within 0.05 for all (the rest: leaks remixed before the taps); phase steps
-    land within 0.02 rad; the route the calibrated ranges choose puts at least 95 % of the light at
-    the chosen output (the truth's own tap powers); every write kept the rules."""
+    """After one calibration: every part the light reaches is measured and passes its gate, in
+    at most 20 frames per actuator of the chip, its progress counted to one end; couplers set all at once to random ratios all
+    land within 0.01 of the truth and phase steps within 0.02 rad (the issue's target); the route
+    the calibrated ranges choose puts at least 96.5 % of the light at the chosen output (the
+    truth's own tap powers); every write kept the rules."""
     config = load_config(_demo_chip(tmp_path))
     route = route_light_script()
     rng = np.random.default_rng(9)
+    ticks: list[tuple[int, int, str]] = []
 
     async def scenario() -> tuple[dict, list[float], list[float], float]:
         async with open_controller(config) as ctl:
             await ctl.arm()
-            report = await calibration_job(ctl)
+            report = await calibration_job(ctl, progress=lambda done, total, what: ticks.append((done, total, what)))
             rack = inprocess.get(RACK)
             gate = {g: i for i, g in enumerate(rack.truth().gate_ids)}
             ok = [a for a, o in report["actuators"].items() if o["status"] == "ok"]
@@ -99,11 +105,16 @@ def test_demo_chip_calibrates_to_its_truth(tmp_path: Path) -> None:
     try:
         report, kappa_errors, phase_errors, share = run(scenario())
         statuses = [o["status"] for o in report["actuators"].values()]
-        assert statuses.count("ok") >= 34 and statuses.count("failed") <= 1, report["actuators"]
+        assert statuses.count("ok") == 35 and statuses.count("failed") == 0, report["actuators"]
+        assert report["frames"] / len(statuses) <= 20  # the issue's goal: frames per actuator of the chip
+        # Progress counts the second pass too: one total, never backwards, done only at the end.
+        assert len({total for _, total, _ in ticks}) == 1 and ticks[-1] == (ticks[-1][1], ticks[-1][1], "")
+        assert all(a[0] <= b[0] for a, b in itertools.pairwise(ticks))
+        assert all(done < total for done, total, _ in ticks[:-1])
         errors = np.array(kappa_errors)
-        assert float(np.mean(errors <= 0.01)) >= 0.85 and float(errors.max()) <= 0.05, sorted(errors)[-6:]
+        assert float(errors.max()) <= 0.01, sorted(errors)[-6:]
         assert max(phase_errors) <= 0.02, phase_errors
-        assert share >= 0.95, share
+        assert share >= 0.965, share
         for board in ("b0", "b1"):
             result = check_board_log(config, board, list(inprocess.get(RACK).board(board).write_log))
             assert not result.violations, result.violations[:5]

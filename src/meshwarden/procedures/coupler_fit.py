@@ -19,6 +19,7 @@ from __future__ import annotations
 import dataclasses
 import itertools
 import math
+from collections.abc import Callable
 from dataclasses import dataclass
 from typing import Any
 
@@ -65,14 +66,28 @@ def balanced_coupling_ratio(bar_power: Any, cross_power: Any) -> FloatArray:
     bar = float_vector("bar_power", bar_power)
     cross = float_vector("cross_power", cross_power)
     plain = coupling_ratio(bar, cross)
+    weights = balance_weights(bar, cross)
+    if weights is None:
+        return plain
+    w_bar, w_cross = weights
+    return np.asarray(w_cross * cross / (w_bar * bar + w_cross * cross))
+
+
+def balance_weights(bar_power: Any, cross_power: Any) -> tuple[float, float] | None:
+    """The weights (w_b, w_c) of :func:`balanced_coupling_ratio`: least squares of
+    ``w_b P_bar + w_c P_cross = 1`` over a sweep; None where kappa varies too little (its ratio
+    spans less than 0.3), the system is ill-conditioned, or a weight comes out <= 0."""
+    bar = float_vector("bar_power", bar_power)
+    cross = float_vector("cross_power", cross_power)
+    plain = coupling_ratio(bar, cross)
     design = np.column_stack([bar, cross])
     if plain.size < 3 or float(np.ptp(plain)) < 0.3 or np.linalg.cond(design) > 1e6:
-        return plain
+        return None
     weights, *_ = np.linalg.lstsq(design, np.ones(bar.size), rcond=None)
     w_bar, w_cross = float(weights[0]), float(weights[1])
     if w_bar <= 0 or w_cross <= 0:
-        return plain
-    return np.asarray(w_cross * cross / (w_bar * bar + w_cross * cross))
+        return None
+    return w_bar, w_cross
 
 
 def isotonic_increasing(values: Any, weights: Any = None) -> FloatArray:
@@ -218,7 +233,7 @@ def coupler_gate(
 
 
 HALF_PI = math.pi / 2
-TABLE_STEPS_PER_INTERVAL = 4  # table points per measured interval, from the fit in angle space
+TABLE_STEPS_PER_INTERVAL = 12  # table points per measured interval, from the fit in angle space
 FOLD_ANGLE_RAD = 0.05  # a point this close to full transfer reads its kappa within 0.0025 of the top
 CLEARLY_SMOOTHER = 0.5
 TOP_NOISE = 0.005  # how far above 1 - r the highest reading may lie (noise)
@@ -251,7 +266,9 @@ def unfold_coupling_angle(kappa: Any, volts: Any = None) -> tuple[FloatArray, in
     return np.asarray(theta), used
 
 
-def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, balance: bool = True) -> CouplerTableFit:
+def fit_coupler_angle_table(
+    volts: Any, bar_power: Any, cross_power: Any, *, balance: bool = True, known_share: float | None = None
+) -> CouplerTableFit:
     """Monotone kappa(V) from a sweep that may run past full transfer, fitted in angle space.
 
     Coupled-mode theory gives kappa = sin^2(C L) for a directional coupler (Yariv, IEEE J. Quantum
@@ -268,16 +285,67 @@ def fit_coupler_angle_table(volts: Any, bar_power: Any, cross_power: Any, *, bal
     Light in the coupler's other input too (a share r of the two, leaked into it by gates at
     rest upstream) reads as kappa_measured = r + (1 - 2 r) kappa: at full transfer that light
     leaves at the bar port, so the ratio tops out at 1 - r. When the sweep crosses full transfer,
-    r is found (:func:`second_input_share`) and taken out (``second_input_share`` of the fit)."""
+    r is found (:func:`second_input_share`) and taken out (``second_input_share`` of the fit).
+    A sweep that does not cross it takes ``known_share`` instead, when given (measured otherwise:
+    :func:`mixed_share_from_swing`)."""
     v, kappa = _sweep_ratios(volts, bar_power, cross_power, balance)
     fit = _fit_angles(v, kappa)
-    if fit.full_transfer_volts is None:
+    if fit.full_transfer_volts is None and not known_share:
         return fit
-    share = second_input_share(v, kappa)
+    if known_share is not None and not 0.0 <= known_share < 0.5:
+        raise ProcedureInputError(f"known_share must be from 0 to below 0.5, got {known_share}")
+    share = second_input_share(v, kappa) if fit.full_transfer_volts is not None else float(known_share or 0.0)
     if share == 0.0:
         return fit
     corrected = np.clip((kappa - share) / (1.0 - 2.0 * share), 0.0, 1.0)
     return dataclasses.replace(_fit_angles(v, corrected), second_input_share=share)
+
+
+def widest_gap_volts(fit: CouplerTableFit, volts: Any, max_gap: float) -> float | None:
+    """Volts halfway (in the table's kappa) across the widest step of kappa between measured
+    points below full transfer, if that step is wider than ``max_gap``; else None. A sweep even in
+    a design table's kappa samples a real coupler unevenly (its curve sits a volt or two off the
+    design's): the steepest stretch, just below full transfer, may get a step of 0.2 in kappa,
+    where even a good interpolant strays by 0.01."""
+    top = fit.full_transfer_volts if fit.full_transfer_volts is not None else fit.volts[-1]
+    at = np.array(sorted(float(x) for x in float_vector("volts", volts) if x <= top + 1e-9))
+    if at.size < 2:
+        return None
+    kappa = np.interp(at, fit.volts, fit.kappa)
+    if fit.full_transfer_volts is not None and at[-1] < top - 1e-9:
+        at, kappa = np.r_[at, top], np.r_[kappa, 1.0]
+    steps = np.diff(kappa)
+    i = int(np.argmax(steps))
+    if steps[i] <= max_gap:
+        return None
+    middle = 0.5 * (kappa[i] + kappa[i + 1])
+    return float(np.interp(middle, fit.kappa, fit.volts))
+
+
+def mixed_share_from_swing(kappa: float, swing: float) -> float:
+    """The power share r that a small coherent field mixes in, from the swing it causes.
+
+    Two fields of powers 1 - r and r meeting in a coupler of ratio kappa (or a coupler's two
+    outputs, kappa and 1 - kappa, meeting in a gate of ratio r) give, at either port, a term
+    2 sqrt(kappa (1 - kappa)) sqrt(r (1 - r)) cos(psi) on top of their incoherent sum (the
+    standard 2x2 coupler matrix applied to both inputs), psi their relative phase. ``swing`` is
+    that term's amplitude, read as a ratio of the port's power to both ports' (half the
+    peak-to-peak change as psi turns a full circle); r (below 1/2) follows from
+    r (1 - r) = swing^2 / (4 kappa (1 - kappa)). It is the share by which the incoherent sum
+    misreads kappa: r + (1 - 2 r) kappa."""
+    if not (0.0 < kappa < 1.0 and math.isfinite(swing) and swing >= 0.0):
+        raise ProcedureInputError(f"need 0 < kappa < 1 and a swing >= 0, got kappa {kappa}, swing {swing}")
+    product = min(swing * swing / (4.0 * kappa * (1.0 - kappa)), 0.25)
+    return 0.5 * (1.0 - math.sqrt(1.0 - 4.0 * product))
+
+
+def combined_share(shares: Any) -> float:
+    """The one share r equivalent to several mixings in a row: each maps a ratio k to
+    r_i + (1 - 2 r_i) k, so 1 - 2 r = product of (1 - 2 r_i) (composition of the affine maps)."""
+    values = float_vector("shares", shares, min_length=0)
+    if np.any(values < 0.0) or np.any(values >= 0.5):
+        raise ProcedureInputError("every share must be from 0 to below 0.5")
+    return float(0.5 * (1.0 - np.prod(1.0 - 2.0 * values)))
 
 
 def second_input_share(volts: Any, kappa: Any) -> float:
@@ -312,6 +380,35 @@ def second_input_share(volts: Any, kappa: Any) -> float:
     return best if best_rms < CLEARLY_SMOOTHER * plain else 0.0
 
 
+MIN_ANGLE_RAD = 1e-3  # angles are interpolated on a log scale: a bar reading of exactly 0 sits here
+
+
+def angle_curve(volts: Any, theta: Any) -> Callable[[Any], FloatArray]:
+    """A monotone curve theta(V) through measured coupling angles, for the points between them.
+
+    The coupling coefficient of a directional coupler falls exponentially with its gap, C = C0
+    exp(-gamma g) (Chrostowski & Hochberg, *Silicon Photonics Design*, CUP 2015), and a parallel
+    plate's travel grows as V^2 while it is small against its gap (F = eps0 A V^2 / (2 g^2) on a
+    spring; Senturia, *Microsystem Design*, 2001, ch. 6): log theta is nearly linear in V^2 where
+    theta itself curves steeply up in V. A monotone cubic (PCHIP; Fritsch & Carlson, SIAM J.
+    Numer. Anal. 17:238, 1980) through (V^2, log theta) therefore follows the curve between
+    sparse points far closer than one through (V, theta), whose slopes at the knots (a harmonic
+    mean of the two sides) flatten a steep convex curve. ``volts`` strictly increasing, from >= 0;
+    ``theta`` non-decreasing (angles below MIN_ANGLE_RAD count as it)."""
+    v = float_vector("volts", volts, min_length=2)
+    t = float_vector("theta", theta, min_length=2)
+    same_length("volts", v, "theta", t)
+    strictly_increasing("volts", v)
+    if v[0] < 0 or np.any(np.diff(t) < 0):
+        raise ProcedureInputError("volts must be >= 0 and theta non-decreasing")
+    log_curve = PchipInterpolator(v * v, np.log(np.maximum(t, MIN_ANGLE_RAD)))
+
+    def curve(x: Any) -> FloatArray:
+        return np.asarray(np.exp(log_curve(np.square(np.asarray(x, dtype=float)))))
+
+    return curve
+
+
 def _fit_angles(v: FloatArray, kappa: FloatArray) -> CouplerTableFit:
     """The angle-space fit of :func:`fit_coupler_angle_table` on ratios already made."""
     theta, used = unfold_coupling_angle(kappa, v)
@@ -324,7 +421,7 @@ def _fit_angles(v: FloatArray, kappa: FloatArray) -> CouplerTableFit:
     block_theta = fitted[starts]
     if block_volts.size < 2:
         raise ProcedureInputError("kappa does not rise over the sweep: no table can be made (is the coupler moving?)")
-    curve = PchipInterpolator(block_volts, block_theta)
+    curve = angle_curve(block_volts, block_theta)
     full: float | None = None
     beyond = np.flatnonzero(block_theta >= HALF_PI)
     if beyond.size and beyond[0] > 0:

@@ -47,11 +47,22 @@ def warp(u: FloatArray, growth: float) -> FloatArray:
 
 
 def fringe_power(
-    volts: Any, *, offset: float, amplitude: float, rate_rad_per_v2: float, phase0_rad: float, growth_per_v2: float
+    volts: Any,
+    *,
+    offset: float,
+    amplitude: float,
+    rate_rad_per_v2: float,
+    phase0_rad: float,
+    growth_per_v2: float,
+    offset_slope_per_rad: float = 0.0,
+    amplitude_slope_per_rad: float = 0.0,
 ) -> FloatArray:
-    """The model P(V) = A + B cos(phi0 + c w(V^2)) at ``volts`` (the module docstring's symbols)."""
+    """The model P(V) = A + D phi + B (1 + L phi) cos(phi0 + phi), phi = c w(V^2), at ``volts``
+    (the module docstring's symbols; D and L are 0 without the arm's loss)."""
     u = np.asarray(volts, dtype=float) ** 2
-    return np.asarray(offset + amplitude * np.cos(phase0_rad + rate_rad_per_v2 * warp(u, growth_per_v2)))
+    phi = rate_rad_per_v2 * warp(u, growth_per_v2)
+    swing = amplitude * (1.0 + amplitude_slope_per_rad * phi) * np.cos(phase0_rad + phi)
+    return np.asarray(offset + offset_slope_per_rad * phi + swing)
 
 
 def _warp_dgrowth(u: FloatArray, growth: float) -> FloatArray:
@@ -80,13 +91,18 @@ class FringeFit:
     max_volts: float
     cycles: float
     covariance: tuple[tuple[float, ...], ...]
+    offset_slope_per_rad: float = 0.0  # D: the offset's change per rad of actuated phase (arm loss)
+    amplitude_slope_per_rad: float = 0.0  # L: the amplitude's relative change per rad (arm loss)
 
     def phase_se(self, volts: Any) -> FloatArray:
-        """Standard error of the fringe argument phi0 + c w(V^2), from the full covariance."""
+        """Standard error of the fringe argument phi0 + c w(V^2), from the full covariance
+        (parameters A, B, c, phi0, then b if fitted, then D and L if fitted)."""
         u = np.asarray(volts, dtype=float) ** 2
         grad = [np.zeros_like(u), np.zeros_like(u), warp(u, self.growth_per_v2), np.ones_like(u)]
-        if len(self.covariance) == 5:
+        if len(self.covariance) in (5, 7):
             grad.append(self.rate_rad_per_v2 * _warp_dgrowth(u, self.growth_per_v2))
+        if len(self.covariance) in (6, 7):
+            grad += [np.zeros_like(u), np.zeros_like(u)]
         g = np.stack(grad, axis=-1)
         return np.asarray(np.sqrt(np.einsum("...i,ij,...j->...", g, np.array(self.covariance), g)))
 
@@ -107,6 +123,8 @@ class FringeFit:
             "rate_rad_per_v2": self.rate_rad_per_v2,
             "phase0_rad": self.phase0_rad,
             "growth_per_v2": self.growth_per_v2,
+            "offset_slope_per_rad": self.offset_slope_per_rad,
+            "amplitude_slope_per_rad": self.amplitude_slope_per_rad,
         }
 
     def as_dict(self) -> dict[str, Any]:
@@ -135,9 +153,16 @@ def _linear_seed(s: FloatArray, power: FloatArray, growth: float) -> tuple[float
     return float(ssr[best]), np.array([a, math.hypot(beta1, beta2), rates[best], math.atan2(-beta2, beta1)])
 
 
-def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFit:
-    """Fit P = A + B cos(phi0 + c w(V^2)) to a sweep; ``with_growth`` also fits b (else b = 0)."""
-    v = float_vector("volts", volts, min_length=7 if with_growth else 6)
+def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False, with_loss: bool = False) -> FringeFit:
+    """Fit P = A + B cos(phi0 + c w(V^2)) to a sweep; ``with_growth`` also fits b (else b = 0).
+
+    ``with_loss`` also fits the arm's loss growing with its phase (a MEMS shifter's loss rises as
+    its beam approaches the waveguide): the arm's field (1 - l phi) gives, to first order in l,
+    P = A + D phi + B (1 + L phi) cos(phi0 + phi) (two-beam interference, I = I1 + I2 + 2
+    sqrt(I1 I2) cos phi; Saleh & Teich, *Fundamentals of Photonics*, Wiley 1991, ch. 2), with
+    L = -l and D = -2 l I2 (I2 unknown: a free slope). Without them such a loss leaves a
+    systematic residual that the standard errors read as uncertainty."""
+    v = float_vector("volts", volts, min_length=(7 if with_growth else 6) + (2 if with_loss else 0))
     p = float_vector("power", power)
     same_length("volts", v, "power", p)
     if np.any(v < 0):
@@ -153,11 +178,18 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
     seeds = [(*_linear_seed(s, p, g), g) for g in grid]
     _, start, growth0 = min(seeds, key=lambda item: item[0])
 
+    first_loss = 5 if with_growth else 4  # index of D (then L) in x
+
+    def slopes(x: FloatArray) -> tuple[float, float]:
+        return (float(x[first_loss]), float(x[first_loss + 1])) if with_loss else (0.0, 0.0)
+
     def model(x: FloatArray) -> tuple[FloatArray, FloatArray]:
         growth = x[4] if with_growth else 0.0
         w = warp(s, growth)
         theta = x[3] + x[2] * w
-        return x[0] + x[1] * np.cos(theta) - p, theta
+        d, l_ = slopes(x)
+        phi = x[2] * w
+        return x[0] + d * phi + x[1] * (1.0 + l_ * phi) * np.cos(theta) - p, theta
 
     def residual(x: FloatArray) -> FloatArray:
         return model(x)[0]
@@ -165,14 +197,24 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
     def jacobian(x: FloatArray) -> FloatArray:
         growth = x[4] if with_growth else 0.0
         _, theta = model(x)
-        sin_t = np.sin(theta)
-        cols = [np.ones_like(s), np.cos(theta), -x[1] * sin_t * warp(s, growth), -x[1] * sin_t]
+        d, l_ = slopes(x)
+        w = warp(s, growth)
+        phi = x[2] * w
+        sin_t, cos_t = np.sin(theta), np.cos(theta)
+        # d model / d phi (phi = c w moves both the argument and the loss terms)
+        along = d + x[1] * l_ * cos_t - x[1] * (1.0 + l_ * phi) * sin_t
+        cols = [np.ones_like(s), (1.0 + l_ * phi) * cos_t, along * w, -x[1] * (1.0 + l_ * phi) * sin_t]
         if with_growth:
-            cols.append(-x[1] * sin_t * x[2] * _warp_dgrowth(s, growth))
+            cols.append(along * x[2] * _warp_dgrowth(s, growth))
+        if with_loss:
+            cols += [phi, x[1] * phi * cos_t]
         return np.stack(cols, axis=1)
 
     x0 = np.append(start, growth0) if with_growth else start
     lower = [-np.inf, 0.0, 0.0, -np.inf] + ([0.0] if with_growth else [])
+    if with_loss:
+        x0 = np.append(x0, [0.0, 0.0])
+        lower += [-np.inf, -np.inf]
     x0 = np.maximum(x0, np.array(lower) + 1e-12 * np.isfinite(lower))
     result = least_squares(residual, x0, jac=jacobian, bounds=(lower, np.inf), method="trf", x_scale="jac")
     x = np.asarray(result.x, dtype=float)
@@ -183,7 +225,9 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
         cov = np.linalg.inv(jac.T @ jac) * ssr / max(n - k, 1)
     except np.linalg.LinAlgError:
         cov = np.full((k, k), np.inf)
-    to_data_units = np.array([unit, unit, 1.0 / u_max, 1.0, 1.0 / u_max])[:k]
+    to_data_units = np.array([unit, unit, 1.0 / u_max, 1.0] + ([1.0 / u_max] if with_growth else []))
+    if with_loss:
+        to_data_units = np.append(to_data_units, [unit, 1.0])
     cov = cov * np.outer(to_data_units, to_data_units)
     se = np.sqrt(np.abs(np.diag(cov)))
     growth = float(x[4]) if with_growth else 0.0
@@ -203,6 +247,8 @@ def fit_fringe(volts: Any, power: Any, *, with_growth: bool = False) -> FringeFi
         max_volts=float(v.max()),
         cycles=float(x[2] * warp(np.array([1.0]), growth)[0]) / TWO_PI,
         covariance=tuple(tuple(float(c) for c in row) for row in cov),
+        offset_slope_per_rad=slopes(x)[0] * unit,
+        amplitude_slope_per_rad=slopes(x)[1],
     )
 
 
