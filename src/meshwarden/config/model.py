@@ -269,6 +269,13 @@ class ScansConfig:
     optical_noise_rel: float = 0.01
     sense_noise_volts: float = 0.005
     k_sigma: float = 5.0
+    second_look_factor: float = 30.0
+    integration_s: float = 1e-3
+    temperature_k: float = 300.0
+    dark_current_a: float = 0.0
+    false_alarm: float = 1e-6
+    crosstalk_share_max: float = 0.05
+    loss_floor: float = 0.5
 
 
 @dataclass(frozen=True)

@@ -39,7 +39,7 @@ from typing import Any
 from meshwarden.controller import Controller
 from meshwarden.errors import MeshwardenError, RefusedError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
-from meshwarden.procedures.designs import PerturbationDesign, drift_robust, s_matrix_design
+from meshwarden.procedures.designs import PerturbationDesign, scan_design
 from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.scan_judge import (
     ActuatorPlan,
@@ -91,8 +91,7 @@ DRIFT_TERMS = 2  # Legendre drift terms fitted with the design where the frames 
 
 def _design(actuators: int) -> PerturbationDesign:
     """The S-matrix design in drift-robust order, with as many drift terms as its spare frames allow (up to 2)."""
-    plain = s_matrix_design(actuators)
-    return drift_robust(plain, min(DRIFT_TERMS, plain.frames - 1 - actuators))
+    return scan_design(actuators, DRIFT_TERMS)
 
 
 def _choose_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> None:
