@@ -295,13 +295,17 @@ async def run_scan(
         except StoppedRefused as exc:
             stopped = exc.message
         finally:
-            if not claim.ended and not claim.stopping:  # disarm and estop take the outputs over
+            handed_over = claim.ended or claim.stopping  # disarm and estop take the outputs over
+            if not handed_over:
                 await claim.move(home, volts=True, journal=False)
             final_codes = {a: int(controller.describe(a)["code"]) for a in tested}
             tick()
-    if stopped is not None:
-        raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
+    if stopped is not None:
+        raise StoppedRefused(
+            f"scan stopped: {stopped}; {_where_outputs_went(handed_over, restored, claim.stop_reason)}",
+            outputs_returned=restored and not handed_over,
+        )
     earlier = (reference or {}).get("actuators", {}) if same_point else {}
     report = judge_scan(
         controller,
@@ -331,6 +335,19 @@ async def run_scan(
     report["operating_codes"] = operating_codes
     report["compared_with_reference"] = bool(earlier)
     return report
+
+
+def _where_outputs_went(handed_over: bool, restored: bool, reason: str | None) -> str:
+    """What became of the outputs a stopped scan had moved: returned by the scan, or taken over by what ended its
+    claim (a disarm ramps every output to zero, an emergency stop zeroes them at once)."""
+    if handed_over:
+        return (
+            f"the {reason or 'end of its claim'} took the outputs over, so the scan did not return them to where it "
+            "found them (a disarm ramps every output to zero, an emergency stop zeroes them)"
+        )
+    if restored:
+        return "outputs returned to where it found them"
+    return "it moved the outputs back, but some do not hold the codes it found them at"
 
 
 def _big_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> float:
