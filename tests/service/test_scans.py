@@ -253,6 +253,8 @@ async def _nothing(topic: str, body: dict[str, Any]) -> int:
         ("scans: {crosstalk_share_max: 0.9}", "share of a neighbour's drive from 0 to 0.5"),
         ("scans: {crosstalk_share_max: yes}", "share of a neighbour's drive from 0 to 0.5"),
         ("scans: {loss_floor: 0}", "least share of conserved light a tap receives, above 0 and at most 1"),
+        ("scans: {path_loss_db_max: 5}", "how many dB two taps' paths may differ in loss, from 0 to 3"),
+        ("scans: {look_max_step_volts: -2 V}", "must be greater than 0 V"),
     ],
 )
 def test_bad_scans_sections_are_refused(tmp_path: Path, section: str, message: str) -> None:
@@ -274,7 +276,8 @@ def test_configured_scan_settings_take_effect(tmp_path: Path) -> None:
 
     section = (
         "scans: {second_look_factor: 12, integration_s: 2 ms, temperature_k: 290, dark_current_a: 3 nA, "
-        "false_alarm: 1.0e-5, crosstalk_share_max: 0.011, loss_floor: 0.7}\n"
+        "false_alarm: 1.0e-5, crosstalk_share_max: 0.011, loss_floor: 0.7, path_loss_db_max: 0.3, "
+        "look_max_step_volts: 6 V}\n"
     )
     path, rack = write_scan_bench(tmp_path, extra=section)
     config = load_config(path)
@@ -286,6 +289,8 @@ def test_configured_scan_settings_take_effect(tmp_path: Path) -> None:
         "false_alarm": 1e-5,
         "crosstalk_share_max": 0.011,
         "loss_floor": 0.7,
+        "path_loss_db_max": 0.3,
+        "look_max_step_volts": 6.0,
     }
 
     async def scenario() -> tuple[ScanSettings, dict[str, Any]]:

@@ -305,6 +305,8 @@ SCAN_KEYS = (
     "false_alarm",
     "crosstalk_share_max",
     "loss_floor",
+    "path_loss_db_max",
+    "look_max_step_volts",
 )
 
 
@@ -352,6 +354,12 @@ def _loss_floor(value: Any) -> float:
     return float(value)
 
 
+def _loss_db(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 <= float(value) <= 3.0:
+        raise ValueError(f"expected how many dB two taps' paths may differ in loss, from 0 to 3, got {value!r}")
+    return float(value)
+
+
 def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
     s = f.Section(p, raw, ("scans",), SCAN_KEYS)
     d = ScansConfig()
@@ -386,6 +394,8 @@ def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
         false_alarm=s.get("false_alarm", _false_alarm, d.false_alarm),
         crosstalk_share_max=s.get("crosstalk_share_max", _share, d.crosstalk_share_max),
         loss_floor=s.get("loss_floor", _loss_floor, d.loss_floor),
+        path_loss_db_max=s.get("path_loss_db_max", _loss_db, d.path_loss_db_max),
+        look_max_step_volts=s.get("look_max_step_volts", f.quantity(VOLTS), d.look_max_step_volts),
     )
 
 

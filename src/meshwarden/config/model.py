@@ -276,6 +276,8 @@ class ScansConfig:
     false_alarm: float = 1e-6
     crosstalk_share_max: float = 0.05
     loss_floor: float = 0.5
+    path_loss_db_max: float = 0.5
+    look_max_step_volts: float = 10.0
 
 
 @dataclass(frozen=True)

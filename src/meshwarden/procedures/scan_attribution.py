@@ -121,3 +121,35 @@ def least_sigmas(amplitude: float, looks: Sequence[tuple[float, float, float]], 
         shown = (amplitude * np.abs(np.cos(theta + step) - np.cos(theta)) - other) / sigma
         best = np.maximum(best, shown)
     return float(best.min())
+
+
+def coupling_angle(kappa: float) -> float:
+    """The coupled-mode angle theta (rad) of a power coupling, kappa = sin^2(theta / 2) (0 <= theta <= pi)."""
+    return 2.0 * math.asin(math.sqrt(min(max(kappa, 0.0), 1.0)))
+
+
+def offset_fringe_sigmas(offset: float, looks: Sequence[tuple[float, float]]) -> float:
+    """The least, over every fringe consistent with a measured offset, of the clearest of several looks.
+
+    A fringe D0 + R cos(theta - alpha) seen at an angle where its offset from the middle, D = R cos(phi), is known
+    (``offset``) but R sin(phi) = Q is not changes by -(D (1 - cos s) + Q sin s) when the angle turns by s
+    (standard trigonometry). Each look is (angle step s, sigma); the result is min over Q of max over the looks of
+    |D (1 - cos s) + Q sin s| / sigma: a working actuator shows at least this many sigma in one of its looks,
+    whatever Q is. Two looks of different size (or of opposite sign) leave no Q where both show nothing unless
+    D = 0. The minimum of a maximum of |a + b Q| lies where one term vanishes or two are equal, so those points
+    are tried exactly.
+    """
+    terms = []
+    for step, sigma in looks:
+        if sigma <= 0.0:
+            raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
+        terms.append((offset * (1.0 - math.cos(step)) / sigma, math.sin(step) / sigma))
+    if not terms:
+        return 0.0
+    candidates = [0.0] + [-a / b for a, b in terms if b != 0.0]
+    for i, (a1, b1) in enumerate(terms):
+        for a2, b2 in terms[i + 1 :]:
+            for sign in (1.0, -1.0):
+                if b1 - sign * b2 != 0.0:
+                    candidates.append((sign * a2 - a1) / (b1 - sign * b2))
+    return float(min(max(abs(a + b * q) for a, b in terms) for q in candidates))

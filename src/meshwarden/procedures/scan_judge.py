@@ -23,9 +23,11 @@ from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.scan_attribution import (
     amplitude_of,
     angle_step,
+    coupling_angle,
     crosstalk_bounds,
     estimate_share,
     least_sigmas,
+    offset_fringe_sigmas,
 )
 from meshwarden.procedures.scan_paths import (
     Cone,
@@ -34,6 +36,7 @@ from meshwarden.procedures.scan_paths import (
     incoherent_powers,
     lit_monitors,
     swing_taps,
+    tapped_outputs,
     unmixed,
     upstream_of,
 )
@@ -70,6 +73,8 @@ class ScanSettings:
     # crosstalk; the response a stuck actuator's step can borrow from its neighbours is judged against it)
     crosstalk_share_max: float = 0.05
     loss_floor: float = 0.5  # the least share of conserved light a tap receives (paths differ by < 3 dB)
+    path_loss_db_max: float = 0.5  # the most two taps of one coupler's outputs differ in path loss (a phase arm's)
+    look_max_step_volts: float = 10.0  # the largest step of a second look planned to turn a fringe far enough
 
 
 @dataclass
@@ -292,6 +297,8 @@ def judge_scan(
     # actuators
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
     seen_at: dict[str, str] = {}
+    mixer_checks: dict[str, str] = {}  # a phase judged at the coupler where it acts: that coupler's gate
+    look_angles: dict[str, float] = {}  # first pass: the turn a suspect's second look should take
     for aid, plan in plans.items():
         act = controller.actuators[aid]
         common = partial(
@@ -371,6 +378,62 @@ def judge_scan(
                 "monitor sees",
                 evidence,
             )
+        tapped = None
+        if verdict.verdict == "no_response" and topology is not None and second_look is not None:
+            halves, half_values, _ = half_look or ({}, {}, {})
+            # (value step, its standard error per monitor): the design's own step first, then the second looks
+            tapped_steps = [(plan.value_step, se[j])]
+            if aid in looks and big_value_step and aid in big_value_step:
+                tapped_steps.append((big_value_step[aid], LOOK_SPREAD * np.asarray(look_sigma)))
+            if aid in halves and aid in half_values:
+                tapped_steps.append((half_values[aid], LOOK_SPREAD * np.asarray(look_sigma)))
+            fringe = _tapped_fringe(
+                topology,
+                kappas,
+                plan,
+                [names[k] for k in candidates],
+                names,
+                rest_a,
+                float(dark_ref.mean()),
+                monitors,
+                trusted,
+                look_sigma,
+                settings,
+            )
+            if fringe is not None:
+                shown, found_evidence = _tapped_sigmas(fringe, plan, kappas, names, tapped_steps)
+                tapped = (shown, found_evidence, (fringe.upper, fringe.lower), fringe.effect)
+        elif doubted and topology is not None and second_look is None:
+            fringe = _tapped_fringe(
+                topology,
+                kappas,
+                plan,
+                [names[k] for k in candidates],
+                names,
+                rest_a,
+                float(dark_ref.mean()),
+                monitors,
+                trusted,
+                look_sigma,
+                settings,
+            )
+            if fringe is not None:
+                look_angles[aid] = _planned_look_angle(
+                    fringe, names, look_sigma, LOOK_MARGIN * DETECTABLE * settings.k_sigma
+                )
+        if tapped is not None:
+            evidence |= tapped[1]
+        if tapped is not None and tapped[0] >= DETECTABLE * settings.k_sigma:
+            upper, lower = tapped[2]
+            verdict = Verdict(
+                "no_response",
+                f"no look moved the light at {upper} and {lower}, the taps of both outputs of the coupler where it "
+                f"acts; from what they read, a working one would have shown at least {tapped[0]:.3g} sigma in one "
+                "look whatever the phase of the light it meets",
+                evidence,
+            )
+            if plan.attribute == "phase":
+                mixer_checks[aid] = tapped[3]
         elif (
             verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None
         ):
@@ -414,6 +477,16 @@ def judge_scan(
                     evidence,
                 )
         actuator_out[aid] = verdict
+    for aid, mixer in mixer_checks.items():
+        coupler = controller.gates[mixer].coupler if mixer in controller.gates else None
+        mixer_verdict = actuator_out.get(coupler or "")
+        if mixer_verdict is None or mixer_verdict.verdict in FAULTY or mixer_verdict.verdict == "untested":
+            actuator_out[aid] = Verdict(
+                "unobservable",
+                f"it showed nothing, but the coupler where it acts ({coupler}) is itself in doubt, so the ratio its "
+                "judgement rests on is not known",
+                actuator_out[aid].evidence,
+            )
     if topology is not None and blame:
         _blame_upstream(topology, settings_of, plans, actuator_out)
     return {
@@ -429,6 +502,7 @@ def judge_scan(
             "between_gates": {"bound": shares[False][0], "measured_from": shares[False][1]},
         },
         "monitor_looks": monitor_looks,
+        "look_angles": look_angles,
         "cones": {
             c.gate: sorted(c.monitors) for m, found in cones.items() for c in found if c.gate in monitor_looks[m]
         },
@@ -608,6 +682,115 @@ def _doubtful_monitor(
             evidence,
         )
     return Verdict(base.verdict, base.reason, evidence)
+
+
+MIXER_KAPPA_TOLERANCE = 0.03  # how far a healthy coupler's calibrated ratio may sit from its true one: common practice
+
+
+@dataclass(frozen=True)
+class TappedFringe:
+    """Where a coupler's fringe sits, read from the taps of both its outputs (see :func:`_tapped_fringe`)."""
+
+    offset_w: float  # the least |D| consistent with the readings, in the upper tap's power units
+    upper: str
+    lower: str
+    effect: str  # the gate of the coupler where the actuator acts
+    gains: tuple[float, float]  # amps per unit of upper-tap power at (upper, lower), the lower one at its least
+
+
+def _tapped_fringe(
+    topology: LatticeTopology,
+    kappas: dict[str, float | None],
+    plan: ActuatorPlan,
+    judged: list[str],
+    names: list[str],
+    rest_a: Any,
+    dark_a: float,
+    monitors: dict[str, Any],
+    trusted: set[str],
+    look_sigma: Any,
+    settings: ScanSettings,
+) -> TappedFringe | None:
+    """Where the fringe of the coupler where ``plan``'s actuator acts sits, when both of that coupler's outputs
+    reach a tap with no gate between (:func:`.scan_paths.tapped_outputs`); None where they do not, or a tap is not
+    fully trusted, or a ratio it needs is unknown.
+
+    A lossless coupler's top output is S/2 + R cos(theta - alpha) (the 2x2 coupler of coupled-mode theory, Yariv
+    1973, with light in both inputs), so half the taps' difference, D = (P_top - P_bottom)/2 = R cos(phi), says
+    where its fringe sits now; R sin(phi) is not known. A phase turns psi, the relative phase of the mixing
+    coupler's inputs, whose top output is S/2 + (A - B)/2 cos(theta) - sqrt(A B) sin(psi) sin(theta): its fringe
+    in psi sits at D - (A - B)/2 cos(theta), off D by at most S |cos(theta)| / 2 = S |1 - 2 kappa| / 2 (the
+    mixer's calibrated kappa, give or take ``MIXER_KAPPA_TOLERANCE``). The taps' path losses may differ by
+    ``path_loss_db_max``; readings are known to k sigma of one frame's noise (drift over the scan included)."""
+    if plan.gate is None:
+        return None
+    found = tapped_outputs(topology, kappas, plan.gate, plan.attribute)
+    if found is None:
+        return None
+    effect, upper, lower = found
+    if upper not in trusted or lower not in trusted or upper not in judged or lower not in judged:
+        return None
+    ku, kl = names.index(upper), names.index(lower)
+    resp_u, resp_l = monitors[upper].responsivity_a_per_w, monitors[lower].responsivity_a_per_w
+    # powers in the upper tap's units (its responsivity and path): the lower tap's path passes rho times as much
+    p_u = max(float(rest_a[:, ku].mean()) - dark_a, 0.0) / resp_u
+    p_l = max(float(rest_a[:, kl].mean()) - dark_a, 0.0) / resp_l
+    rho_lo, rho_hi = 10.0 ** (-settings.path_loss_db_max / 10.0), 10.0 ** (settings.path_loss_db_max / 10.0)
+    ends = [(p_u - p_l / rho_lo) / 2.0, (p_u - p_l / rho_hi) / 2.0]
+    offset = 0.0 if ends[0] * ends[1] <= 0.0 else min(abs(e) for e in ends)
+    k = settings.k_sigma
+    offset -= (k * float(look_sigma[ku]) / resp_u + k * float(look_sigma[kl]) / (resp_l * rho_lo)) / 2.0
+    if plan.attribute == "kappa":
+        if kappas.get(plan.gate) is None:
+            return None
+    else:
+        mixer = kappas.get(effect)
+        if mixer is None:
+            return None
+        offset -= (p_u + p_l / rho_lo) / 2.0 * min(abs(1.0 - 2.0 * mixer) + 2.0 * MIXER_KAPPA_TOLERANCE, 1.0)
+    return TappedFringe(max(offset, 0.0), upper, lower, effect, (resp_u, resp_l * rho_lo))
+
+
+def _tapped_angles(plan: ActuatorPlan, kappas: dict[str, float | None], values: list[float]) -> list[float]:
+    """Value steps of ``plan``'s actuator as turns of its fringe (rad): a phase's own; a coupler's coupled-mode
+    angle, kappa = sin^2(theta / 2), exactly (not to first order: second looks are large)."""
+    if plan.attribute != "kappa":
+        return list(values)
+    kappa0 = float(kappas.get(str(plan.gate)) or 0.0)
+    return [coupling_angle(kappa0 + value) - coupling_angle(kappa0) for value in values]
+
+
+def _tapped_sigmas(
+    fringe: TappedFringe,
+    plan: ActuatorPlan,
+    kappas: dict[str, float | None],
+    names: list[str],
+    steps: list[tuple[float, Any]],
+) -> tuple[float, dict[str, float]]:
+    """The least a working actuator must have shown (sigmas) in one of its looks (value step, sigma per monitor),
+    at the taps of ``fringe`` (:func:`.scan_attribution.offset_fringe_sigmas`), and the evidence."""
+    ku, kl = names.index(fringe.upper), names.index(fringe.lower)
+    angles = _tapped_angles(plan, kappas, [value for value, _ in steps])
+    looks = []
+    for angle, (_, sigma) in zip(angles, steps, strict=True):
+        seen = max(fringe.gains[0] / float(sigma[ku]), fringe.gains[1] / float(sigma[kl]))
+        looks.append((angle, 1.0 / seen))
+    shown = offset_fringe_sigmas(fringe.offset_w, looks)
+    return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(looks))}
+
+
+LOOK_MARGIN = 1.25  # a planned second look aims this far past what a no_response needs (its steps land on DAC codes)
+
+
+def _planned_look_angle(fringe: TappedFringe, names: list[str], look_sigma: Any, needed: float) -> float:
+    """The smallest turn (rad, from 0.3 to 1.5) whose second look - a half and a full step the same way - makes a
+    working actuator show ``needed`` sigma at ``fringe``'s taps; the largest where none does."""
+    ku, kl = names.index(fringe.upper), names.index(fringe.lower)
+    sigma = LOOK_SPREAD / max(fringe.gains[0] / float(look_sigma[ku]), fringe.gains[1] / float(look_sigma[kl]))
+    for angle in np.arange(0.3, 1.5001, 0.05):
+        if offset_fringe_sigmas(fringe.offset_w, [(angle / 2.0, sigma), (angle, sigma)]) >= needed:
+            return float(angle)
+    return 1.5
 
 
 DETECTABLE = 2.0  # a no_response needs a working actuator to show at least this many detection limits, anywhere

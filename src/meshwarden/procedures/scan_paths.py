@@ -379,3 +379,44 @@ def unmixed(topology: LatticeTopology, settings: Mapping[str, str], gate: str, a
                 lit[t], lit[t + 1] = lit[t + 1], lit[t]
                 mixed[t], mixed[t + 1] = mixed[t + 1], mixed[t]
     return not (mixed[top] or mixed[top + 1])
+
+
+def clean_tap(topology: LatticeTopology, after: int, mode: int) -> str | None:
+    """The first tap on ``mode`` from column ``after`` on that light reaches with no gate touching the mode on the way
+    (a tap after column ``after`` itself, or after a later column where no gate acts on that mode before it): it
+    reads the power that mode carries after column ``after``, less path losses, whatever the rest of the lattice
+    does. None where a gate comes first."""
+    for column in range(after, topology.columns):
+        if column > after and topology.gate_at(column, mode) is not None:
+            return None
+        taps = topology.taps_at(column, mode)
+        if taps:
+            return taps[0]
+    return None
+
+
+def tapped_outputs(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> tuple[str, str, str] | None:
+    """(gate, top tap, bottom tap) of the coupler where ``gate``'s ``attribute`` shows (its own coupler; for a
+    phase, the first later coupler where its arm meets light from another input) when both of that coupler's
+    outputs reach a tap with no gate between (:func:`clean_tap`); else None.
+
+    For a phase every coupler is taken as splitting whatever its calibrated ratio (a coupler near bar or cross
+    still leaks some light across), so the coupler found is the first where other light can meet its arm; its
+    input from the phase's side then carries only light the phase shifted. Where the light enters is the
+    lattice's input modes."""
+    if gate not in topology.gates:
+        return None
+    column, top = topology.gates[gate]
+    effect = gate
+    if attribute != "kappa":
+        found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
+        if found is None:
+            return None
+        column, top = found[0], found[1]
+        effect = topology.gate_at(column, top) or ""
+    upper, lower = clean_tap(topology, column, top), clean_tap(topology, column, top + 1)
+    if upper is None or lower is None or not effect:
+        return None
+    return effect, upper, lower

@@ -1,0 +1,129 @@
+"""Judging a silent actuator from the taps of the coupler where it acts: the fringe algebra and the tap paths,
+checked against an independent coherent field model (numpy)."""
+
+from __future__ import annotations
+
+import math
+
+import numpy as np
+import pytest
+
+from meshwarden.procedures.inputs import ProcedureInputError
+from meshwarden.procedures.scan_attribution import coupling_angle, offset_fringe_sigmas
+from meshwarden.procedures.scan_paths import clean_tap, tapped_outputs
+from tests.procedures.test_scan import _demo_topology, _tap_powers
+
+
+def _coupler(theta: float) -> np.ndarray:
+    """The lossless directional coupler of coupled-mode theory with kappa = sin^2(theta / 2) (Yariv, IEEE JQE 9:919,
+    1973): [[cos, i sin], [i sin, cos]] of half the angle."""
+    c, s = math.cos(theta / 2), math.sin(theta / 2)
+    return np.array([[c, 1j * s], [1j * s, c]])
+
+
+def _outputs(theta: float, a_w: float, b_w: float, psi: float) -> tuple[float, float]:
+    """Output powers of the coupler for coherent inputs of powers A, B and relative phase psi."""
+    out = _coupler(theta) @ np.array([math.sqrt(a_w), math.sqrt(b_w) * np.exp(1j * psi)])
+    return float(abs(out[0]) ** 2), float(abs(out[1]) ** 2)
+
+
+def test_coupling_angle_is_the_coupled_mode_angle() -> None:
+    """kappa = sin^2(C L) (Yariv 1973): the power a coupler of angle coupling_angle(kappa) sends across is kappa."""
+    for kappa in (0.0, 0.01, 0.3, 0.5, 0.85, 1.0):
+        # Source: Yariv 1973, the cross element of the coupler matrix carries sin^2 of the coupled-mode angle
+        assert abs(_coupler(coupling_angle(kappa))[1, 0]) ** 2 == pytest.approx(kappa, abs=1e-12)
+
+
+def test_coupler_fringe_has_the_two_beam_form() -> None:
+    """With light in both inputs the top output is (A+B)/2 + R cos(theta - alpha) with R^2 = ((A-B)/2)^2 + A B
+    sin^2(psi) (directional-coupler algebra recomputed here from the Yariv 1973 matrix): so half the outputs'
+    difference is where on that fringe the coupler sits."""
+    rng = np.random.default_rng(3)
+    for _ in range(200):
+        a_w, b_w, psi = rng.uniform(0, 1), rng.uniform(0, 1), rng.uniform(0, 2 * math.pi)
+        thetas = np.linspace(0, 2 * math.pi, 721)
+        tops = np.array([_outputs(t, a_w, b_w, psi)[0] for t in thetas])
+        radius = math.sqrt(((a_w - b_w) / 2) ** 2 + a_w * b_w * math.sin(psi) ** 2)
+        assert tops.max() == pytest.approx((a_w + b_w) / 2 + radius, abs=1e-5)
+        assert tops.min() == pytest.approx((a_w + b_w) / 2 - radius, abs=1e-5)
+
+
+@pytest.mark.parametrize("looks", [[(0.5, 1.0), (1.0, 1.0)], [(-0.15, 1.0), (-0.3, 2.0)], [(0.01, 0.1), (0.6, 1.0)]])
+def test_offset_fringe_bound_holds_and_is_reached_on_real_couplers(looks: list[tuple[float, float]]) -> None:
+    """Over real couplers (the Yariv 1973 matrix, numpy) at any angle and input light, a turn by each look's step
+    changes the top output by at least offset_fringe_sigmas(|D|) sigma in one look, D = half the outputs'
+    difference; and some coupler shows no more than that (the bound is tight)."""
+    bound = offset_fringe_sigmas(1.0, looks)
+    assert bound > 0.0
+    rng = np.random.default_rng(11)
+    ratios = []
+    for _ in range(3000):
+        a_w, b_w, psi = rng.uniform(0, 1), rng.uniform(0, 1), rng.uniform(0, 2 * math.pi)
+        theta = rng.uniform(0, 2 * math.pi)
+        top, bottom = _outputs(theta, a_w, b_w, psi)
+        offset = abs(top - bottom) / 2
+        shown = max(abs(_outputs(theta + step, a_w, b_w, psi)[0] - top) / sigma for step, sigma in looks)
+        assert shown >= offset * bound - 1e-9
+        if offset > 1e-3:
+            ratios.append(shown / offset)
+    # one input only: a dense sweep of the angle passes every point of the fringe, the least favourable one too
+    for theta in np.linspace(0, 2 * math.pi, 20001):
+        top, bottom = _outputs(theta, 1.0, 0.0, 0.0)
+        offset = abs(top - bottom) / 2
+        if offset > 1e-3:
+            ratios.append(max(abs(_outputs(theta + s, 1.0, 0.0, 0.0)[0] - top) / sg for s, sg in looks) / offset)
+    assert min(ratios) == pytest.approx(bound, rel=0.02)
+
+
+def test_one_look_or_none_guarantees_nothing() -> None:
+    """A single turn has a blind point at every offset (the fringe's change crosses zero), and no look shows
+    nothing; a sigma of zero is refused."""
+    assert offset_fringe_sigmas(1.0, [(0.3, 1.0)]) == pytest.approx(0.0, abs=1e-12)
+    assert offset_fringe_sigmas(1.0, []) == 0.0
+    with pytest.raises(ProcedureInputError, match="sigma"):
+        offset_fringe_sigmas(1.0, [(0.3, 0.0)])
+
+
+def test_tapped_outputs_read_the_coupler_outputs_in_a_field_model() -> None:
+    """Where tapped_outputs names a coupler and two taps, those taps read that coupler's two output powers whatever
+        the rest of the demo lattice does (coherent fields through unitary couplers, numpy, light entering its input
+    mode), so a move of the actuator
+        changes them by equal and opposite amounts; a gate's own phase never moves them."""
+    topology = _demo_topology()
+    rng = np.random.default_rng(17)
+    cases = [(g, a) for g in sorted(topology.gates) for a in ("kappa", "phase")]
+    named = seen = 0
+    for gate, attribute in cases:
+        kappas = {g: float(rng.uniform(0.1, 0.9)) for g in topology.gates}
+        found = tapped_outputs(topology, kappas, gate, attribute)
+        if found is None:
+            continue
+        named += 1
+        effect, upper, lower = found
+        phases = {g: float(rng.uniform(0, 2 * math.pi)) for g in topology.gates}
+        light = np.zeros(topology.modes, dtype=complex)
+        light[list(topology.input_modes)] = rng.normal(size=len(topology.input_modes)) + 1j
+        before = _tap_powers(topology, kappas, phases, light)
+        if attribute == "kappa":
+            moved = _tap_powers(topology, kappas | {gate: kappas[gate] + 0.05}, phases, light)
+        else:
+            moved = _tap_powers(topology, kappas, phases | {gate: phases[gate] + 0.3}, light)
+        own_phase = _tap_powers(topology, kappas, phases | {effect: phases[effect] + 0.7}, light)
+        assert moved[upper] - before[upper] == pytest.approx(-(moved[lower] - before[lower]), abs=1e-9)
+        if attribute == "kappa" and before[upper] + before[lower] > 1e-3:  # light enters it: its move shows
+            assert abs(moved[upper] - before[upper]) > 1e-6
+            seen += 1
+        # the taps hold all of the coupler's light: its own phase (after it) changes neither
+        assert own_phase[upper] == pytest.approx(before[upper], abs=1e-9)
+        assert own_phase[lower] == pytest.approx(before[lower], abs=1e-9)
+    assert named >= 20 and seen >= 5
+
+
+def test_clean_tap_stops_at_the_first_gate() -> None:
+    """A tap right after the column, or after later columns where no gate touches the mode, reads it; a gate first
+    means none (the demo layout: taps after columns 1, 3 and 7, mode 0 ungated in odd columns)."""
+    topology = _demo_topology()
+    assert clean_tap(topology, 1, 4) == "m04"
+    assert clean_tap(topology, 2, 0) == "m16"  # mode 0 passes column 3 untouched
+    assert clean_tap(topology, 2, 1) is None  # mode 1 meets gate g23 in column 3 first
+    assert clean_tap(topology, 4, 3) is None
