@@ -299,6 +299,7 @@ def judge_scan(
     seen_at: dict[str, str] = {}
     mixer_checks: dict[str, str] = {}  # a phase judged at the coupler where it acts: that coupler's gate
     look_angles: dict[str, float] = {}  # first pass: the turn a suspect's second look should take
+    self_judged: set[str] = set()  # judged from what its own coupler's taps read: light changed upstream is measured
     for aid, plan in plans.items():
         act = controller.actuators[aid]
         common = partial(
@@ -434,6 +435,7 @@ def judge_scan(
             )
             if plan.attribute == "phase":
                 mixer_checks[aid] = tapped[3]
+            self_judged.add(aid)
         elif (
             verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None
         ):
@@ -488,7 +490,7 @@ def judge_scan(
                 actuator_out[aid].evidence,
             )
     if topology is not None and blame:
-        _blame_upstream(topology, settings_of, plans, actuator_out)
+        _blame_upstream(topology, settings_of, plans, actuator_out, self_judged)
     return {
         "actuators": {
             a: v.as_dict() | ({"monitor": seen_at[a]} if a in seen_at else {}) for a, v in sorted(actuator_out.items())
@@ -779,7 +781,7 @@ def _tapped_sigmas(
     return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(looks))}
 
 
-LOOK_MARGIN = 1.25  # a planned second look aims this far past what a no_response needs (its steps land on DAC codes)
+LOOK_MARGIN = 1.6  # a planned second look aims this far past what a no_response needs (its steps land on DAC codes)
 
 
 def _planned_look_angle(fringe: TappedFringe, names: list[str], look_sigma: Any, needed: float) -> float:
@@ -861,13 +863,18 @@ def _dark(samples: Any, full_scale_a: float, noise_a: float, settings: ScanSetti
 
 
 def _blame_upstream(
-    topology: LatticeTopology, settings_of: dict[str, str], plans: dict[str, ActuatorPlan], verdicts: dict[str, Verdict]
+    topology: LatticeTopology,
+    settings_of: dict[str, str],
+    plans: dict[str, ActuatorPlan],
+    verdicts: dict[str, Verdict],
+    self_judged: set[str],
 ) -> None:
-    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed."""
+    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed.
+    Those in ``self_judged`` are exempt: what their judgement rests on was read where they act, faults or not."""
     faulty = [a for a, v in verdicts.items() if v.verdict in FAULTY and a in plans]
     for aid, verdict in list(verdicts.items()):
         plan = plans.get(aid)
-        if plan is None or plan.gate is None or verdict.verdict != "no_response":
+        if plan is None or plan.gate is None or verdict.verdict != "no_response" or aid in self_judged:
             continue
         culprits = [
             f

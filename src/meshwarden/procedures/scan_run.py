@@ -356,7 +356,18 @@ def _middle_volts(controller: Controller, plan: ActuatorPlan, big_volts: float, 
                 pass
             else:
                 return volts
-    return _volts(controller, plan.actuator, _code(controller, plan.actuator, (big_volts + plan.volts0) / 2))
+    # half the big step's change of value (not of volts: the value goes about as V^2), found by bisection
+    try:
+        value0 = act.map.value_at(plan.volts0)
+        half = (act.map.value_at(big_volts) - value0) / 2.0
+        low, high = (plan.volts0, big_volts) if big_volts > plan.volts0 else (big_volts, plan.volts0)
+        for _ in range(40):  # the value rises with the volts: below the half-way value, the middle moves up
+            middle = (low + high) / 2.0
+            low, high = (middle, high) if act.map.value_at(middle) - value0 < half else (low, middle)
+        target = (low + high) / 2.0
+    except MeshwardenError:
+        target = (big_volts + plan.volts0) / 2.0
+    return _volts(controller, plan.actuator, _code(controller, plan.actuator, target))
 
 
 def _where_outputs_went(handed_over: bool, restored: bool, reason: str | None) -> str:
@@ -394,16 +405,26 @@ def _big_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings
                 wanted = abs(kappa0 - math.sin(lower / 2.0) ** 2) if theta - angle >= 0.0 else 0.0
                 if wanted == 0.0:
                     wanted = abs(math.sin(min(theta + angle, math.pi) / 2.0) ** 2 - kappa0)
-        planned = dataclasses.replace(
-            settings,
-            kappa_step=max(wanted, bigger.kappa_step),
-            phase_step_rad=max(wanted, bigger.phase_step_rad),
-            max_step_volts=max(settings.look_max_step_volts, settings.max_step_volts),
-        )
-        trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
-        _choose_step(controller, trial, planned)
-        if trial.step_volts != 0.0 and not trial.reason:
-            return trial.step_volts
+        aim = max(wanted, bigger.kappa_step if plan.attribute == "kappa" else bigger.phase_step_rad)
+        best = 0.0
+        for _ in range(4):  # the step is sized from the slope at the operating point: correct it by what it did
+            planned = dataclasses.replace(
+                settings,
+                kappa_step=aim,
+                phase_step_rad=aim,
+                max_step_volts=max(settings.look_max_step_volts, settings.max_step_volts),
+            )
+            trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
+            _choose_step(controller, trial, planned)
+            if trial.step_volts == 0.0 or trial.reason:
+                break
+            best = trial.step_volts
+            done = abs(trial.value_step)
+            if done >= 0.95 * wanted or done <= 0.0:
+                break
+            aim *= min(wanted / done, 4.0)
+        if best != 0.0:
+            return best
     trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
     _choose_step(controller, trial, bigger)
     return trial.step_volts
