@@ -34,6 +34,7 @@ from meshwarden.procedures.scan_paths import (
     conservation_cone,
     expected_effect,
     incoherent_powers,
+    input_readings,
     lit_monitors,
     swing_taps,
     tapped_outputs,
@@ -404,6 +405,48 @@ def judge_scan(
             if fringe is not None:
                 shown, found_evidence = _tapped_sigmas(fringe, plan, kappas, names, tapped_steps)
                 tapped = (shown, found_evidence, (fringe.upper, fringe.lower), fringe.effect)
+            if tapped is None or tapped[0] < DETECTABLE * settings.k_sigma:
+                zero = np.zeros(len(names))
+                look_data = LookData([plan.value_step], [responses[j]], [se[j]], [borrowed[j] * abs(dv2[j])])
+                if aid in looks and big_value_step and aid in big_value_step:
+                    look_data.values.append(big_value_step[aid])
+                    look_data.changes.append(np.array([looks[aid].get(m, 0.0) for m in names]))
+                    look_data.sigmas.append(LOOK_SPREAD * np.asarray(look_sigma))
+                    look_data.crosstalk.append(borrowed[j] * abs((big_dv2 or {}).get(aid, 0.0)))
+                if aid in halves and aid in half_values:
+                    look_data.values.append(half_values[aid])
+                    look_data.changes.append(np.array([halves[aid].get(m, 0.0) for m in names]))
+                    look_data.sigmas.append(LOOK_SPREAD * np.asarray(look_sigma))
+                    look_data.crosstalk.append(borrowed[j] * abs((half_look or ({}, {}, {}))[2].get(aid, 0.0)) + zero)
+                around = _around_sigmas(
+                    topology,
+                    kappas,
+                    plan,
+                    [names[k] for k in candidates],
+                    names,
+                    rest_a,
+                    float(dark_ref.mean()),
+                    monitors,
+                    trusted,
+                    look_sigma,
+                    look_data,
+                    settings,
+                )
+                if around is not None:
+                    evidence |= around[1]
+                    if around[0] >= DETECTABLE * settings.k_sigma:
+                        verdict = Verdict(
+                            "no_response",
+                            f"no look moved the readings of the coupler where it acts ({around[2]}: inputs, then "
+                            f"outputs); from the light its inputs bring, a working one would have shown at least "
+                            f"{around[0]:.3g} sigma in one look at any operating point",
+                            evidence,
+                        )
+                        if plan.attribute == "phase":
+                            mixer_checks[aid] = around[3]
+                        self_judged.add(aid)
+                        actuator_out[aid] = verdict
+                        continue
         elif doubted and topology is not None and second_look is None:
             fringe = _tapped_fringe(
                 topology,
@@ -422,6 +465,30 @@ def judge_scan(
                 look_angles[aid] = _planned_look_angle(
                     fringe, names, look_sigma, LOOK_MARGIN * DETECTABLE * settings.k_sigma
                 )
+            else:
+                zero = np.zeros(len(names))
+                wide = LOOK_SPREAD * np.asarray(look_sigma)
+                for angle in np.arange(0.3, 1.5001, 0.05):
+                    values = [_value_for_angle(plan, kappas, a) for a in (angle / 2.0, angle)]
+                    trial = _around_sigmas(
+                        topology,
+                        kappas,
+                        plan,
+                        [names[k] for k in candidates],
+                        names,
+                        rest_a,
+                        float(dark_ref.mean()),
+                        monitors,
+                        trusted,
+                        look_sigma,
+                        LookData(values, [zero, zero], [wide, wide], [zero, zero]),
+                        settings,
+                    )
+                    if trial is None:
+                        break
+                    look_angles[aid] = float(angle)
+                    if trial[0] >= LOOK_MARGIN * DETECTABLE * settings.k_sigma:
+                        break
         if tapped is not None:
             evidence |= tapped[1]
         if tapped is not None and tapped[0] >= DETECTABLE * settings.k_sigma:
@@ -762,6 +829,16 @@ def _tapped_angles(plan: ActuatorPlan, kappas: dict[str, float | None], values: 
     return [coupling_angle(kappa0 + value) - coupling_angle(kappa0) for value in values]
 
 
+def _value_for_angle(plan: ActuatorPlan, kappas: dict[str, float | None], angle: float) -> float:
+    """The value step that turns ``plan``'s fringe by ``angle`` down toward 0 V (up where a coupler has no room)."""
+    if plan.attribute != "kappa":
+        return -angle
+    kappa0 = float(kappas.get(str(plan.gate)) or 0.0)
+    theta = coupling_angle(kappa0)
+    target = theta - angle if theta >= angle else min(theta + angle, math.pi)
+    return math.sin(target / 2.0) ** 2 - kappa0
+
+
 def _tapped_sigmas(
     fringe: TappedFringe,
     plan: ActuatorPlan,
@@ -779,6 +856,89 @@ def _tapped_sigmas(
         looks.append((angle, 1.0 / seen))
     shown = offset_fringe_sigmas(fringe.offset_w, looks)
     return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(looks))}
+
+
+@dataclass(frozen=True)
+class LookData:
+    """One suspect's looks for a judgement: value steps, and per look the change at each monitor (amps), its sigma
+    per monitor and the most its neighbours' crosstalk could move each monitor."""
+
+    values: list[float]
+    changes: list[Any]
+    sigmas: list[Any]
+    crosstalk: list[Any]
+
+
+def _around_sigmas(
+    topology: LatticeTopology,
+    kappas: dict[str, float | None],
+    plan: ActuatorPlan,
+    judged: list[str],
+    names: list[str],
+    rest_a: Any,
+    dark_a: float,
+    monitors: dict[str, Any],
+    trusted: set[str],
+    look_sigma: Any,
+    looks: LookData,
+    settings: ScanSettings,
+) -> tuple[float, dict[str, float], str, str] | None:
+    """The least a working actuator must have shown (sigmas) at the readings of its coupler's outputs, from the
+    light its coupler's two inputs bring (read by taps, :func:`.scan_paths.input_readings`); None where that is not
+    read, or a reading is not fully trusted, or an output reading moved (then this says nothing).
+
+    With inputs A and B the coupler's fringe has R >= |A - B| / 2 whatever their phase (R^2 = ((A - B)/2)^2 + A B
+    sin^2(psi), coupled-mode algebra, Yariv 1973); a phase turning psi at a coupler of angle theta moves its output
+    by sqrt(A B) sin(theta) times a sine of psi. Each output's reading changes by what the output gains or loses
+    (a lossless gate keeps the sum of its outputs, its other input unchanged), less each gate's and path's loss
+    (``path_loss_db_max`` per gate) and what neighbours' crosstalk could add; the least over every operating
+    angle of the clearest look is :func:`.scan_attribution.least_sigmas`."""
+    if plan.gate is None:
+        return None
+    found = input_readings(topology, kappas, plan.gate, plan.attribute)
+    if found is None:
+        return None
+    outputs = [reading.taps for reading in found.outputs]
+    every = list(found.inputs) + [t for taps in outputs for t in taps]
+    if any(t not in trusted for t in every) or any(t not in judged for taps in outputs for t in taps):
+        return None
+    k = settings.k_sigma
+    loss = 10.0 ** (-settings.path_loss_db_max / 10.0)
+    lows = []
+    for tap in found.inputs:
+        i = names.index(tap)
+        resp = monitors[tap].responsivity_a_per_w
+        reading = (float(rest_a[:, i].mean()) - dark_a) / resp
+        lows.append(
+            (max(reading - k * float(look_sigma[i]) / resp, 0.0) * loss, reading + k * float(look_sigma[i]) / resp)
+        )
+    (a_lo, a_hi), (b_lo, b_hi) = lows
+    if plan.attribute == "kappa":
+        if kappas.get(plan.gate) is None:
+            return None
+        amplitude = max(a_lo - b_hi, b_lo - a_hi, 0.0) / 2.0
+    else:
+        mixer = kappas.get(found.effect)
+        if mixer is None:
+            return None
+        worst = min(max(abs(mixer - 0.5) + MIXER_KAPPA_TOLERANCE, 0.0), 0.5) + 0.5
+        amplitude = math.sqrt(a_lo * b_lo) * 2.0 * math.sqrt(worst * (1.0 - worst))
+    angles = _tapped_angles(plan, kappas, looks.values)
+    entries = []
+    for reading, taps in zip(found.outputs, outputs, strict=True):
+        scale = amplitude * 10.0 ** (-(1 + reading.gates_passed) * settings.path_loss_db_max / 10.0)
+        index = [names.index(t) for t in taps]
+        resp = [monitors[t].responsivity_a_per_w for t in taps]
+        for angle, change, sigma, crosstalk in zip(angles, looks.changes, looks.sigmas, looks.crosstalk, strict=True):
+            seen = sum(float(change[i]) / r for i, r in zip(index, resp, strict=True))
+            noise = sum(float(sigma[i]) / r for i, r in zip(index, resp, strict=True))
+            other = sum(float(crosstalk[i]) / r for i, r in zip(index, resp, strict=True))
+            if abs(seen) >= k * noise:
+                return None  # it moved this reading: not silent here
+            entries.append((angle, other / scale if scale > 0 else math.inf, noise / scale if scale > 0 else 1.0))
+    shown = 0.0 if amplitude <= 0.0 or not entries else least_sigmas(1.0, entries)
+    taps_text = ", ".join(every)
+    return shown, {"input_amplitude_w": amplitude, "input_bound_sigmas": shown}, taps_text, found.effect
 
 
 LOOK_MARGIN = 1.6  # a planned second look aims this far past what a no_response needs (its steps land on DAC codes)

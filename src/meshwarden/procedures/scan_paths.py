@@ -420,3 +420,80 @@ def tapped_outputs(
     if upper is None or lower is None or not effect:
         return None
     return effect, upper, lower
+
+
+def input_tap(topology: LatticeTopology, column: int, mode: int) -> str | None:
+    """The tap that reads the light ``mode`` brings into column ``column``: the last tap on that mode before the
+    column with no gate touching the mode between (it reads that light, less path losses). None where a gate comes
+    between, or no tap reads it."""
+    for after in range(column - 1, -2, -1):
+        taps = topology.taps_at(after, mode)
+        if taps:
+            return taps[0]
+        if after >= 0 and topology.gate_at(after, mode) is not None:
+            return None
+    return None
+
+
+@dataclass(frozen=True)
+class OutputReading:
+    """How one output of a coupler is read: the taps whose readings add up to its power plus light that does not
+    change with the coupler (one tap with no gate between; or both taps of the next gate it enters, whose other
+    input comes from elsewhere, a lossless gate keeping the sum of its outputs), and the gates passed on the way."""
+
+    taps: tuple[str, ...]
+    gates_passed: int
+
+
+def output_reading(topology: LatticeTopology, column: int, mode: int) -> OutputReading | None:
+    """How the power on ``mode`` after column ``column`` is read (:class:`OutputReading`), or None."""
+    direct = clean_tap(topology, column, mode)
+    if direct is not None:
+        return OutputReading((direct,), 0)
+    for later in range(column + 1, topology.columns):
+        gate = topology.gate_at(later, mode)
+        if gate is None:
+            continue
+        top = topology.gates[gate][1]
+        upper, lower = clean_tap(topology, later, top), clean_tap(topology, later, top + 1)
+        if upper is None or lower is None:
+            return None
+        return OutputReading((upper, lower), 1)
+    return None
+
+
+@dataclass(frozen=True)
+class InputReadings:
+    """Where an actuator acts, read around its coupler: the taps reading the light of its two inputs (upper,
+    lower) and the readings of its two outputs."""
+
+    effect: str
+    inputs: tuple[str, str]
+    outputs: tuple[OutputReading, OutputReading]
+
+
+def input_readings(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> InputReadings | None:
+    """The coupler where ``gate``'s ``attribute`` shows (as :func:`tapped_outputs`), when taps read the light of both
+    its inputs (:func:`input_tap`) and both its outputs are read (:func:`output_reading`); else None. For a phase
+    the input on its own side must carry only light it shifted (its arm reaches the coupler with no gate between)."""
+    if gate not in topology.gates:
+        return None
+    column, top = topology.gates[gate]
+    effect = gate
+    if attribute != "kappa":
+        found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
+        if found is None or found[2] != {top}:
+            return None
+        column, top = found[0], found[1]
+        effect = topology.gate_at(column, top) or ""
+        if not effect:
+            return None
+    upper_in, lower_in = input_tap(topology, column, top), input_tap(topology, column, top + 1)
+    upper_out, lower_out = output_reading(topology, column, top), output_reading(topology, column, top + 1)
+    if upper_in is None or lower_in is None or upper_out is None or lower_out is None:
+        return None
+    if set(upper_out.taps) & set(lower_out.taps):  # both outputs enter one gate: its sum would not change
+        return None
+    return InputReadings(effect, (upper_in, lower_in), (upper_out, lower_out))
