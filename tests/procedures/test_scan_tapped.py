@@ -3,15 +3,21 @@ checked against an independent coherent field model (numpy)."""
 
 from __future__ import annotations
 
+import asyncio
 import math
+from pathlib import Path
+from typing import Any
 
 import numpy as np
 import pytest
 
+from meshsim.faults import Fault
 from meshwarden.procedures.inputs import ProcedureInputError
+from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.scan_attribution import coupling_angle, offset_fringe_sigmas
-from meshwarden.procedures.scan_paths import clean_tap, tapped_outputs
-from tests.procedures.test_scan import _demo_topology, _tap_powers
+from meshwarden.procedures.scan_paths import clean_tap, input_readings, tapped_outputs
+from tests.procedures.scan_bench import bench_topology
+from tests.procedures.test_scan import _custom, _demo_topology, _tap_powers
 
 
 def _coupler(theta: float) -> np.ndarray:
@@ -127,3 +133,89 @@ def test_clean_tap_stops_at_the_first_gate() -> None:
     assert clean_tap(topology, 2, 0) == "m16"  # mode 0 passes column 3 untouched
     assert clean_tap(topology, 2, 1) is None  # mode 1 meets gate g23 in column 3 first
     assert clean_tap(topology, 4, 3) is None
+
+
+def test_phase_fringe_at_its_mixing_coupler_has_amplitude_sqrt_ab_sin_theta() -> None:
+    """A phase turning psi at a coupler of ratio kappa moves its top output by sqrt(A B) sin(theta) times a sine of
+    psi, sin(theta) = 2 sqrt(kappa (1 - kappa)) (recomputed here from the Yariv 1973 matrix by sweeping psi)."""
+    rng = np.random.default_rng(23)
+    for _ in range(100):
+        a_w, b_w, kappa = rng.uniform(0, 1), rng.uniform(0, 1), rng.uniform(0.05, 0.95)
+        theta = coupling_angle(kappa)
+        tops = [_outputs(theta, a_w, b_w, psi)[0] for psi in np.linspace(0, 2 * math.pi, 721)]
+        half_swing = (max(tops) - min(tops)) / 2
+        assert half_swing == pytest.approx(math.sqrt(a_w * b_w) * 2 * math.sqrt(kappa * (1 - kappa)), abs=1e-5)
+
+
+def _mode_powers_after(
+    topology: LatticeTopology, kappas: dict[str, float], phases: dict[str, float], light: Any, after: int
+) -> Any:
+    """Power in every mode after column ``after`` (coherent fields through the Yariv 1973 coupler, then the gate's
+    phase on its top arm; numpy)."""
+    field = np.array(light, dtype=complex)
+    for column in range(after + 1):
+        for gate, (col, top) in topology.gates.items():
+            if col == column:
+                k = kappas[gate]
+                matrix = np.array([[math.sqrt(1 - k), 1j * math.sqrt(k)], [1j * math.sqrt(k), math.sqrt(1 - k)]])
+                field[top : top + 2] = matrix @ field[top : top + 2]
+                field[top] *= np.exp(1j * phases[gate])
+    return np.abs(field) ** 2
+
+
+def test_input_readings_read_a_couplers_inputs_and_outputs_in_a_field_model() -> None:
+    """Where input_readings names a coupler, its input taps read the light entering it, and each output reading's
+    taps change by exactly what that output gains or loses when the actuator moves (coherent fields through the
+    demo lattice, numpy, light entering its input mode; a lossless gate keeps the sum of its outputs)."""
+    topology = _demo_topology()
+    rng = np.random.default_rng(29)
+    named = 0
+    for gate, attribute in [(g, a) for g in sorted(topology.gates) for a in ("kappa", "phase")]:
+        kappas = {g: float(rng.uniform(0.1, 0.9)) for g in topology.gates}
+        found = input_readings(topology, kappas, gate, attribute)
+        if found is None:
+            continue
+        named += 1
+        phases = {g: float(rng.uniform(0, 2 * math.pi)) for g in topology.gates}
+        light = np.zeros(topology.modes, dtype=complex)
+        light[list(topology.input_modes)] = 1.0
+        column, top = topology.gates[found.effect]
+        before = _tap_powers(topology, kappas, phases, light)
+        entering = _mode_powers_after(topology, kappas, phases, light, column - 1)
+        assert before[found.inputs[0]] == pytest.approx(entering[top], abs=1e-12)
+        assert before[found.inputs[1]] == pytest.approx(entering[top + 1], abs=1e-12)
+        if attribute == "kappa":
+            moved_k, moved_p = kappas | {gate: kappas[gate] + 0.05}, phases
+        else:
+            moved_k, moved_p = kappas, phases | {gate: phases[gate] + 0.4}
+        after = _tap_powers(topology, moved_k, moved_p, light)
+        out_before = _mode_powers_after(topology, kappas, phases, light, column)
+        out_after = _mode_powers_after(topology, moved_k, moved_p, light, column)
+        for mode, reading in zip((top, top + 1), found.outputs, strict=True):
+            change = sum(after[t] - before[t] for t in reading.taps)
+            assert change == pytest.approx(out_after[mode] - out_before[mode], abs=1e-12)
+    assert named >= 5
+
+
+def test_output_reading_is_refused_when_both_outputs_enter_one_gate() -> None:
+    """Two gates in a row on the same modes: the second's outputs hold all of the first's light, so their sum never
+    changes and cannot read it; no reading is offered."""
+    topology = LatticeTopology(
+        2, {"g0": (0, 0), "g1": (1, 0)}, {"m0": (-1, 0), "m1": (-1, 1), "t0": (1, 0), "t1": (1, 1)}, (0, 1)
+    )
+    assert input_readings(topology, {"g0": 0.5, "g1": 0.5}, "g0", "kappa") is None
+
+
+def test_a_stuck_coupler_with_tapped_outputs_is_found_from_its_taps(tmp_path: Path) -> None:
+    """On the bench, a stuck recombining coupler (both outputs tapped) is no_response on the evidence of its own
+    taps - a working one would have shown at least twice k sigma in one look - within rules 1-3; the same coupler
+    working is ok."""
+    report, issues = asyncio.run(_custom(tmp_path / "stuck", [Fault("stuck", "b1c")], topology=bench_topology()))
+    assert issues == []
+    verdict = report["actuators"]["b1c"]
+    assert verdict["verdict"] == "no_response", verdict
+    assert "the taps of both outputs" in verdict["reason"]
+    assert verdict["evidence"]["tapped_sigmas"] >= 10.0
+    healthy, issues = asyncio.run(_custom(tmp_path / "healthy", [], topology=bench_topology()))
+    assert issues == []
+    assert healthy["actuators"]["b1c"]["verdict"] == "ok"
