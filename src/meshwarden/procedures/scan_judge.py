@@ -300,6 +300,7 @@ def judge_scan(
     seen_at: dict[str, str] = {}
     mixer_checks: dict[str, str] = {}  # a phase judged at the coupler where it acts: that coupler's gate
     look_angles: dict[str, float] = {}  # first pass: the turn a suspect's second look should take
+    fallback: dict[str, Verdict] = {}
     self_judged: set[str] = set()  # judged from what its own coupler's taps read: light changed upstream is measured
     for aid, plan in plans.items():
         act = controller.actuators[aid]
@@ -381,6 +382,8 @@ def judge_scan(
                 evidence,
             )
         tapped = None
+        upgrade: Verdict | None = None  # no_response on the evidence of the readings where it acts
+        upgrade_effect = ""
         if verdict.verdict == "no_response" and topology is not None and second_look is not None:
             halves, half_values, _ = half_look or ({}, {}, {})
             # (value step, its standard error per monitor): the design's own step first, then the second looks
@@ -435,18 +438,14 @@ def judge_scan(
                 if around is not None:
                     evidence |= around[1]
                     if around[0] >= DETECTABLE * settings.k_sigma:
-                        verdict = Verdict(
+                        upgrade = Verdict(
                             "no_response",
                             f"no look moved the readings of the coupler where it acts ({around[2]}: inputs, then "
                             f"outputs); from the light its inputs bring, a working one would have shown at least "
                             f"{around[0]:.3g} sigma in one look at any operating point",
                             evidence,
                         )
-                        if plan.attribute == "phase":
-                            mixer_checks[aid] = around[3]
-                        self_judged.add(aid)
-                        actuator_out[aid] = verdict
-                        continue
+                        upgrade_effect = around[3]
         elif doubted and topology is not None and second_look is None:
             fringe = _tapped_fringe(
                 topology,
@@ -493,19 +492,15 @@ def judge_scan(
             evidence |= tapped[1]
         if tapped is not None and tapped[0] >= DETECTABLE * settings.k_sigma:
             upper, lower = tapped[2]
-            verdict = Verdict(
+            upgrade = Verdict(
                 "no_response",
                 f"no look moved the light at {upper} and {lower}, the taps of both outputs of the coupler where it "
                 f"acts; from what they read, a working one would have shown at least {tapped[0]:.3g} sigma in one "
                 "look whatever the phase of the light it meets",
                 evidence,
             )
-            if plan.attribute == "phase":
-                mixer_checks[aid] = tapped[3]
-            self_judged.add(aid)
-        elif (
-            verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None
-        ):
+            upgrade_effect = tapped[3]
+        if verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None:
             # would a working actuator have shown? Its first look showed nothing, so if it works its operating point
             # sits at an extremum, where only the second look's second-order change shows (generous estimate)
             effect = expected_effect(topology, kappas, str(plan.gate), plan.attribute)
@@ -545,17 +540,21 @@ def judge_scan(
                     "in its two looks: too little light meets it to tell",
                     evidence,
                 )
+        if upgrade is not None:
+            fallback[aid] = verdict  # what it is if the coupler the judgement rests on proves faulty
+            verdict = upgrade
+            self_judged.add(aid)
+            if plan.attribute == "phase":
+                mixer_checks[aid] = upgrade_effect
         actuator_out[aid] = verdict
     for aid, mixer in mixer_checks.items():
         coupler = controller.gates[mixer].coupler if mixer in controller.gates else None
         mixer_verdict = actuator_out.get(coupler or "")
         if mixer_verdict is None or mixer_verdict.verdict in FAULTY or mixer_verdict.verdict == "untested":
-            actuator_out[aid] = Verdict(
-                "unobservable",
-                f"it showed nothing, but the coupler where it acts ({coupler}) is itself in doubt, so the ratio its "
-                "judgement rests on is not known",
-                actuator_out[aid].evidence,
-            )
+            # the coupler where it acts is in doubt, so the ratio the judgement rests on is not known: the
+            # judgement falls back to what the other rules said
+            actuator_out[aid] = fallback[aid]
+            self_judged.discard(aid)
     if topology is not None and blame:
         _blame_upstream(topology, settings_of, plans, actuator_out, self_judged)
     return {
