@@ -6,7 +6,6 @@ from __future__ import annotations
 import asyncio
 import math
 from pathlib import Path
-from typing import Any
 
 import numpy as np
 import pytest
@@ -17,7 +16,7 @@ from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.scan_attribution import coupling_angle, offset_fringe_sigmas
 from meshwarden.procedures.scan_paths import clean_tap, input_readings, tapped_outputs
 from tests.procedures.scan_bench import bench_topology
-from tests.procedures.test_scan import _custom, _demo_topology, _tap_powers
+from tests.procedures.test_scan import _custom, _demo_topology, _mode_powers, _tap_powers
 
 
 def _coupler(theta: float) -> np.ndarray:
@@ -147,22 +146,6 @@ def test_phase_fringe_at_its_mixing_coupler_has_amplitude_sqrt_ab_sin_theta() ->
         assert half_swing == pytest.approx(math.sqrt(a_w * b_w) * 2 * math.sqrt(kappa * (1 - kappa)), abs=1e-5)
 
 
-def _mode_powers_after(
-    topology: LatticeTopology, kappas: dict[str, float], phases: dict[str, float], light: Any, after: int
-) -> Any:
-    """Power in every mode after column ``after`` (coherent fields through the Yariv 1973 coupler, then the gate's
-    phase on its top arm; numpy)."""
-    field = np.array(light, dtype=complex)
-    for column in range(after + 1):
-        for gate, (col, top) in topology.gates.items():
-            if col == column:
-                k = kappas[gate]
-                matrix = np.array([[math.sqrt(1 - k), 1j * math.sqrt(k)], [1j * math.sqrt(k), math.sqrt(1 - k)]])
-                field[top : top + 2] = matrix @ field[top : top + 2]
-                field[top] *= np.exp(1j * phases[gate])
-    return np.abs(field) ** 2
-
-
 def test_input_readings_read_a_couplers_inputs_and_outputs_in_a_field_model() -> None:
     """Where input_readings names a coupler, its input taps read the light entering it, and each output reading's
     taps change by exactly what that output gains or loses when the actuator moves (coherent fields through the
@@ -181,7 +164,7 @@ def test_input_readings_read_a_couplers_inputs_and_outputs_in_a_field_model() ->
         light[list(topology.input_modes)] = 1.0
         column, top = topology.gates[found.effect]
         before = _tap_powers(topology, kappas, phases, light)
-        entering = _mode_powers_after(topology, kappas, phases, light, column - 1)
+        entering = _mode_powers(topology, kappas, phases, column)
         assert before[found.inputs[0]] == pytest.approx(entering[top], abs=1e-12)
         assert before[found.inputs[1]] == pytest.approx(entering[top + 1], abs=1e-12)
         if attribute == "kappa":
@@ -189,8 +172,8 @@ def test_input_readings_read_a_couplers_inputs_and_outputs_in_a_field_model() ->
         else:
             moved_k, moved_p = kappas, phases | {gate: phases[gate] + 0.4}
         after = _tap_powers(topology, moved_k, moved_p, light)
-        out_before = _mode_powers_after(topology, kappas, phases, light, column)
-        out_after = _mode_powers_after(topology, moved_k, moved_p, light, column)
+        out_before = _mode_powers(topology, kappas, phases, column + 1)
+        out_after = _mode_powers(topology, moved_k, moved_p, column + 1)
         for mode, reading in zip((top, top + 1), found.outputs, strict=True):
             change = sum(after[t] - before[t] for t in reading.taps)
             assert change == pytest.approx(out_after[mode] - out_before[mode], abs=1e-12)

@@ -296,6 +296,11 @@ def judge_scan(
     trusted = {m for m, v in monitor_out.items() if v.verdict == "ok" and not v.reason}  # judged, and fully
 
     # actuators
+    around_us = (
+        Around(topology, kappas, names, monitors, trusted, rest_a, float(dark_ref.mean()), look_sigma, settings)
+        if topology is not None
+        else None
+    )
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
     seen_at: dict[str, str] = {}
     mixer_checks: dict[str, str] = {}  # a phase judged at the coupler where it acts: that coupler's gate
@@ -384,7 +389,7 @@ def judge_scan(
         tapped = None
         upgrade: Verdict | None = None  # no_response on the evidence of the readings where it acts
         upgrade_effect = ""
-        if verdict.verdict == "no_response" and topology is not None and second_look is not None:
+        if verdict.verdict == "no_response" and around_us is not None and second_look is not None:
             halves, half_values, _ = half_look or ({}, {}, {})
             # (value step, its standard error per monitor): the design's own step first, then the second looks
             tapped_steps = [(plan.value_step, se[j])]
@@ -392,19 +397,7 @@ def judge_scan(
                 tapped_steps.append((big_value_step[aid], LOOK_SPREAD * np.asarray(look_sigma)))
             if aid in halves and aid in half_values:
                 tapped_steps.append((half_values[aid], LOOK_SPREAD * np.asarray(look_sigma)))
-            fringe = _tapped_fringe(
-                topology,
-                kappas,
-                plan,
-                [names[k] for k in candidates],
-                names,
-                rest_a,
-                float(dark_ref.mean()),
-                monitors,
-                trusted,
-                look_sigma,
-                settings,
-            )
+            fringe = _tapped_fringe(around_us, plan, [names[k] for k in candidates])
             if fringe is not None:
                 shown, found_evidence = _tapped_sigmas(fringe, plan, kappas, names, tapped_steps)
                 tapped = (shown, found_evidence, (fringe.upper, fringe.lower), fringe.effect)
@@ -421,20 +414,7 @@ def judge_scan(
                     look_data.changes.append(np.array([halves[aid].get(m, 0.0) for m in names]))
                     look_data.sigmas.append(LOOK_SPREAD * np.asarray(look_sigma))
                     look_data.crosstalk.append(borrowed[j] * abs((half_look or ({}, {}, {}))[2].get(aid, 0.0)) + zero)
-                around = _around_sigmas(
-                    topology,
-                    kappas,
-                    plan,
-                    [names[k] for k in candidates],
-                    names,
-                    rest_a,
-                    float(dark_ref.mean()),
-                    monitors,
-                    trusted,
-                    look_sigma,
-                    look_data,
-                    settings,
-                )
+                around = _around_sigmas(around_us, plan, [names[k] for k in candidates], look_data)
                 if around is not None:
                     evidence |= around[1]
                     if around[0] >= DETECTABLE * settings.k_sigma:
@@ -446,20 +426,8 @@ def judge_scan(
                             evidence,
                         )
                         upgrade_effect = around[3]
-        elif doubted and topology is not None and second_look is None:
-            fringe = _tapped_fringe(
-                topology,
-                kappas,
-                plan,
-                [names[k] for k in candidates],
-                names,
-                rest_a,
-                float(dark_ref.mean()),
-                monitors,
-                trusted,
-                look_sigma,
-                settings,
-            )
+        elif doubted and around_us is not None and second_look is None:
+            fringe = _tapped_fringe(around_us, plan, [names[k] for k in candidates])
             if fringe is not None:
                 look_angles[aid] = _planned_look_angle(
                     fringe, names, look_sigma, LOOK_MARGIN * DETECTABLE * settings.k_sigma
@@ -470,18 +438,10 @@ def judge_scan(
                 for angle in np.arange(0.3, 1.5001, 0.05):
                     values = [_value_for_angle(plan, kappas, a) for a in (angle / 2.0, angle)]
                     trial = _around_sigmas(
-                        topology,
-                        kappas,
+                        around_us,
                         plan,
                         [names[k] for k in candidates],
-                        names,
-                        rest_a,
-                        float(dark_ref.mean()),
-                        monitors,
-                        trusted,
-                        look_sigma,
-                        LookData(values, [zero, zero], [wide, wide], [zero, zero]),
-                        settings,
+                        LookData(values, [zero] * 2, [wide] * 2, [zero] * 2),
                     )
                     if trial is None:
                         break
@@ -766,19 +726,24 @@ class TappedFringe:
     gains: tuple[float, float]  # amps per unit of upper-tap power at (upper, lower), the lower one at its least
 
 
-def _tapped_fringe(
-    topology: LatticeTopology,
-    kappas: dict[str, float | None],
-    plan: ActuatorPlan,
-    judged: list[str],
-    names: list[str],
-    rest_a: Any,
-    dark_a: float,
-    monitors: dict[str, Any],
-    trusted: set[str],
-    look_sigma: Any,
-    settings: ScanSettings,
-) -> TappedFringe | None:
+@dataclass(frozen=True)
+class Around:
+    """What the judgements from the readings around a silent actuator's coupler use: the lattice, the calibrated
+    couplings, the monitors (names in frame order, config, trusted ones), the rest frames, the dark level, each
+    monitor's per-frame sigma and the settings."""
+
+    topology: LatticeTopology
+    kappas: dict[str, float | None]
+    names: list[str]
+    monitors: dict[str, Any]
+    trusted: set[str]
+    rest_a: Any
+    dark_a: float
+    look_sigma: Any
+    settings: ScanSettings
+
+
+def _tapped_fringe(around: Around, plan: ActuatorPlan, judged: list[str]) -> TappedFringe | None:
     """Where the fringe of the coupler where ``plan``'s actuator acts sits, when both of that coupler's outputs
     reach a tap with no gate between (:func:`.scan_paths.tapped_outputs`); None where they do not, or a tap is not
     fully trusted, or a ratio it needs is unknown.
@@ -790,6 +755,14 @@ def _tapped_fringe(
     in psi sits at D - (A - B)/2 cos(theta), off D by at most S |cos(theta)| / 2 = S |1 - 2 kappa| / 2 (the
     mixer's calibrated kappa, give or take ``MIXER_KAPPA_TOLERANCE``). The taps' path losses may differ by
     ``path_loss_db_max``; readings are known to k sigma of one frame's noise (drift over the scan included)."""
+    topology, kappas, names, monitors, trusted = (
+        around.topology,
+        around.kappas,
+        around.names,
+        around.monitors,
+        around.trusted,
+    )
+    rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
     if plan.gate is None:
         return None
     found = tapped_outputs(topology, kappas, plan.gate, plan.attribute)
@@ -869,18 +842,7 @@ class LookData:
 
 
 def _around_sigmas(
-    topology: LatticeTopology,
-    kappas: dict[str, float | None],
-    plan: ActuatorPlan,
-    judged: list[str],
-    names: list[str],
-    rest_a: Any,
-    dark_a: float,
-    monitors: dict[str, Any],
-    trusted: set[str],
-    look_sigma: Any,
-    looks: LookData,
-    settings: ScanSettings,
+    around: Around, plan: ActuatorPlan, judged: list[str], looks: LookData
 ) -> tuple[float, dict[str, float], str, str] | None:
     """The least a working actuator must have shown (sigmas) at the readings of its coupler's outputs, from the
     light its coupler's two inputs bring (read by taps, :func:`.scan_paths.input_readings`); None where that is not
@@ -892,6 +854,14 @@ def _around_sigmas(
     (a lossless gate keeps the sum of its outputs, its other input unchanged), less each gate's and path's loss
     (``path_loss_db_max`` per gate) and what neighbours' crosstalk could add; the least over every operating
     angle of the clearest look is :func:`.scan_attribution.least_sigmas`."""
+    topology, kappas, names, monitors, trusted = (
+        around.topology,
+        around.kappas,
+        around.names,
+        around.monitors,
+        around.trusted,
+    )
+    rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
     if plan.gate is None:
         return None
     found = input_readings(topology, kappas, plan.gate, plan.attribute)

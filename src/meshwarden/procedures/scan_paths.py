@@ -395,29 +395,36 @@ def clean_tap(topology: LatticeTopology, after: int, mode: int) -> str | None:
     return None
 
 
+def effect_coupler(topology: LatticeTopology, gate: str, attribute: str) -> tuple[str, int, int] | None:
+    """(gate, column, top mode) of the coupler where ``gate``'s ``attribute`` shows: its own coupler; for a phase,
+    the first later coupler where its arm meets light from another input, every coupler taken as splitting
+    whatever its calibrated ratio (one near bar or cross still leaks some light across), so no earlier coupler
+    can mix its light with other light. None where there is none."""
+    if gate not in topology.gates:
+        return None
+    column, top = topology.gates[gate]
+    if attribute == "kappa":
+        return gate, column, top
+    found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
+    if found is None:
+        return None
+    effect = topology.gate_at(found[0], found[1])
+    return None if effect is None else (effect, found[0], found[1])
+
+
 def tapped_outputs(
     topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
 ) -> tuple[str, str, str] | None:
     """(gate, top tap, bottom tap) of the coupler where ``gate``'s ``attribute`` shows (its own coupler; for a
     phase, the first later coupler where its arm meets light from another input) when both of that coupler's
-    outputs reach a tap with no gate between (:func:`clean_tap`); else None.
-
-    For a phase every coupler is taken as splitting whatever its calibrated ratio (a coupler near bar or cross
-    still leaks some light across), so the coupler found is the first where other light can meet its arm; its
-    input from the phase's side then carries only light the phase shifted. Where the light enters is the
-    lattice's input modes."""
-    if gate not in topology.gates:
+    outputs reach a tap with no gate between (:func:`clean_tap`); else None. The coupler is found by
+    :func:`effect_coupler`; its input from the phase's side then carries only light the phase shifted."""
+    spot = effect_coupler(topology, gate, attribute)
+    if spot is None:
         return None
-    column, top = topology.gates[gate]
-    effect = gate
-    if attribute != "kappa":
-        found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
-        if found is None:
-            return None
-        column, top = found[0], found[1]
-        effect = topology.gate_at(column, top) or ""
+    effect, column, top = spot
     upper, lower = clean_tap(topology, column, top), clean_tap(topology, column, top + 1)
-    if upper is None or lower is None or not effect:
+    if upper is None or lower is None:
         return None
     return effect, upper, lower
 
@@ -477,19 +484,11 @@ def input_readings(
 ) -> InputReadings | None:
     """The coupler where ``gate``'s ``attribute`` shows (as :func:`tapped_outputs`), when taps read the light of both
     its inputs (:func:`input_tap`) and both its outputs are read (:func:`output_reading`); else None. For a phase
-    the input on its own side must carry only light it shifted (its arm reaches the coupler with no gate between)."""
-    if gate not in topology.gates:
+    the taps read whatever enters it, however the light got there."""
+    spot = effect_coupler(topology, gate, attribute)
+    if spot is None:
         return None
-    column, top = topology.gates[gate]
-    effect = gate
-    if attribute != "kappa":
-        found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
-        if found is None or found[2] != {top}:
-            return None
-        column, top = found[0], found[1]
-        effect = topology.gate_at(column, top) or ""
-        if not effect:
-            return None
+    effect, column, top = spot
     upper_in, lower_in = input_tap(topology, column, top), input_tap(topology, column, top + 1)
     upper_out, lower_out = output_reading(topology, column, top), output_reading(topology, column, top + 1)
     if upper_in is None or lower_in is None or upper_out is None or lower_out is None:
