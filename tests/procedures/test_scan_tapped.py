@@ -13,7 +13,7 @@ import pytest
 from meshsim.faults import Fault
 from meshwarden.procedures.inputs import ProcedureInputError
 from meshwarden.procedures.lattice import LatticeTopology
-from meshwarden.procedures.scan_attribution import coupling_angle, offset_fringe_sigmas
+from meshwarden.procedures.scan_attribution import coupling_angle, mixer_phase_sigmas, offset_fringe_sigmas
 from meshwarden.procedures.scan_paths import clean_tap, input_readings, tapped_outputs
 from tests.procedures.scan_bench import bench_topology
 from tests.procedures.test_scan import _custom, _demo_topology, _mode_powers, _tap_powers
@@ -202,3 +202,27 @@ def test_a_stuck_coupler_with_tapped_outputs_is_found_from_its_taps(tmp_path: Pa
     healthy, issues = asyncio.run(_custom(tmp_path / "healthy", [], topology=bench_topology()))
     assert issues == []
     assert healthy["actuators"]["b1c"]["verdict"] == "ok"
+
+
+def test_mixer_phase_bound_holds_on_real_couplers_and_vanishes_for_one_input() -> None:
+    """Over real couplers (the Yariv 1973 matrix, numpy) with any input light, ratio and phase, a phase step by each
+    look's size changes the top output by at least mixer_phase_sigmas of its outputs in one look, and not far more
+    at worst (within 20 %); when all the light enters one input, which the outputs cannot rule out, it is 0."""
+    looks = [(0.01, 1e-3), (0.7, 1e-2), (1.4, 1e-2)]
+    rng = np.random.default_rng(31)
+    ratios = []
+    for i in range(1500):
+        a_w, b_w, psi, kappa = rng.uniform(0, 1), rng.uniform(0, 1), rng.uniform(0, 2 * math.pi), rng.uniform(0.1, 0.9)
+        if i % 4 == 0:
+            b_w = a_w * 10 ** rng.uniform(-8, -2)  # nearly all the light in one input
+        theta = coupling_angle(kappa)
+        top, bottom = _outputs(theta, a_w, b_w, psi)
+        bound = mixer_phase_sigmas((top - bottom) / 2, top + bottom, [kappa], looks)
+        for sign in (1.0, -1.0):
+            shown = max(abs(_outputs(theta, a_w, b_w, psi + sign * s)[0] - top) / sigma for s, sigma in looks)
+            assert shown >= bound - 1e-9
+            if bound > 0:
+                ratios.append(shown / bound)
+    assert min(ratios) < 1.2
+    top, bottom = _outputs(coupling_angle(0.3), 1.0, 0.0, 0.0)
+    assert mixer_phase_sigmas((top - bottom) / 2, top + bottom, [0.3], looks) == 0.0

@@ -27,6 +27,7 @@ from meshwarden.procedures.scan_attribution import (
     crosstalk_bounds,
     estimate_share,
     least_sigmas,
+    mixer_phase_sigmas,
     offset_fringe_sigmas,
 )
 from meshwarden.procedures.scan_paths import (
@@ -724,6 +725,29 @@ class TappedFringe:
     lower: str
     effect: str  # the gate of the coupler where the actuator acts
     gains: tuple[float, float]  # amps per unit of upper-tap power at (upper, lower), the lower one at its least
+    # for a phase: (upper, lower) readings in upper-tap power units, each known to +- its uncertainty, the lower
+    # tap's path ratio range, and the mixing coupler's ratio range
+    readings_w: tuple[float, float] = (0.0, 0.0)
+    uncertainty_w: tuple[float, float] = (0.0, 0.0)
+    rho: tuple[float, float] = (1.0, 1.0)
+    mixer_kappas: tuple[float, ...] = ()
+
+    def least_sigmas(self, looks: list[tuple[float, float]]) -> float:
+        """The least a working actuator shows (sigmas) in one of ``looks`` (turn of its fringe, sigma in upper-tap
+        power units): a coupler from the fringe's offset (:func:`.scan_attribution.offset_fringe_sigmas`); a phase
+        over every input split its mixing coupler's outputs allow (:func:`.scan_attribution.mixer_phase_sigmas`),
+        at each corner of the readings' uncertainty, path ratio and the coupler's ratio."""
+        if not self.mixer_kappas:
+            return offset_fringe_sigmas(self.offset_w, looks)
+        least = math.inf
+        (p_u, p_l), (u_u, u_l) = self.readings_w, self.uncertainty_w
+        for rho in (self.rho[0], 1.0, self.rho[1]):
+            for du in (-u_u, 0.0, u_u):
+                for dl in (-u_l, 0.0, u_l):
+                    upper, lower = max(p_u + du, 0.0), max(p_l + dl, 0.0) / rho
+                    shown = mixer_phase_sigmas((upper - lower) / 2.0, upper + lower, self.mixer_kappas, looks)
+                    least = min(least, shown)
+        return least
 
 
 @dataclass(frozen=True)
@@ -784,12 +808,21 @@ def _tapped_fringe(around: Around, plan: ActuatorPlan, judged: list[str]) -> Tap
     if plan.attribute == "kappa":
         if kappas.get(plan.gate) is None:
             return None
-    else:
-        mixer = kappas.get(effect)
-        if mixer is None:
-            return None
-        offset -= (p_u + p_l / rho_lo) / 2.0 * min(abs(1.0 - 2.0 * mixer) + 2.0 * MIXER_KAPPA_TOLERANCE, 1.0)
-    return TappedFringe(max(offset, 0.0), upper, lower, effect, (resp_u, resp_l * rho_lo))
+        return TappedFringe(max(offset, 0.0), upper, lower, effect, (resp_u, resp_l * rho_lo))
+    mixer = kappas.get(effect)
+    if mixer is None:
+        return None
+    return TappedFringe(
+        max(offset, 0.0),
+        upper,
+        lower,
+        effect,
+        (resp_u, resp_l * rho_lo),
+        (p_u, p_l),
+        (k * float(look_sigma[ku]) / resp_u, k * float(look_sigma[kl]) / resp_l),
+        (rho_lo, rho_hi),
+        tuple(min(max(mixer + d, 0.0), 1.0) for d in (-MIXER_KAPPA_TOLERANCE, 0.0, MIXER_KAPPA_TOLERANCE)),
+    )
 
 
 def _tapped_angles(plan: ActuatorPlan, kappas: dict[str, float | None], values: list[float]) -> list[float]:
@@ -826,7 +859,7 @@ def _tapped_sigmas(
     for angle, (_, sigma) in zip(angles, steps, strict=True):
         seen = max(fringe.gains[0] / float(sigma[ku]), fringe.gains[1] / float(sigma[kl]))
         looks.append((angle, 1.0 / seen))
-    shown = offset_fringe_sigmas(fringe.offset_w, looks)
+    shown = fringe.least_sigmas(looks)
     return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(looks))}
 
 
@@ -919,7 +952,7 @@ def _planned_look_angle(fringe: TappedFringe, names: list[str], look_sigma: Any,
     ku, kl = names.index(fringe.upper), names.index(fringe.lower)
     sigma = LOOK_SPREAD / max(fringe.gains[0] / float(look_sigma[ku]), fringe.gains[1] / float(look_sigma[kl]))
     for angle in np.arange(0.3, 1.5001, 0.05):
-        if offset_fringe_sigmas(fringe.offset_w, [(angle / 2.0, sigma), (angle, sigma)]) >= needed:
+        if fringe.least_sigmas([(angle / 2.0, sigma), (angle, sigma)]) >= needed:
             return float(angle)
     return 1.5
 
