@@ -128,38 +128,39 @@ def coupling_angle(kappa: float) -> float:
     return 2.0 * math.asin(math.sqrt(min(max(kappa, 0.0), 1.0)))
 
 
-def offset_fringe_sigmas(offset: float, looks: Sequence[tuple[float, float]]) -> float:
+def offset_fringe_sigmas(offset: float, looks: Sequence[tuple[float, float, float]]) -> float:
     """The least, over every fringe consistent with a measured offset, of the clearest of several looks.
 
     A fringe D0 + R cos(theta - alpha) seen at an angle where its offset from the middle, D = R cos(phi), is known
     (``offset``) but R sin(phi) = Q is not changes by -(D (1 - cos s) + Q sin s) when the angle turns by s
-    (standard trigonometry). Each look is (angle step s, sigma); the result is min over Q of max over the looks of
-    |D (1 - cos s) + Q sin s| / sigma: a working actuator shows at least this many sigma in one of its looks,
-    whatever Q is. Two looks of different size (or of opposite sign) leave no Q where both show nothing unless
-    D = 0. The minimum of a maximum of |a + b Q| lies where one term vanishes or two are equal, so those points
-    are tried exactly.
+    (standard trigonometry). Each look is (angle step s, amount any other cause could give, sigma); the result is
+    min over Q of max over the looks of (|D (1 - cos s) + Q sin s| - amount) / sigma: a working actuator shows at
+    least this many sigma in one of its looks, whatever Q is. Two looks of different size (or of opposite sign)
+    leave no Q where both show nothing unless D = 0. Each term is |alpha + beta Q| - gamma, so the maximum is
+    convex and piecewise linear in Q: its least lies where one term bends or two pieces meet, tried exactly.
     """
     terms = []
-    for step, sigma in looks:
+    for step, other, sigma in looks:
         if sigma <= 0.0:
             raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
-        terms.append((offset * (1.0 - math.cos(step)) / sigma, math.sin(step) / sigma))
+        terms.append((offset * (1.0 - math.cos(step)) / sigma, math.sin(step) / sigma, other / sigma))
     if not terms:
         return 0.0
-    candidates = [0.0] + [-a / b for a, b in terms if b != 0.0]
-    for i, (a1, b1) in enumerate(terms):
-        for a2, b2 in terms[i + 1 :]:
-            for sign in (1.0, -1.0):
-                if b1 - sign * b2 != 0.0:
-                    candidates.append((sign * a2 - a1) / (b1 - sign * b2))
-    return float(min(max(abs(a + b * q) for a, b in terms) for q in candidates))
+    candidates = [0.0] + [-a / b for a, b, _ in terms if b != 0.0]
+    for i, (a1, b1, g1) in enumerate(terms):
+        for a2, b2, g2 in terms[i + 1 :]:
+            for s1 in (1.0, -1.0):
+                for s2 in (1.0, -1.0):
+                    if s1 * b1 - s2 * b2 != 0.0:
+                        candidates.append((g1 - g2 - s1 * a1 + s2 * a2) / (s1 * b1 - s2 * b2))
+    return float(min(max(abs(a + b * q) - g for a, b, g in terms) for q in candidates))
 
 
 def mixer_phase_sigmas(
     offset_w: float,
     total_w: float,
     kappas: Sequence[float],
-    looks: Sequence[tuple[float, float]],
+    looks: Sequence[tuple[float, float, float]],
     points: int = 4001,
 ) -> float:
     """The least a working phase shows (sigmas) in one of its looks at the coupler where its arm meets other light,
@@ -172,11 +173,11 @@ def mixer_phase_sigmas(
     (``GRID_SAFETY`` of the least is returned, for what falls between its points) and each ratio in ``kappas`` is
     tried with the psi that explains D (two per x), both signs of the step; the
     least of the clearest look is returned (0 where some split, such as all the light in one input, explains D with
-    a phase that shows nothing). Each look is (phase step s, sigma).
+    a phase that shows nothing). Each look is (phase step s, amount any other cause could give, sigma).
     """
     if total_w <= 0.0 or not looks:
         return 0.0
-    for _, sigma in looks:
+    for _, _, sigma in looks:
         if sigma <= 0.0:
             raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
     # x = (S/2) cos(beta), sqrt(A B) = (S/2) sin(beta): a grid in beta, finer toward all the light in one input
@@ -202,11 +203,14 @@ def mixer_phase_sigmas(
         amp = amplitude[consistent]
         for psi in (psi_a, math.pi - psi_a):
             for sign in (1.0, -1.0):
-                shown = np.zeros_like(psi)
-                for step, sigma in looks:
-                    shown = np.maximum(shown, amp * np.abs(np.sin(psi + sign * step) - np.sin(psi)) / sigma)
+                shown = np.full_like(psi, -np.inf)
+                for step, other, sigma in looks:
+                    change = amp * np.abs(np.sin(psi + sign * step) - np.sin(psi))
+                    shown = np.maximum(shown, (change - other) / sigma)
                 least = min(least, float(shown.min()))
-    return 0.0 if math.isinf(least) else GRID_SAFETY * least
+    if math.isinf(least):
+        return 0.0
+    return GRID_SAFETY * least if least > 0.0 else least
 
 
 GRID_SAFETY = 0.9

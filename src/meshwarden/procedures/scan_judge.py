@@ -393,11 +393,16 @@ def judge_scan(
         if verdict.verdict == "no_response" and around_us is not None and second_look is not None:
             halves, half_values, _ = half_look or ({}, {}, {})
             # (value step, its standard error per monitor): the design's own step first, then the second looks
-            tapped_steps = [(plan.value_step, se[j])]
+            # the neighbours' crosstalk reaches the taps of a phase's mixing coupler (its own gate's coupler changes
+            # the light on its arm), never those of a coupler's own outputs (no neighbour acts on those modes)
+            reach = 0.0 if plan.attribute == "kappa" else 1.0
+            tapped_steps = [(plan.value_step, se[j], reach * borrowed[j] * abs(dv2[j]))]
             if aid in looks and big_value_step and aid in big_value_step:
-                tapped_steps.append((big_value_step[aid], LOOK_SPREAD * np.asarray(look_sigma)))
+                big_xt = reach * borrowed[j] * abs((big_dv2 or {}).get(aid, 0.0))
+                tapped_steps.append((big_value_step[aid], LOOK_SPREAD * np.asarray(look_sigma), big_xt))
             if aid in halves and aid in half_values:
-                tapped_steps.append((half_values[aid], LOOK_SPREAD * np.asarray(look_sigma)))
+                half_xt = reach * borrowed[j] * abs((half_look or ({}, {}, {}))[2].get(aid, 0.0))
+                tapped_steps.append((half_values[aid], LOOK_SPREAD * np.asarray(look_sigma), half_xt))
             fringe = _tapped_fringe(around_us, plan, [names[k] for k in candidates])
             if fringe is not None:
                 shown, found_evidence = _tapped_sigmas(fringe, plan, kappas, names, tapped_steps)
@@ -732,11 +737,12 @@ class TappedFringe:
     rho: tuple[float, float] = (1.0, 1.0)
     mixer_kappas: tuple[float, ...] = ()
 
-    def least_sigmas(self, looks: list[tuple[float, float]]) -> float:
-        """The least a working actuator shows (sigmas) in one of ``looks`` (turn of its fringe, sigma in upper-tap
-        power units): a coupler from the fringe's offset (:func:`.scan_attribution.offset_fringe_sigmas`); a phase
-        over every input split its mixing coupler's outputs allow (:func:`.scan_attribution.mixer_phase_sigmas`),
-        at each corner of the readings' uncertainty, path ratio and the coupler's ratio."""
+    def least_sigmas(self, looks: list[tuple[float, float, float]]) -> float:
+        """The least a working actuator shows (sigmas) in one of ``looks`` (turn of its fringe, what crosstalk could
+        add and sigma, both in upper-tap power units): a coupler from the fringe's offset
+        (:func:`.scan_attribution.offset_fringe_sigmas`); a phase over every input split its mixing coupler's
+        outputs allow (:func:`.scan_attribution.mixer_phase_sigmas`), at each corner of the readings' uncertainty,
+        the path ratio and the coupler's ratio."""
         if not self.mixer_kappas:
             return offset_fringe_sigmas(self.offset_w, looks)
         least = math.inf
@@ -849,18 +855,19 @@ def _tapped_sigmas(
     plan: ActuatorPlan,
     kappas: dict[str, float | None],
     names: list[str],
-    steps: list[tuple[float, Any]],
+    steps: list[tuple[float, Any, Any]],
 ) -> tuple[float, dict[str, float]]:
-    """The least a working actuator must have shown (sigmas) in one of its looks (value step, sigma per monitor),
-    at the taps of ``fringe`` (:func:`.scan_attribution.offset_fringe_sigmas`), and the evidence."""
+    """The least a working actuator must have shown (sigmas) in one of its looks (value step, sigma and what its
+    neighbours' crosstalk could move, per monitor) at the taps of ``fringe``, and the evidence. Each tap is a look
+    of its own (the two change by equal and opposite amounts)."""
     ku, kl = names.index(fringe.upper), names.index(fringe.lower)
-    angles = _tapped_angles(plan, kappas, [value for value, _ in steps])
+    angles = _tapped_angles(plan, kappas, [value for value, _, _ in steps])
     looks = []
-    for angle, (_, sigma) in zip(angles, steps, strict=True):
-        seen = max(fringe.gains[0] / float(sigma[ku]), fringe.gains[1] / float(sigma[kl]))
-        looks.append((angle, 1.0 / seen))
+    for angle, (_, sigma, crosstalk) in zip(angles, steps, strict=True):
+        for index, gain in ((ku, fringe.gains[0]), (kl, fringe.gains[1])):
+            looks.append((angle, float(crosstalk[index]) / gain, float(sigma[index]) / gain))
     shown = fringe.least_sigmas(looks)
-    return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(looks))}
+    return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(steps))}
 
 
 @dataclass(frozen=True)
@@ -952,7 +959,7 @@ def _planned_look_angle(fringe: TappedFringe, names: list[str], look_sigma: Any,
     ku, kl = names.index(fringe.upper), names.index(fringe.lower)
     sigma = LOOK_SPREAD / max(fringe.gains[0] / float(look_sigma[ku]), fringe.gains[1] / float(look_sigma[kl]))
     for angle in np.arange(0.3, 1.5001, 0.05):
-        if fringe.least_sigmas([(angle / 2.0, sigma), (angle, sigma)]) >= needed:
+        if fringe.least_sigmas([(angle / 2.0, 0.0, sigma), (angle, 0.0, sigma)]) >= needed:
             return float(angle)
     return 1.5
 
