@@ -14,6 +14,7 @@ from meshwarden.procedures.designs import (
     one_at_a_time_design,
     s_matrix,
     s_matrix_design,
+    scan_design,
 )
 
 
@@ -117,3 +118,25 @@ def test_drift_robust_refuses_more_terms_than_spare_frames() -> None:
     """Seven actuators in eight frames leave no room for a drift term: a clear error, not a singular fit."""
     with pytest.raises(ProcedureInputError, match="cannot fit"):
         drift_robust(s_matrix_design(7), 1)
+
+
+@pytest.mark.parametrize("actuators", range(1, 40))
+def test_scan_design_is_always_solvable(actuators: int) -> None:
+    """The scan's design for any number of actuators leaves every response estimable (a full-rank fit) and recovers
+    known responses exactly from noiseless frames, with as many drift terms as a solvable fit allows."""
+    design = scan_design(actuators)
+    x = design.regressors()
+    # Source: a linear least-squares problem has a unique solution iff its matrix has full column rank (standard;
+    # rank by numpy's SVD)
+    assert np.linalg.matrix_rank(x) == x.shape[1]
+    assert sorted(design.pattern) == sorted(s_matrix_design(actuators).pattern)
+    rng = np.random.default_rng(actuators)
+    truth = rng.normal(size=(actuators, 3))
+    frames = 2.0 + design.matrix() @ truth
+    got, rest = estimate_responses(design, frames, 1.0)
+    np.testing.assert_allclose(got, truth, atol=1e-9)
+    np.testing.assert_allclose(rest, 2.0, atol=1e-9)
+    room = min(2, design.frames - 1 - actuators)
+    if design.trend < room:  # a drift term was dropped only where it made the fit singular
+        more = drift_robust(s_matrix_design(actuators), design.trend + 1).regressors()
+        assert np.linalg.matrix_rank(more) < more.shape[1]

@@ -338,6 +338,41 @@ def test_a_stopped_scan_returns_the_outputs(tmp_path: Path) -> None:
     assert after == before
 
 
+def test_a_scan_ended_by_a_disarm_says_the_disarm_took_the_outputs(tmp_path: Path) -> None:
+    """A disarm during the frames ends the scan with a stopped refusal that says the disarm took the outputs over
+    (not that the scan returned them), and at the board every output ends at zero within the rules."""
+    pending: list[asyncio.Future[None]] = []
+
+    async def scenario() -> tuple[StoppedRefused, dict[str, int], list[Any]]:
+        path, rack = write_scan_bench(tmp_path)
+        config = load_config(path)
+        try:
+            async with open_controller(config) as ctl:
+                await ctl.arm()
+                await ctl.set(OPERATING_POINT)
+
+                def progress(done: int, total: int) -> None:
+                    if done == 12 and not pending:  # within the design frames: outputs have moved
+                        pending.append(asyncio.ensure_future(ctl.disarm()))
+
+                with pytest.raises(StoppedRefused) as caught:
+                    await run_scan(ctl, owner="scan:t", topology=bench_topology(), progress=progress)
+                await pending[0]
+                board = inprocess.get(rack).board("b0")
+                after = {a: int(board.codes[ctl.actuators[a].config.output.index]) for a in ctl.actuators}
+                issues = check_board_log(config, "b0", list(board.write_log)).violations
+                return caught.value, after, list(issues)
+        finally:
+            inprocess.remove(rack)
+
+    error, after, issues = asyncio.run(scenario())
+    assert "disarm took the outputs over" in error.message
+    assert "returned to where it found them" not in error.message
+    assert error.details["outputs_returned"] is False
+    assert set(after.values()) == {0}
+    assert issues == []
+
+
 def test_steps_stay_below_the_test_voltage(tmp_path: Path) -> None:
     """From an operating point of 0 V a step goes up, never past the configured test voltage."""
 

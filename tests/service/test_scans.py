@@ -243,6 +243,18 @@ async def _nothing(topic: str, body: dict[str, Any]) -> int:
         ("scans: {targets: [zz]}", "not an actuator or gate"),
         ("scans: {k_sigma: 0}", "standard deviations"),
         ("scans: {every: 6 h}", "unknown key 'every'"),
+        ("scans: {second_look_factor: 0.5}", "how many times the first step a second look takes, from 1 to 1000"),
+        ("scans: {integration_s: 0 s}", "must be greater than 0 s"),
+        ("scans: {integration_s: 20 s}", "must be at most 10 s"),
+        ("scans: {temperature_k: -3}", "detectors' temperature in kelvin, from 1 to 1000"),
+        ("scans: {dark_current_a: -1 nA}", "must be at least 0 A"),
+        ("scans: {dark_current_a: 5 V}", "dark_current_a"),
+        ("scans: {false_alarm: 0.5}", "false-alarm probability above 0 and at most 0.01"),
+        ("scans: {crosstalk_share_max: 0.9}", "share of a neighbour's drive from 0 to 0.5"),
+        ("scans: {crosstalk_share_max: yes}", "share of a neighbour's drive from 0 to 0.5"),
+        ("scans: {loss_floor: 0}", "least share of conserved light a tap receives, above 0 and at most 1"),
+        ("scans: {path_loss_db_max: 5}", "how many dB two taps' paths may differ in loss, from 0 to 3"),
+        ("scans: {look_max_step_volts: -2 V}", "must be greater than 0 V"),
     ],
 )
 def test_bad_scans_sections_are_refused(tmp_path: Path, section: str, message: str) -> None:
@@ -253,6 +265,53 @@ def test_bad_scans_sections_are_refused(tmp_path: Path, section: str, message: s
     with pytest.raises(ConfigError) as caught:
         load_config(path)
     assert message in str(caught.value) or any(message in str(i) for i in caught.value.issues)
+
+
+def test_configured_scan_settings_take_effect(tmp_path: Path) -> None:
+    """Every setting of a scan is read from `scans:`; a configured crosstalk share bound is the one a scan judges by."""
+    from dataclasses import fields
+
+    from meshwarden.procedures.scan_run import ScanSettings, run_scan
+    from meshwarden.service.scans import settings_from_config, topology_from_config
+
+    section = (
+        "scans: {second_look_factor: 12, integration_s: 2 ms, temperature_k: 290, dark_current_a: 3 nA, "
+        "false_alarm: 1.0e-5, crosstalk_share_max: 0.011, loss_floor: 0.7, path_loss_db_max: 0.3, "
+        "look_max_step_volts: 6 V}\n"
+    )
+    path, rack = write_scan_bench(tmp_path, extra=section)
+    config = load_config(path)
+    wanted = {
+        "second_look_factor": 12.0,
+        "integration_s": 2e-3,
+        "temperature_k": 290.0,
+        "dark_current_a": 3e-9,
+        "false_alarm": 1e-5,
+        "crosstalk_share_max": 0.011,
+        "loss_floor": 0.7,
+        "path_loss_db_max": 0.3,
+        "look_max_step_volts": 6.0,
+    }
+
+    async def scenario() -> tuple[ScanSettings, dict[str, Any]]:
+        async with open_controller(config) as ctl:
+            await ctl.arm()
+            await ctl.set(OPERATING_POINT)
+            settings = settings_from_config(ctl)
+            report = await run_scan(ctl, ["a0"], owner="scan:t", settings=settings, topology=topology_from_config(ctl))
+            return settings, report
+
+    try:
+        settings, report = asyncio.run(scenario())
+    finally:
+        inprocess.remove(rack)
+    assert {f.name for f in fields(ScanSettings)} <= {f.name for f in fields(type(config.scans))}
+    assert {name: getattr(settings, name) for name in wanted} == pytest.approx(wanted)
+    for kind in ("within_gate", "between_gates"):
+        share = report["crosstalk_share"][kind]
+        assert share["bound"] <= 0.011
+        if share["measured_from"] == 0:
+            assert share["bound"] == pytest.approx(0.011)
 
 
 def test_an_unknown_scan_target_is_refused_before_a_job_starts(tmp_path: Path) -> None:

@@ -298,6 +298,15 @@ SCAN_KEYS = (
     "optical_noise_rel",
     "sense_noise_volts",
     "k_sigma",
+    "second_look_factor",
+    "integration_s",
+    "temperature_k",
+    "dark_current_a",
+    "false_alarm",
+    "crosstalk_share_max",
+    "loss_floor",
+    "path_loss_db_max",
+    "look_max_step_volts",
 )
 
 
@@ -310,6 +319,44 @@ def _time_of_day(value: Any) -> str:
 def _sigmas(value: Any) -> float:
     if isinstance(value, bool) or not isinstance(value, int | float) or not 1.0 <= float(value) <= 100.0:
         raise ValueError(f"expected a number of standard deviations from 1 to 100, got {value!r}")
+    return float(value)
+
+
+def _look_factor(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 1.0 <= float(value) <= 1000.0:
+        raise ValueError(f"expected how many times the first step a second look takes, from 1 to 1000, got {value!r}")
+    return float(value)
+
+
+def _kelvin(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 1.0 <= float(value) <= 1000.0:
+        raise ValueError(f"expected the detectors' temperature in kelvin, from 1 to 1000, got {value!r}")
+    return float(value)
+
+
+def _false_alarm(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 < float(value) <= 0.01:
+        raise ValueError(f"expected a false-alarm probability above 0 and at most 0.01, got {value!r}")
+    return float(value)
+
+
+def _share(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 <= float(value) <= 0.5:
+        raise ValueError(f"expected a share of a neighbour's drive from 0 to 0.5, got {value!r}")
+    return float(value)
+
+
+def _loss_floor(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 < float(value) <= 1.0:
+        raise ValueError(
+            f"expected the least share of conserved light a tap receives, above 0 and at most 1, got {value!r}"
+        )
+    return float(value)
+
+
+def _loss_db(value: Any) -> float:
+    if isinstance(value, bool) or not isinstance(value, int | float) or not 0.0 <= float(value) <= 3.0:
+        raise ValueError(f"expected how many dB two taps' paths may differ in loss, from 0 to 3, got {value!r}")
     return float(value)
 
 
@@ -338,6 +385,17 @@ def _scans(p: f.Problems, raw: Any, known: set[str]) -> ScansConfig:
         optical_noise_rel=s.get("optical_noise_rel", f.fraction, d.optical_noise_rel),
         sense_noise_volts=s.get("sense_noise_volts", f.quantity(VOLTS), d.sense_noise_volts),
         k_sigma=s.get("k_sigma", _sigmas, d.k_sigma),
+        second_look_factor=s.get("second_look_factor", _look_factor, d.second_look_factor),
+        integration_s=s.get("integration_s", f.quantity(SECONDS, maximum=10.0), d.integration_s),
+        temperature_k=s.get("temperature_k", _kelvin, d.temperature_k),
+        dark_current_a=s.get(
+            "dark_current_a", f.quantity(AMPERES, positive=False, minimum=0.0, maximum=1e-3), d.dark_current_a
+        ),
+        false_alarm=s.get("false_alarm", _false_alarm, d.false_alarm),
+        crosstalk_share_max=s.get("crosstalk_share_max", _share, d.crosstalk_share_max),
+        loss_floor=s.get("loss_floor", _loss_floor, d.loss_floor),
+        path_loss_db_max=s.get("path_loss_db_max", _loss_db, d.path_loss_db_max),
+        look_max_step_volts=s.get("look_max_step_volts", f.quantity(VOLTS), d.look_max_step_volts),
     )
 
 

@@ -269,6 +269,15 @@ class ScansConfig:
     optical_noise_rel: float = 0.01
     sense_noise_volts: float = 0.005
     k_sigma: float = 5.0
+    second_look_factor: float = 30.0
+    integration_s: float = 1e-3
+    temperature_k: float = 300.0
+    dark_current_a: float = 0.0
+    false_alarm: float = 1e-6
+    crosstalk_share_max: float = 0.05
+    loss_floor: float = 0.5
+    path_loss_db_max: float = 0.5
+    look_max_step_volts: float = 10.0
 
 
 @dataclass(frozen=True)

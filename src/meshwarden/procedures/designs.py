@@ -137,6 +137,19 @@ def drift_robust(design: PerturbationDesign, trend: int = 2) -> PerturbationDesi
     return PerturbationDesign(design.kind, tuple(design.pattern[i] for i in order), trend)
 
 
+def scan_design(actuators: int, trend_max: int = 2) -> PerturbationDesign:
+    """The S-matrix design for ``actuators`` in drift-robust order, with as many drift terms (up to ``trend_max``)
+    as its spare frames allow and the fit stays solvable: in a short design the scrambled rows can make a drift
+    polynomial a combination of the step columns (4 frames for 2 actuators), and then one term fewer is fitted."""
+    plain = s_matrix_design(actuators)
+    for trend in range(min(trend_max, plain.frames - 1 - plain.actuators), -1, -1):
+        design = drift_robust(plain, trend)
+        x = design.regressors()
+        if np.linalg.matrix_rank(x) == x.shape[1]:
+            return design
+    return plain
+
+
 def estimate_responses(design: PerturbationDesign, frames: Any, step: float) -> tuple[FloatArray, FloatArray]:
     """(responses per unit step, actuators x monitors; rest level per monitor) from the design's frames.
 

@@ -121,3 +121,96 @@ def least_sigmas(amplitude: float, looks: Sequence[tuple[float, float, float]], 
         shown = (amplitude * np.abs(np.cos(theta + step) - np.cos(theta)) - other) / sigma
         best = np.maximum(best, shown)
     return float(best.min())
+
+
+def coupling_angle(kappa: float) -> float:
+    """The coupled-mode angle theta (rad) of a power coupling, kappa = sin^2(theta / 2) (0 <= theta <= pi)."""
+    return 2.0 * math.asin(math.sqrt(min(max(kappa, 0.0), 1.0)))
+
+
+def offset_fringe_sigmas(offset: float, looks: Sequence[tuple[float, float, float]]) -> float:
+    """The least, over every fringe consistent with a measured offset, of the clearest of several looks.
+
+    A fringe D0 + R cos(theta - alpha) seen at an angle where its offset from the middle, D = R cos(phi), is known
+    (``offset``) but R sin(phi) = Q is not changes by -(D (1 - cos s) + Q sin s) when the angle turns by s
+    (standard trigonometry). Each look is (angle step s, amount any other cause could give, sigma); the result is
+    min over Q of max over the looks of (|D (1 - cos s) + Q sin s| - amount) / sigma: a working actuator shows at
+    least this many sigma in one of its looks, whatever Q is. Two looks of different size (or of opposite sign)
+    leave no Q where both show nothing unless D = 0. Each term is |alpha + beta Q| - gamma, so the maximum is
+    convex and piecewise linear in Q: its least lies where one term bends or two pieces meet, tried exactly.
+    """
+    terms = []
+    for step, other, sigma in looks:
+        if sigma <= 0.0:
+            raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
+        terms.append((offset * (1.0 - math.cos(step)) / sigma, math.sin(step) / sigma, other / sigma))
+    if not terms:
+        return 0.0
+    candidates = [0.0] + [-a / b for a, b, _ in terms if b != 0.0]
+    for i, (a1, b1, g1) in enumerate(terms):
+        for a2, b2, g2 in terms[i + 1 :]:
+            for s1 in (1.0, -1.0):
+                for s2 in (1.0, -1.0):
+                    if s1 * b1 - s2 * b2 != 0.0:
+                        candidates.append((g1 - g2 - s1 * a1 + s2 * a2) / (s1 * b1 - s2 * b2))
+    return float(min(max(abs(a + b * q) - g for a, b, g in terms) for q in candidates))
+
+
+def mixer_phase_sigmas(
+    offset_w: float,
+    total_w: float,
+    kappas: Sequence[float],
+    looks: Sequence[tuple[float, float, float]],
+    points: int = 4001,
+) -> float:
+    """The least a working phase shows (sigmas) in one of its looks at the coupler where its arm meets other light,
+    over every input split consistent with that coupler's outputs.
+
+    With inputs A and B (A + B = S) at relative phase psi, the coupler's top output less S/2 is
+    D = x cos(theta) - sqrt(A B) sin(theta) sin(psi), x = (A - B)/2, sqrt(A B) = sqrt(S^2/4 - x^2), kappa =
+    sin^2(theta/2) (coupled-mode algebra, Yariv 1973); a phase step s changes it by -M (sin(psi +- s) - sin(psi)),
+    M = sin(theta) sqrt(S^2/4 - x^2). Given the measured D (``offset_w``) and S (``total_w``), every x on a grid
+    (``GRID_SAFETY`` of the least is returned, for what falls between its points) and each ratio in ``kappas`` is
+    tried with the psi that explains D (two per x), both signs of the step; the
+    least of the clearest look is returned (0 where some split, such as all the light in one input, explains D with
+    a phase that shows nothing). Each look is (phase step s, amount any other cause could give, sigma).
+    """
+    if total_w <= 0.0 or not looks:
+        return 0.0
+    for _, _, sigma in looks:
+        if sigma <= 0.0:
+            raise ProcedureInputError(f"sigma must be > 0, got {sigma!r}")
+    # x = (S/2) cos(beta), sqrt(A B) = (S/2) sin(beta): a grid in beta, finer toward all the light in one input
+    # (where the least is often found), and a tenth taken off the result for what falls between its points
+    edge = math.pi * np.logspace(-7.0, -1.0, points // 4)
+    beta = np.unique(np.concatenate([np.linspace(0.0, math.pi, points), edge, math.pi - edge]))
+    x = total_w / 2.0 * np.cos(beta)
+    root = total_w / 2.0 * np.sin(beta)
+    least = math.inf
+    for kappa in kappas:
+        k = min(max(kappa, 0.0), 1.0)
+        cos_t, sin_t = 1.0 - 2.0 * k, 2.0 * math.sqrt(k * (1.0 - k))
+        amplitude = sin_t * root
+        need = x * cos_t - offset_w  # = amplitude sin(psi)
+        with np.errstate(divide="ignore", invalid="ignore"):
+            sine = np.where(amplitude > 0.0, need / amplitude, np.inf)
+        consistent = np.abs(sine) <= 1.0
+        if np.any((amplitude <= 0.0) & (np.abs(need) <= 1e-12 * max(total_w, 1e-30))):
+            return 0.0
+        if not np.any(consistent):
+            continue
+        psi_a = np.arcsin(np.clip(sine[consistent], -1.0, 1.0))
+        amp = amplitude[consistent]
+        for psi in (psi_a, math.pi - psi_a):
+            for sign in (1.0, -1.0):
+                shown = np.full_like(psi, -np.inf)
+                for step, other, sigma in looks:
+                    change = amp * np.abs(np.sin(psi + sign * step) - np.sin(psi))
+                    shown = np.maximum(shown, (change - other) / sigma)
+                least = min(least, float(shown.min()))
+    if math.isinf(least):
+        return 0.0
+    return GRID_SAFETY * least if least > 0.0 else least
+
+
+GRID_SAFETY = 0.9

@@ -23,17 +23,22 @@ from meshwarden.procedures.lattice import LatticeTopology
 from meshwarden.procedures.scan_attribution import (
     amplitude_of,
     angle_step,
+    coupling_angle,
     crosstalk_bounds,
     estimate_share,
     least_sigmas,
+    mixer_phase_sigmas,
+    offset_fringe_sigmas,
 )
 from meshwarden.procedures.scan_paths import (
     Cone,
     conservation_cone,
     expected_effect,
     incoherent_powers,
+    input_readings,
     lit_monitors,
     swing_taps,
+    tapped_outputs,
     unmixed,
     upstream_of,
 )
@@ -70,6 +75,8 @@ class ScanSettings:
     # crosstalk; the response a stuck actuator's step can borrow from its neighbours is judged against it)
     crosstalk_share_max: float = 0.05
     loss_floor: float = 0.5  # the least share of conserved light a tap receives (paths differ by < 3 dB)
+    path_loss_db_max: float = 0.5  # the most two taps of one coupler's outputs differ in path loss (a phase arm's)
+    look_max_step_volts: float = 10.0  # the largest step of a second look planned to turn a fringe far enough
 
 
 @dataclass
@@ -290,8 +297,17 @@ def judge_scan(
     trusted = {m for m, v in monitor_out.items() if v.verdict == "ok" and not v.reason}  # judged, and fully
 
     # actuators
+    around_us = (
+        Around(topology, kappas, names, monitors, trusted, rest_a, float(dark_ref.mean()), look_sigma, settings)
+        if topology is not None
+        else None
+    )
     actuator_out: dict[str, Verdict] = {a: actuator_verdict(readable=False) for a in untested}
     seen_at: dict[str, str] = {}
+    mixer_checks: dict[str, str] = {}  # a phase judged at the coupler where it acts: that coupler's gate
+    look_angles: dict[str, float] = {}  # first pass: the turn a suspect's second look should take
+    fallback: dict[str, Verdict] = {}
+    self_judged: set[str] = set()  # judged from what its own coupler's taps read: light changed upstream is measured
     for aid, plan in plans.items():
         act = controller.actuators[aid]
         common = partial(
@@ -371,9 +387,86 @@ def judge_scan(
                 "monitor sees",
                 evidence,
             )
-        elif (
-            verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None
-        ):
+        tapped = None
+        upgrade: Verdict | None = None  # no_response on the evidence of the readings where it acts
+        upgrade_effect = ""
+        if verdict.verdict == "no_response" and around_us is not None and second_look is not None:
+            halves, half_values, _ = half_look or ({}, {}, {})
+            # (value step, its standard error per monitor): the design's own step first, then the second looks
+            # the neighbours' crosstalk reaches the taps of a phase's mixing coupler (its own gate's coupler changes
+            # the light on its arm), never those of a coupler's own outputs (no neighbour acts on those modes)
+            reach = 0.0 if plan.attribute == "kappa" else 1.0
+            tapped_steps = [(plan.value_step, se[j], reach * borrowed[j] * abs(dv2[j]))]
+            if aid in looks and big_value_step and aid in big_value_step:
+                big_xt = reach * borrowed[j] * abs((big_dv2 or {}).get(aid, 0.0))
+                tapped_steps.append((big_value_step[aid], LOOK_SPREAD * np.asarray(look_sigma), big_xt))
+            if aid in halves and aid in half_values:
+                half_xt = reach * borrowed[j] * abs((half_look or ({}, {}, {}))[2].get(aid, 0.0))
+                tapped_steps.append((half_values[aid], LOOK_SPREAD * np.asarray(look_sigma), half_xt))
+            fringe = _tapped_fringe(around_us, plan, [names[k] for k in candidates])
+            if fringe is not None:
+                shown, found_evidence = _tapped_sigmas(fringe, plan, kappas, names, tapped_steps)
+                tapped = (shown, found_evidence, (fringe.upper, fringe.lower), fringe.effect)
+            if tapped is None or tapped[0] < DETECTABLE * settings.k_sigma:
+                zero = np.zeros(len(names))
+                look_data = LookData([plan.value_step], [responses[j]], [se[j]], [borrowed[j] * abs(dv2[j])])
+                if aid in looks and big_value_step and aid in big_value_step:
+                    look_data.values.append(big_value_step[aid])
+                    look_data.changes.append(np.array([looks[aid].get(m, 0.0) for m in names]))
+                    look_data.sigmas.append(LOOK_SPREAD * np.asarray(look_sigma))
+                    look_data.crosstalk.append(borrowed[j] * abs((big_dv2 or {}).get(aid, 0.0)))
+                if aid in halves and aid in half_values:
+                    look_data.values.append(half_values[aid])
+                    look_data.changes.append(np.array([halves[aid].get(m, 0.0) for m in names]))
+                    look_data.sigmas.append(LOOK_SPREAD * np.asarray(look_sigma))
+                    look_data.crosstalk.append(borrowed[j] * abs((half_look or ({}, {}, {}))[2].get(aid, 0.0)) + zero)
+                around = _around_sigmas(around_us, plan, [names[k] for k in candidates], look_data)
+                if around is not None:
+                    evidence |= around[1]
+                    if around[0] >= DETECTABLE * settings.k_sigma:
+                        upgrade = Verdict(
+                            "no_response",
+                            f"no look moved the readings of the coupler where it acts ({around[2]}: inputs, then "
+                            f"outputs); from the light its inputs bring, a working one would have shown at least "
+                            f"{around[0]:.3g} sigma in one look at any operating point",
+                            evidence,
+                        )
+                        upgrade_effect = around[3]
+        elif doubted and around_us is not None and second_look is None:
+            fringe = _tapped_fringe(around_us, plan, [names[k] for k in candidates])
+            if fringe is not None:
+                look_angles[aid] = _planned_look_angle(
+                    fringe, names, look_sigma, LOOK_MARGIN * DETECTABLE * settings.k_sigma
+                )
+            else:
+                zero = np.zeros(len(names))
+                wide = LOOK_SPREAD * np.asarray(look_sigma)
+                for angle in np.arange(0.3, 1.5001, 0.05):
+                    values = [_value_for_angle(plan, kappas, a) for a in (angle / 2.0, angle)]
+                    trial = _around_sigmas(
+                        around_us,
+                        plan,
+                        [names[k] for k in candidates],
+                        LookData(values, [zero] * 2, [wide] * 2, [zero] * 2),
+                    )
+                    if trial is None:
+                        break
+                    look_angles[aid] = float(angle)
+                    if trial[0] >= LOOK_MARGIN * DETECTABLE * settings.k_sigma:
+                        break
+        if tapped is not None:
+            evidence |= tapped[1]
+        if tapped is not None and tapped[0] >= DETECTABLE * settings.k_sigma:
+            upper, lower = tapped[2]
+            upgrade = Verdict(
+                "no_response",
+                f"no look moved the light at {upper} and {lower}, the taps of both outputs of the coupler where it "
+                f"acts; from what they read, a working one would have shown at least {tapped[0]:.3g} sigma in one "
+                "look whatever the phase of the light it meets",
+                evidence,
+            )
+            upgrade_effect = tapped[3]
+        if verdict.verdict == "no_response" and topology is not None and scale is not None and second_look is not None:
             # would a working actuator have shown? Its first look showed nothing, so if it works its operating point
             # sits at an extremum, where only the second look's second-order change shows (generous estimate)
             effect = expected_effect(topology, kappas, str(plan.gate), plan.attribute)
@@ -413,9 +506,23 @@ def judge_scan(
                     "in its two looks: too little light meets it to tell",
                     evidence,
                 )
+        if upgrade is not None:
+            fallback[aid] = verdict  # what it is if the coupler the judgement rests on proves faulty
+            verdict = upgrade
+            self_judged.add(aid)
+            if plan.attribute == "phase":
+                mixer_checks[aid] = upgrade_effect
         actuator_out[aid] = verdict
+    for aid, mixer in mixer_checks.items():
+        coupler = controller.gates[mixer].coupler if mixer in controller.gates else None
+        mixer_verdict = actuator_out.get(coupler or "")
+        if mixer_verdict is None or mixer_verdict.verdict in FAULTY or mixer_verdict.verdict == "untested":
+            # the coupler where it acts is in doubt, so the ratio the judgement rests on is not known: the
+            # judgement falls back to what the other rules said
+            actuator_out[aid] = fallback[aid]
+            self_judged.discard(aid)
     if topology is not None and blame:
-        _blame_upstream(topology, settings_of, plans, actuator_out)
+        _blame_upstream(topology, settings_of, plans, actuator_out, self_judged)
     return {
         "actuators": {
             a: v.as_dict() | ({"monitor": seen_at[a]} if a in seen_at else {}) for a, v in sorted(actuator_out.items())
@@ -429,6 +536,7 @@ def judge_scan(
             "between_gates": {"bound": shares[False][0], "measured_from": shares[False][1]},
         },
         "monitor_looks": monitor_looks,
+        "look_angles": look_angles,
         "cones": {
             c.gate: sorted(c.monitors) for m, found in cones.items() for c in found if c.gate in monitor_looks[m]
         },
@@ -610,6 +718,252 @@ def _doubtful_monitor(
     return Verdict(base.verdict, base.reason, evidence)
 
 
+MIXER_KAPPA_TOLERANCE = 0.03  # how far a healthy coupler's calibrated ratio may sit from its true one: common practice
+
+
+@dataclass(frozen=True)
+class TappedFringe:
+    """Where a coupler's fringe sits, read from the taps of both its outputs (see :func:`_tapped_fringe`)."""
+
+    offset_w: float  # the least |D| consistent with the readings, in the upper tap's power units
+    upper: str
+    lower: str
+    effect: str  # the gate of the coupler where the actuator acts
+    gains: tuple[float, float]  # amps per unit of upper-tap power at (upper, lower), the lower one at its least
+    # for a phase: (upper, lower) readings in upper-tap power units, each known to +- its uncertainty, the lower
+    # tap's path ratio range, and the mixing coupler's ratio range
+    readings_w: tuple[float, float] = (0.0, 0.0)
+    uncertainty_w: tuple[float, float] = (0.0, 0.0)
+    rho: tuple[float, float] = (1.0, 1.0)
+    mixer_kappas: tuple[float, ...] = ()
+
+    def least_sigmas(self, looks: list[tuple[float, float, float]]) -> float:
+        """The least a working actuator shows (sigmas) in one of ``looks`` (turn of its fringe, what crosstalk could
+        add and sigma, both in upper-tap power units): a coupler from the fringe's offset
+        (:func:`.scan_attribution.offset_fringe_sigmas`); a phase over every input split its mixing coupler's
+        outputs allow (:func:`.scan_attribution.mixer_phase_sigmas`), at each corner of the readings' uncertainty,
+        the path ratio and the coupler's ratio."""
+        if not self.mixer_kappas:
+            return offset_fringe_sigmas(self.offset_w, looks)
+        least = math.inf
+        (p_u, p_l), (u_u, u_l) = self.readings_w, self.uncertainty_w
+        for rho in (self.rho[0], 1.0, self.rho[1]):
+            for du in (-u_u, 0.0, u_u):
+                for dl in (-u_l, 0.0, u_l):
+                    upper, lower = max(p_u + du, 0.0), max(p_l + dl, 0.0) / rho
+                    shown = mixer_phase_sigmas((upper - lower) / 2.0, upper + lower, self.mixer_kappas, looks)
+                    least = min(least, shown)
+        return least
+
+
+@dataclass(frozen=True)
+class Around:
+    """What the judgements from the readings around a silent actuator's coupler use: the lattice, the calibrated
+    couplings, the monitors (names in frame order, config, trusted ones), the rest frames, the dark level, each
+    monitor's per-frame sigma and the settings."""
+
+    topology: LatticeTopology
+    kappas: dict[str, float | None]
+    names: list[str]
+    monitors: dict[str, Any]
+    trusted: set[str]
+    rest_a: Any
+    dark_a: float
+    look_sigma: Any
+    settings: ScanSettings
+
+
+def _tapped_fringe(around: Around, plan: ActuatorPlan, judged: list[str]) -> TappedFringe | None:
+    """Where the fringe of the coupler where ``plan``'s actuator acts sits, when both of that coupler's outputs
+    reach a tap with no gate between (:func:`.scan_paths.tapped_outputs`); None where they do not, or a tap is not
+    fully trusted, or a ratio it needs is unknown.
+
+    A lossless coupler's top output is S/2 + R cos(theta - alpha) (the 2x2 coupler of coupled-mode theory, Yariv
+    1973, with light in both inputs), so half the taps' difference, D = (P_top - P_bottom)/2 = R cos(phi), says
+    where its fringe sits now; R sin(phi) is not known. A phase turns psi, the relative phase of the mixing
+    coupler's inputs, whose top output is S/2 + (A - B)/2 cos(theta) - sqrt(A B) sin(psi) sin(theta): its fringe
+    in psi sits at D - (A - B)/2 cos(theta), off D by at most S |cos(theta)| / 2 = S |1 - 2 kappa| / 2 (the
+    mixer's calibrated kappa, give or take ``MIXER_KAPPA_TOLERANCE``). The taps' path losses may differ by
+    ``path_loss_db_max``; readings are known to k sigma of one frame's noise (drift over the scan included)."""
+    topology, kappas, names, monitors, trusted = (
+        around.topology,
+        around.kappas,
+        around.names,
+        around.monitors,
+        around.trusted,
+    )
+    rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
+    if plan.gate is None:
+        return None
+    found = tapped_outputs(topology, kappas, plan.gate, plan.attribute)
+    if found is None:
+        return None
+    effect, upper, lower = found
+    if upper not in trusted or lower not in trusted or upper not in judged or lower not in judged:
+        return None
+    ku, kl = names.index(upper), names.index(lower)
+    resp_u, resp_l = monitors[upper].responsivity_a_per_w, monitors[lower].responsivity_a_per_w
+    # powers in the upper tap's units (its responsivity and path): the lower tap's path passes rho times as much
+    p_u = max(float(rest_a[:, ku].mean()) - dark_a, 0.0) / resp_u
+    p_l = max(float(rest_a[:, kl].mean()) - dark_a, 0.0) / resp_l
+    rho_lo, rho_hi = 10.0 ** (-settings.path_loss_db_max / 10.0), 10.0 ** (settings.path_loss_db_max / 10.0)
+    ends = [(p_u - p_l / rho_lo) / 2.0, (p_u - p_l / rho_hi) / 2.0]
+    offset = 0.0 if ends[0] * ends[1] <= 0.0 else min(abs(e) for e in ends)
+    k = settings.k_sigma
+    offset -= (k * float(look_sigma[ku]) / resp_u + k * float(look_sigma[kl]) / (resp_l * rho_lo)) / 2.0
+    if plan.attribute == "kappa":
+        if kappas.get(plan.gate) is None:
+            return None
+        return TappedFringe(max(offset, 0.0), upper, lower, effect, (resp_u, resp_l * rho_lo))
+    mixer = kappas.get(effect)
+    if mixer is None:
+        return None
+    return TappedFringe(
+        max(offset, 0.0),
+        upper,
+        lower,
+        effect,
+        (resp_u, resp_l * rho_lo),
+        (p_u, p_l),
+        (k * float(look_sigma[ku]) / resp_u, k * float(look_sigma[kl]) / resp_l),
+        (rho_lo, rho_hi),
+        tuple(min(max(mixer + d, 0.0), 1.0) for d in (-MIXER_KAPPA_TOLERANCE, 0.0, MIXER_KAPPA_TOLERANCE)),
+    )
+
+
+def _tapped_angles(plan: ActuatorPlan, kappas: dict[str, float | None], values: list[float]) -> list[float]:
+    """Value steps of ``plan``'s actuator as turns of its fringe (rad): a phase's own; a coupler's coupled-mode
+    angle, kappa = sin^2(theta / 2), exactly (not to first order: second looks are large)."""
+    if plan.attribute != "kappa":
+        return list(values)
+    kappa0 = float(kappas.get(str(plan.gate)) or 0.0)
+    return [coupling_angle(kappa0 + value) - coupling_angle(kappa0) for value in values]
+
+
+def _value_for_angle(plan: ActuatorPlan, kappas: dict[str, float | None], angle: float) -> float:
+    """The value step that turns ``plan``'s fringe by ``angle`` down toward 0 V (up where a coupler has no room)."""
+    if plan.attribute != "kappa":
+        return -angle
+    kappa0 = float(kappas.get(str(plan.gate)) or 0.0)
+    theta = coupling_angle(kappa0)
+    target = theta - angle if theta >= angle else min(theta + angle, math.pi)
+    return math.sin(target / 2.0) ** 2 - kappa0
+
+
+def _tapped_sigmas(
+    fringe: TappedFringe,
+    plan: ActuatorPlan,
+    kappas: dict[str, float | None],
+    names: list[str],
+    steps: list[tuple[float, Any, Any]],
+) -> tuple[float, dict[str, float]]:
+    """The least a working actuator must have shown (sigmas) in one of its looks (value step, sigma and what its
+    neighbours' crosstalk could move, per monitor) at the taps of ``fringe``, and the evidence. Each tap is a look
+    of its own (the two change by equal and opposite amounts)."""
+    ku, kl = names.index(fringe.upper), names.index(fringe.lower)
+    angles = _tapped_angles(plan, kappas, [value for value, _, _ in steps])
+    looks = []
+    for angle, (_, sigma, crosstalk) in zip(angles, steps, strict=True):
+        for index, gain in ((ku, fringe.gains[0]), (kl, fringe.gains[1])):
+            looks.append((angle, float(crosstalk[index]) / gain, float(sigma[index]) / gain))
+    shown = fringe.least_sigmas(looks)
+    return shown, {"tapped_offset_w": fringe.offset_w, "tapped_sigmas": shown, "tapped_looks": float(len(steps))}
+
+
+@dataclass(frozen=True)
+class LookData:
+    """One suspect's looks for a judgement: value steps, and per look the change at each monitor (amps), its sigma
+    per monitor and the most its neighbours' crosstalk could move each monitor."""
+
+    values: list[float]
+    changes: list[Any]
+    sigmas: list[Any]
+    crosstalk: list[Any]
+
+
+def _around_sigmas(
+    around: Around, plan: ActuatorPlan, judged: list[str], looks: LookData
+) -> tuple[float, dict[str, float], str, str] | None:
+    """The least a working actuator must have shown (sigmas) at the readings of its coupler's outputs, from the
+    light its coupler's two inputs bring (read by taps, :func:`.scan_paths.input_readings`); None where that is not
+    read, or a reading is not fully trusted, or an output reading moved (then this says nothing).
+
+    With inputs A and B the coupler's fringe has R >= |A - B| / 2 whatever their phase (R^2 = ((A - B)/2)^2 + A B
+    sin^2(psi), coupled-mode algebra, Yariv 1973); a phase turning psi at a coupler of angle theta moves its output
+    by sqrt(A B) sin(theta) times a sine of psi. Each output's reading changes by what the output gains or loses
+    (a lossless gate keeps the sum of its outputs, its other input unchanged), less each gate's and path's loss
+    (``path_loss_db_max`` per gate) and what neighbours' crosstalk could add; the least over every operating
+    angle of the clearest look is :func:`.scan_attribution.least_sigmas`."""
+    topology, kappas, names, monitors, trusted = (
+        around.topology,
+        around.kappas,
+        around.names,
+        around.monitors,
+        around.trusted,
+    )
+    rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
+    if plan.gate is None:
+        return None
+    found = input_readings(topology, kappas, plan.gate, plan.attribute)
+    if found is None:
+        return None
+    outputs = [reading.taps for reading in found.outputs]
+    every = list(found.inputs) + [t for taps in outputs for t in taps]
+    if any(t not in trusted for t in every) or any(t not in judged for taps in outputs for t in taps):
+        return None
+    k = settings.k_sigma
+    loss = 10.0 ** (-settings.path_loss_db_max / 10.0)
+    lows = []
+    for tap in found.inputs:
+        i = names.index(tap)
+        resp = monitors[tap].responsivity_a_per_w
+        reading = (float(rest_a[:, i].mean()) - dark_a) / resp
+        lows.append(
+            (max(reading - k * float(look_sigma[i]) / resp, 0.0) * loss, reading + k * float(look_sigma[i]) / resp)
+        )
+    (a_lo, a_hi), (b_lo, b_hi) = lows
+    if plan.attribute == "kappa":
+        if kappas.get(plan.gate) is None:
+            return None
+        amplitude = max(a_lo - b_hi, b_lo - a_hi, 0.0) / 2.0
+    else:
+        mixer = kappas.get(found.effect)
+        if mixer is None:
+            return None
+        worst = min(max(abs(mixer - 0.5) + MIXER_KAPPA_TOLERANCE, 0.0), 0.5) + 0.5
+        amplitude = math.sqrt(a_lo * b_lo) * 2.0 * math.sqrt(worst * (1.0 - worst))
+    angles = _tapped_angles(plan, kappas, looks.values)
+    entries = []
+    for reading, taps in zip(found.outputs, outputs, strict=True):
+        scale = amplitude * 10.0 ** (-(1 + reading.gates_passed) * settings.path_loss_db_max / 10.0)
+        index = [names.index(t) for t in taps]
+        resp = [monitors[t].responsivity_a_per_w for t in taps]
+        for angle, change, sigma, crosstalk in zip(angles, looks.changes, looks.sigmas, looks.crosstalk, strict=True):
+            seen = sum(float(change[i]) / r for i, r in zip(index, resp, strict=True))
+            noise = sum(float(sigma[i]) / r for i, r in zip(index, resp, strict=True))
+            other = sum(float(crosstalk[i]) / r for i, r in zip(index, resp, strict=True))
+            if abs(seen) >= k * noise:
+                return None  # it moved this reading: not silent here
+            entries.append((angle, other / scale if scale > 0 else math.inf, noise / scale if scale > 0 else 1.0))
+    shown = 0.0 if amplitude <= 0.0 or not entries else least_sigmas(1.0, entries)
+    taps_text = ", ".join(every)
+    return shown, {"input_amplitude_w": amplitude, "input_bound_sigmas": shown}, taps_text, found.effect
+
+
+LOOK_MARGIN = 1.6  # a planned second look aims this far past what a no_response needs (its steps land on DAC codes)
+
+
+def _planned_look_angle(fringe: TappedFringe, names: list[str], look_sigma: Any, needed: float) -> float:
+    """The smallest turn (rad, from 0.3 to 1.5) whose second look - a half and a full step the same way - makes a
+    working actuator show ``needed`` sigma at ``fringe``'s taps; the largest where none does."""
+    ku, kl = names.index(fringe.upper), names.index(fringe.lower)
+    sigma = LOOK_SPREAD / max(fringe.gains[0] / float(look_sigma[ku]), fringe.gains[1] / float(look_sigma[kl]))
+    for angle in np.arange(0.3, 1.5001, 0.05):
+        if fringe.least_sigmas([(angle / 2.0, 0.0, sigma), (angle, 0.0, sigma)]) >= needed:
+            return float(angle)
+    return 1.5
+
+
 DETECTABLE = 2.0  # a no_response needs a working actuator to show at least this many detection limits, anywhere
 WEAK_LIGHT = 100.0  # expected light below this many dead-thresholds: too little to judge an actuator by
 
@@ -678,13 +1032,18 @@ def _dark(samples: Any, full_scale_a: float, noise_a: float, settings: ScanSetti
 
 
 def _blame_upstream(
-    topology: LatticeTopology, settings_of: dict[str, str], plans: dict[str, ActuatorPlan], verdicts: dict[str, Verdict]
+    topology: LatticeTopology,
+    settings_of: dict[str, str],
+    plans: dict[str, ActuatorPlan],
+    verdicts: dict[str, Verdict],
+    self_judged: set[str],
 ) -> None:
-    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed."""
+    """An actuator without response whose light passes a faulty one first cannot be judged: its light was changed.
+    Those in ``self_judged`` are exempt: what their judgement rests on was read where they act, faults or not."""
     faulty = [a for a, v in verdicts.items() if v.verdict in FAULTY and a in plans]
     for aid, verdict in list(verdicts.items()):
         plan = plans.get(aid)
-        if plan is None or plan.gate is None or verdict.verdict != "no_response":
+        if plan is None or plan.gate is None or verdict.verdict != "no_response" or aid in self_judged:
             continue
         culprits = [
             f

@@ -379,3 +379,120 @@ def unmixed(topology: LatticeTopology, settings: Mapping[str, str], gate: str, a
                 lit[t], lit[t + 1] = lit[t + 1], lit[t]
                 mixed[t], mixed[t + 1] = mixed[t + 1], mixed[t]
     return not (mixed[top] or mixed[top + 1])
+
+
+def clean_tap(topology: LatticeTopology, after: int, mode: int) -> str | None:
+    """The first tap on ``mode`` from column ``after`` on that light reaches with no gate touching the mode on the way
+    (a tap after column ``after`` itself, or after a later column where no gate acts on that mode before it): it
+    reads the power that mode carries after column ``after``, less path losses, whatever the rest of the lattice
+    does. None where a gate comes first."""
+    for column in range(after, topology.columns):
+        if column > after and topology.gate_at(column, mode) is not None:
+            return None
+        taps = topology.taps_at(column, mode)
+        if taps:
+            return taps[0]
+    return None
+
+
+def effect_coupler(topology: LatticeTopology, gate: str, attribute: str) -> tuple[str, int, int] | None:
+    """(gate, column, top mode) of the coupler where ``gate``'s ``attribute`` shows: its own coupler; for a phase,
+    the first later coupler where its arm meets light from another input, every coupler taken as splitting
+    whatever its calibrated ratio (one near bar or cross still leaks some light across), so no earlier coupler
+    can mix its light with other light. None where there is none."""
+    if gate not in topology.gates:
+        return None
+    column, top = topology.gates[gate]
+    if attribute == "kappa":
+        return gate, column, top
+    found = _mixer(topology, {g: 0.5 for g in topology.gates}, column, top)
+    if found is None:
+        return None
+    effect = topology.gate_at(found[0], found[1])
+    return None if effect is None else (effect, found[0], found[1])
+
+
+def tapped_outputs(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> tuple[str, str, str] | None:
+    """(gate, top tap, bottom tap) of the coupler where ``gate``'s ``attribute`` shows (its own coupler; for a
+    phase, the first later coupler where its arm meets light from another input) when both of that coupler's
+    outputs reach a tap with no gate between (:func:`clean_tap`); else None. The coupler is found by
+    :func:`effect_coupler`; its input from the phase's side then carries only light the phase shifted."""
+    spot = effect_coupler(topology, gate, attribute)
+    if spot is None:
+        return None
+    effect, column, top = spot
+    upper, lower = clean_tap(topology, column, top), clean_tap(topology, column, top + 1)
+    if upper is None or lower is None:
+        return None
+    return effect, upper, lower
+
+
+def input_tap(topology: LatticeTopology, column: int, mode: int) -> str | None:
+    """The tap that reads the light ``mode`` brings into column ``column``: the last tap on that mode before the
+    column with no gate touching the mode between (it reads that light, less path losses). None where a gate comes
+    between, or no tap reads it."""
+    for after in range(column - 1, -2, -1):
+        taps = topology.taps_at(after, mode)
+        if taps:
+            return taps[0]
+        if after >= 0 and topology.gate_at(after, mode) is not None:
+            return None
+    return None
+
+
+@dataclass(frozen=True)
+class OutputReading:
+    """How one output of a coupler is read: the taps whose readings add up to its power plus light that does not
+    change with the coupler (one tap with no gate between; or both taps of the next gate it enters, whose other
+    input comes from elsewhere, a lossless gate keeping the sum of its outputs), and the gates passed on the way."""
+
+    taps: tuple[str, ...]
+    gates_passed: int
+
+
+def output_reading(topology: LatticeTopology, column: int, mode: int) -> OutputReading | None:
+    """How the power on ``mode`` after column ``column`` is read (:class:`OutputReading`), or None."""
+    direct = clean_tap(topology, column, mode)
+    if direct is not None:
+        return OutputReading((direct,), 0)
+    for later in range(column + 1, topology.columns):
+        gate = topology.gate_at(later, mode)
+        if gate is None:
+            continue
+        top = topology.gates[gate][1]
+        upper, lower = clean_tap(topology, later, top), clean_tap(topology, later, top + 1)
+        if upper is None or lower is None:
+            return None
+        return OutputReading((upper, lower), 1)
+    return None
+
+
+@dataclass(frozen=True)
+class InputReadings:
+    """Where an actuator acts, read around its coupler: the taps reading the light of its two inputs (upper,
+    lower) and the readings of its two outputs."""
+
+    effect: str
+    inputs: tuple[str, str]
+    outputs: tuple[OutputReading, OutputReading]
+
+
+def input_readings(
+    topology: LatticeTopology, kappas: Mapping[str, float | None], gate: str, attribute: str
+) -> InputReadings | None:
+    """The coupler where ``gate``'s ``attribute`` shows (as :func:`tapped_outputs`), when taps read the light of both
+    its inputs (:func:`input_tap`) and both its outputs are read (:func:`output_reading`); else None. For a phase
+    the taps read whatever enters it, however the light got there."""
+    spot = effect_coupler(topology, gate, attribute)
+    if spot is None:
+        return None
+    effect, column, top = spot
+    upper_in, lower_in = input_tap(topology, column, top), input_tap(topology, column, top + 1)
+    upper_out, lower_out = output_reading(topology, column, top), output_reading(topology, column, top + 1)
+    if upper_in is None or lower_in is None or upper_out is None or lower_out is None:
+        return None
+    if set(upper_out.taps) & set(lower_out.taps):  # both outputs enter one gate: its sum would not change
+        return None
+    return InputReadings(effect, (upper_in, lower_in), (upper_out, lower_out))

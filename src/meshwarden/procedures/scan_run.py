@@ -39,8 +39,9 @@ from typing import Any
 from meshwarden.controller import Controller
 from meshwarden.errors import MeshwardenError, RefusedError, StoppedRefused, UnknownTargetRefused
 from meshwarden.mapping import code_to_volts, volts_to_code
-from meshwarden.procedures.designs import PerturbationDesign, drift_robust, s_matrix_design
+from meshwarden.procedures.designs import PerturbationDesign, scan_design
 from meshwarden.procedures.lattice import LatticeTopology
+from meshwarden.procedures.scan_attribution import coupling_angle
 from meshwarden.procedures.scan_judge import (
     ActuatorPlan,
     ScanSettings,
@@ -91,8 +92,7 @@ DRIFT_TERMS = 2  # Legendre drift terms fitted with the design where the frames 
 
 def _design(actuators: int) -> PerturbationDesign:
     """The S-matrix design in drift-robust order, with as many drift terms as its spare frames allow (up to 2)."""
-    plain = s_matrix_design(actuators)
-    return drift_robust(plain, min(DRIFT_TERMS, plain.frames - 1 - actuators))
+    return scan_design(actuators, DRIFT_TERMS)
 
 
 def _choose_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> None:
@@ -266,16 +266,14 @@ async def run_scan(
                     footprint[coupler] = footprint.get(coupler, set()) | monitors_of | _footprint(plans, near, coupler)
                 for group in _groups(footprint):
                     _check(control)
-                    big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings) for a in group}
+                    angles = first["look_angles"]
+                    big = {a: plans[a].volts0 + _big_step(controller, plans[a], settings, angles.get(a)) for a in group}
                     big = {a: v for a, v in big.items() if v != plans[a].volts0}
                     if not big:
                         continue
                     # rest, half way, all the way, rest again: two sizes of step leave a working actuator no operating
                     # point where both show nothing; the light drifts meanwhile, and a straight drift cancels
-                    halfway = {
-                        a: _volts(controller, a, _code(controller, a, (v + plans[a].volts0) / 2))
-                        for a, v in big.items()
-                    }
+                    halfway = {a: _middle_volts(controller, plans[a], v, settings) for a, v in big.items()}
                     before = await frame({}, monitors=True, sense=False) or {}
                     middle = await frame(halfway, monitors=True) or {}
                     after = await frame(big, monitors=True) or {}
@@ -296,13 +294,17 @@ async def run_scan(
         except StoppedRefused as exc:
             stopped = exc.message
         finally:
-            if not claim.ended and not claim.stopping:  # disarm and estop take the outputs over
+            handed_over = claim.ended or claim.stopping  # disarm and estop take the outputs over
+            if not handed_over:
                 await claim.move(home, volts=True, journal=False)
             final_codes = {a: int(controller.describe(a)["code"]) for a in tested}
             tick()
-    if stopped is not None:
-        raise StoppedRefused(f"scan stopped: {stopped}; outputs returned to where it found them")
     restored = all(final_codes[a] == plans[a].code0 for a in tested)
+    if stopped is not None:
+        raise StoppedRefused(
+            f"scan stopped: {stopped}; {_where_outputs_went(handed_over, restored, claim.stop_reason)}",
+            outputs_returned=restored and not handed_over,
+        )
     earlier = (reference or {}).get("actuators", {}) if same_point else {}
     report = judge_scan(
         controller,
@@ -334,12 +336,95 @@ async def run_scan(
     return report
 
 
-def _big_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings) -> float:
-    """The second look's step (volts): ``second_look_factor`` times the scan's aim, under the same guards."""
+def _middle_volts(controller: Controller, plan: ActuatorPlan, big_volts: float, settings: ScanSettings) -> float:
+    """The middle frame of a second look: the big step mirrored to the other side of the operating point where
+    there is room (no higher than the test voltage or the hard limit, no lower than 0 V), else half the big step.
+
+    A turn by +s and by -s of a fringe D + Q-part changes it by -(D (1 - cos s) +- Q sin s): their sum does not
+    depend on the unknown part, so at least one shows D (1 - cos s), about six times what a half and a full step
+    in one direction guarantee (:func:`.scan_attribution.offset_fringe_sigmas`)."""
+    act = controller.actuators[plan.actuator]
+    mirrored = 2.0 * plan.volts0 - big_volts
+    ceiling = min(settings.test_volts, act.limit.hard_limit_volts)
+    code = _code(controller, plan.actuator, mirrored)
+    if mirrored >= 0.0 and code <= act.limit.hard_limit_code and code != plan.code0:
+        volts = _volts(controller, plan.actuator, code)
+        if volts <= plan.volts0 or volts <= ceiling:
+            try:
+                act.map.value_at(volts)
+            except MeshwardenError:
+                pass
+            else:
+                return volts
+    # half the big step's change of value (not of volts: the value goes about as V^2), found by bisection
+    try:
+        value0 = act.map.value_at(plan.volts0)
+        half = (act.map.value_at(big_volts) - value0) / 2.0
+        low, high = (plan.volts0, big_volts) if big_volts > plan.volts0 else (big_volts, plan.volts0)
+        for _ in range(40):  # the value rises with the volts: below the half-way value, the middle moves up
+            middle = (low + high) / 2.0
+            low, high = (middle, high) if act.map.value_at(middle) - value0 < half else (low, middle)
+        target = (low + high) / 2.0
+    except MeshwardenError:
+        target = (big_volts + plan.volts0) / 2.0
+    return _volts(controller, plan.actuator, _code(controller, plan.actuator, target))
+
+
+def _where_outputs_went(handed_over: bool, restored: bool, reason: str | None) -> str:
+    """What became of the outputs a stopped scan had moved: returned by the scan, or taken over by what ended its
+    claim (a disarm ramps every output to zero, an emergency stop zeroes them at once)."""
+    if handed_over:
+        return (
+            f"the {reason or 'end of its claim'} took the outputs over, so the scan did not return them to where it "
+            "found them (a disarm ramps every output to zero, an emergency stop zeroes them)"
+        )
+    if restored:
+        return "outputs returned to where it found them"
+    return "it moved the outputs back, but some do not hold the codes it found them at"
+
+
+def _big_step(controller: Controller, plan: ActuatorPlan, settings: ScanSettings, angle: float | None = None) -> float:
+    """The second look's step (volts): ``second_look_factor`` times the scan's aim, under the same guards; or, where
+    the judgement planned a turn of the actuator's fringe (``angle``, rad: a phase's own, a coupler's coupled-mode
+    angle), the step that turns it that far, up to ``look_max_step_volts``."""
     factor = settings.second_look_factor
     bigger = dataclasses.replace(
         settings, kappa_step=factor * settings.kappa_step, phase_step_rad=factor * settings.phase_step_rad
     )
+    if angle is not None:
+        wanted = angle
+        if plan.attribute == "kappa":
+            gate = controller.gates.get(plan.gate or "")
+            kappa0 = calibrated_kappas(controller).get(plan.gate or "") if gate is not None else None
+            if kappa0 is None:
+                wanted = 0.0
+            else:
+                theta = coupling_angle(kappa0)
+                # down the fringe (toward 0 V) unless it has no room there
+                lower = max(theta - angle, 0.0)
+                wanted = abs(kappa0 - math.sin(lower / 2.0) ** 2) if theta - angle >= 0.0 else 0.0
+                if wanted == 0.0:
+                    wanted = abs(math.sin(min(theta + angle, math.pi) / 2.0) ** 2 - kappa0)
+        aim = max(wanted, bigger.kappa_step if plan.attribute == "kappa" else bigger.phase_step_rad)
+        best = 0.0
+        for _ in range(4):  # the step is sized from the slope at the operating point: correct it by what it did
+            planned = dataclasses.replace(
+                settings,
+                kappa_step=aim,
+                phase_step_rad=aim,
+                max_step_volts=max(settings.look_max_step_volts, settings.max_step_volts),
+            )
+            trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
+            _choose_step(controller, trial, planned)
+            if trial.step_volts == 0.0 or trial.reason:
+                break
+            best = trial.step_volts
+            done = abs(trial.value_step)
+            if done >= 0.95 * wanted or done <= 0.0:
+                break
+            aim *= min(wanted / done, 4.0)
+        if best != 0.0:
+            return best
     trial = ActuatorPlan(plan.actuator, plan.gate, plan.attribute, plan.code0, plan.volts0)
     _choose_step(controller, trial, bigger)
     return trial.step_volts

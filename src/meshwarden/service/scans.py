@@ -15,6 +15,7 @@ client's lease), or while another scan runs; the next one is due a period later.
 from __future__ import annotations
 
 import asyncio
+import dataclasses
 import datetime
 import json
 import os
@@ -38,18 +39,9 @@ OK = "ok"
 
 
 def settings_from_config(controller: Controller) -> ScanSettings:
-    """The scan settings of the ``scans:`` section."""
+    """The scan settings of the ``scans:`` section (every setting of a scan is configurable there)."""
     c = controller.config.scans
-    return ScanSettings(
-        test_volts=c.test_volts,
-        max_step_volts=c.max_step_volts,
-        kappa_step=c.kappa_step,
-        phase_step_rad=c.phase_step_rad,
-        rest_frames=c.rest_frames,
-        optical_noise_rel=c.optical_noise_rel,
-        sense_noise_volts=c.sense_noise_volts,
-        k_sigma=c.k_sigma,
-    )
+    return ScanSettings(**{f.name: getattr(c, f.name) for f in dataclasses.fields(ScanSettings)})
 
 
 def topology_from_config(controller: Controller) -> LatticeTopology | None:
