@@ -52,9 +52,14 @@ async def _custom(
     faults: list[Fault] | None,
     point: dict[str, float] | None = None,
     within_gate_crosstalk: float = 0.0,
+    measured_tables: bool = False,
     **kwargs: Any,
 ) -> tuple[dict[str, Any], list[str]]:
     path, rack = write_scan_bench(tmp_path)
+    if measured_tables:  # the bench has no fabrication spread: its design tables are exactly its chip's
+        for table in (tmp_path / "cal").glob("*.yaml"):
+            text = table.read_text(encoding="utf-8")
+            table.write_text(text.replace("origin: design-nominal", "origin: measured"), encoding="utf-8")
     if within_gate_crosstalk:  # the simulated chip's crosstalk, unknown to the daemon
         text = path.read_text(encoding="utf-8")
         path.write_text(text.replace("within_gate_fraction: 0.0", f"within_gate_fraction: {within_gate_crosstalk}"))

@@ -203,15 +203,27 @@ def test_a_stuck_coupler_with_tapped_outputs_is_found_from_its_taps(tmp_path: Pa
     """On the bench, a stuck recombining coupler (both outputs tapped) is no_response on the evidence of its own
     taps - a working one would have shown at least twice k sigma in one look - within rules 1-3; the same coupler
     working is ok."""
-    report, issues = asyncio.run(_custom(tmp_path / "stuck", [Fault("stuck", "b1c")], topology=bench_topology()))
+    stuck = [Fault("stuck", "b1c")]
+    report, issues = asyncio.run(_custom(tmp_path / "stuck", stuck, topology=bench_topology(), measured_tables=True))
     assert issues == []
     verdict = report["actuators"]["b1c"]
     assert verdict["verdict"] == "no_response", verdict
     assert "the taps of both outputs" in verdict["reason"]
     assert verdict["evidence"]["tapped_sigmas"] >= 10.0
-    healthy, issues = asyncio.run(_custom(tmp_path / "healthy", [], topology=bench_topology()))
+    healthy, issues = asyncio.run(_custom(tmp_path / "healthy", [], topology=bench_topology(), measured_tables=True))
     assert issues == []
     assert healthy["actuators"]["b1c"]["verdict"] == "ok"
+
+
+def test_the_taps_judge_a_silent_actuator_only_through_tables_measured_on_the_chip(tmp_path: Path) -> None:
+    """The same stuck coupler with the design-nominal tables in force is not judged from its taps: a design table
+    may be far off a real chip (on the demo chip up to 0.5 in kappa), and that bound needs the coupling and the
+    step as they are. (Here its light has not interfered upstream, so the plain rule still finds it; never ok.)"""
+    report, issues = asyncio.run(_custom(tmp_path, [Fault("stuck", "b1c")], topology=bench_topology()))
+    assert issues == []
+    verdict = report["actuators"]["b1c"]
+    assert "tapped_sigmas" not in verdict["evidence"] and "the taps of both outputs" not in verdict["reason"]
+    assert verdict["verdict"] != "ok", verdict
 
 
 def test_mixer_phase_bound_holds_on_real_couplers_and_vanishes_for_one_input() -> None:

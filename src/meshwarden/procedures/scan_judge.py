@@ -297,8 +297,23 @@ def judge_scan(
     trusted = {m for m, v in monitor_out.items() if v.verdict == "ok" and not v.reason}  # judged, and fully
 
     # actuators
+    # The judgements from the readings around a coupler need the couplings and the value steps as they really
+    # are: only tables measured on this chip are trusted for them (a design-nominal table may be 0.5 off).
+    measured = frozenset(a for a, act in controller.actuators.items() if act.calibration_origin == "measured")
+    measured_kappas = {g: (k if controller.gates[g].coupler in measured else None) for g, k in kappas.items()}
     around_us = (
-        Around(topology, kappas, names, monitors, trusted, rest_a, float(dark_ref.mean()), look_sigma, settings)
+        Around(
+            topology,
+            measured_kappas,
+            names,
+            monitors,
+            trusted,
+            rest_a,
+            float(dark_ref.mean()),
+            look_sigma,
+            settings,
+            measured,
+        )
         if topology is not None
         else None
     )
@@ -771,6 +786,7 @@ class Around:
     dark_a: float
     look_sigma: Any
     settings: ScanSettings
+    measured: frozenset[str] = frozenset()  # actuators whose table was measured on this chip
 
 
 def _tapped_fringe(around: Around, plan: ActuatorPlan, judged: list[str]) -> TappedFringe | None:
@@ -793,7 +809,7 @@ def _tapped_fringe(around: Around, plan: ActuatorPlan, judged: list[str]) -> Tap
         around.trusted,
     )
     rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
-    if plan.gate is None:
+    if plan.gate is None or plan.actuator not in around.measured:
         return None
     found = tapped_outputs(topology, kappas, plan.gate, plan.attribute)
     if found is None:
@@ -902,7 +918,7 @@ def _around_sigmas(
         around.trusted,
     )
     rest_a, dark_a, look_sigma, settings = around.rest_a, around.dark_a, around.look_sigma, around.settings
-    if plan.gate is None:
+    if plan.gate is None or plan.actuator not in around.measured:
         return None
     found = input_readings(topology, kappas, plan.gate, plan.attribute)
     if found is None:
