@@ -19,7 +19,7 @@ from meshwarden.writelog import check_board_log
 from tests.conftest import REPO, route_light_script
 from tests.control.conftest import run
 
-SEED = 4242  # not the demo's: the procedure was not tuned to this chip
+SEED = 5150  # neither the demo's nor one the procedure was worked out on (4242, 777 were)
 RACK = "caldemo"
 
 
