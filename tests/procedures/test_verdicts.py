@@ -139,6 +139,22 @@ def test_monitor_rules(changes: dict[str, object], verdict: str) -> None:
     assert result.evidence["full_scale_a"] == 1e-6
 
 
+def test_noise_that_reaches_the_top_at_times_is_noisy_and_a_pinned_reading_saturated() -> None:
+    """A detector whose noise (0.4 uA rms on 0.2 uA of light, a 1 uA range) carries some readings to the top of
+    its range, clipped there as an ADC does, is noisy, not saturated; one pinned at the top (most readings there) is
+    saturated even when noisy. Saturation pins the output at the rail, noise only visits it (common practice)."""
+    rng = np.random.default_rng(7)
+    visits = {
+        k: np.clip(level + rng.normal(0, 4e-7, 64), 0.0, 1e-6) for k, level in (("dark_a", 5e-9), ("lit_a", 2e-7))
+    }
+    assert max(v.max() for v in visits.values()) >= 0.98e-6  # the top is reached
+    assert monitor_verdict(**_monitor(**visits)).verdict == "noisy"  # type: ignore[arg-type]
+    assert dark_monitor_verdict(dark_a=visits["dark_a"], full_scale_a=1e-6, dark_noise_a=1e-9).verdict == "noisy"
+    pinned = {k: np.clip(2e-6 + rng.normal(0, 4e-7, 64), 0.0, 1e-6) for k in ("dark_a", "lit_a")}
+    assert monitor_verdict(**_monitor(**pinned)).verdict == "saturated"  # type: ignore[arg-type]
+    assert dark_monitor_verdict(dark_a=pinned["dark_a"], full_scale_a=1e-6, dark_noise_a=1e-9).verdict == "saturated"
+
+
 def test_constant_readings_without_changing_neighbours_are_not_called_frozen() -> None:
     """Frozen needs evidence that the light around the monitor changed; without it a flat monitor is dead."""
     flat = {"dark_a": np.full(64, 7e-8), "lit_a": np.full(64, 7e-8), "frame_levels_a": np.full(16, 7e-8)}

@@ -198,13 +198,21 @@ def monitor_verdict(
         "lit_std_limit_a": lit_limit,
         "spread_a": spread,
     }
+    noisy = evidence["dark_std_a"] > dark_limit or evidence["lit_std_a"] > lit_limit
     if evidence["max_reading_a"] >= saturation_fraction * top:
+        if noisy and float(np.median(everything)) < saturation_fraction * top:
+            # not pinned at the top: its own noise carries some readings there
+            return Verdict(
+                "noisy",
+                "noise above the detector's expected shot and thermal noise, reaching the top of its range at times",
+                evidence,
+            )
         return Verdict("saturated", f"reads {evidence['max_reading_a']:.4g} A of a {top:.4g} A range", evidence)
     if response < positive("k_sigma", k_sigma) * noise_floor:
         return Verdict("dead", f"known light moves it by {response:.3g} A (need {k_sigma * noise_floor:.3g})", evidence)
     if neighbours_changed and spread <= non_negative("adc_lsb_a", adc_lsb_a):
         return Verdict("frozen", "its readings do not change while its neighbours' light does", evidence)
-    if evidence["dark_std_a"] > dark_limit or evidence["lit_std_a"] > lit_limit:
+    if noisy:
         return Verdict("noisy", "noise above the detector's expected shot and thermal noise", evidence)
     return Verdict("ok", "", evidence)
 
@@ -234,6 +242,12 @@ def dark_monitor_verdict(
         "dark_std_limit_a": limit,
     }
     if evidence["max_reading_a"] >= saturation_fraction * top:
+        if evidence["dark_std_a"] > limit and float(np.median(dark)) < saturation_fraction * top:
+            return Verdict(
+                "noisy",
+                "noise above the detector's expected dark noise, reaching the top of its range at times",
+                evidence,
+            )
         return Verdict("saturated", f"reads {evidence['max_reading_a']:.4g} A of a {top:.4g} A range", evidence)
     if evidence["dark_std_a"] > limit:
         return Verdict("noisy", "noise above the detector's expected dark noise", evidence)
