@@ -264,10 +264,13 @@ class Controller:
             (self._state.record(a, 0, None, now) for a in zeroed), None, client, lazy=True
         )
         self._emit("estop", client=client, reason=reason, boards=outcome)
-        try:
-            await asyncio.wait_for(asyncio.shield(marked), ESTOP_MARK_WAIT_S)
-        except Exception as exc:  # a slow or failing disk: the boards are zero; say so, never raise
-            detail = "not yet on disk" if isinstance(exc, TimeoutError) else str(exc)
+        # asyncio.wait, not wait_for: it never cancels the marker, and a cancellation of this task
+        # arriving as its time runs out is not lost (Python 3.11's wait_for can swallow one, which
+        # left an interlock watch that was being stopped running for ever).
+        done, _ = await asyncio.wait({marked}, timeout=ESTOP_MARK_WAIT_S)
+        failure = None if not done else marked.exception()
+        if not done or failure is not None:  # a slow or failing disk: the boards are zero; say so, never raise
+            detail = "not yet on disk" if not done else str(failure)
             asyncio.get_running_loop().call_soon(
                 functools.partial(self.log.error, "emergency stop marker not journaled", error=detail)
             )

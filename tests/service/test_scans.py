@@ -8,6 +8,7 @@ import datetime
 import json
 import subprocess
 import sys
+import time
 from collections.abc import Iterator
 from pathlib import Path
 from typing import Any
@@ -64,9 +65,14 @@ def test_scan_through_the_client_keeps_reports_and_journals_them(daemon: Daemon,
     assert [h["id"] for h in history] == [second["scan"]["id"], report["id"]]
     assert history[1]["counts"]["actuators"]["ok"] >= 10 and history[1]["findings"] == 0
     assert sorted(p.name for p in (tmp_path / "scans").iterdir()) == sorted(f"{h['id']}.json" for h in history)
-    with Journal(tmp_path / "journal.sqlite") as journal:
-        events = journal.events(kind="scan")
-    assert [e.detail["scan"] for e in events] == [report["id"], second["scan"]["id"]]
+    wanted, deadline = [report["id"], second["scan"]["id"]], time.monotonic() + 10.0
+    while True:  # events are journaled by the daemon's writer thread a moment after its reply
+        with Journal(tmp_path / "journal.sqlite") as journal:
+            seen = [e.detail["scan"] for e in journal.events(kind="scan")]
+        if seen == wanted or time.monotonic() > deadline:
+            break
+        time.sleep(0.05)
+    assert seen == wanted
 
 
 def test_scan_and_scans_on_the_command_line(daemon: Daemon, tmp_path: Path) -> None:
