@@ -23,8 +23,8 @@ import asyncio
 import functools
 import math
 import time
-from collections.abc import AsyncIterator, Callable
-from contextlib import asynccontextmanager
+from collections.abc import AsyncIterator, Callable, Iterator
+from contextlib import asynccontextmanager, contextmanager
 from typing import Any
 
 from meshwarden.calibration import CalibrationTable, load_calibration
@@ -369,10 +369,7 @@ class Controller:
             act = self.actuators[aid]
             meaning = self._meaning(aid, volts)
             reached = math.inf if meaning is None else meaning
-            miss = reached - value
-            if act.config.kind == "phase" and math.isfinite(miss):
-                miss = (miss + math.pi) % (2 * math.pi) - math.pi
-            if not abs(miss) <= REACH_TOLERANCE:
+            if not abs(self._miss(aid, reached, value)) <= REACH_TOLERANCE:
                 by = ", ".join(sorted(self._crosstalk.shares.get(aid, {})))
                 raise UnreachableRefused(
                     f"{aid}: {value:g} cannot be reached while its neighbours ({by}) are driven as they are: "
@@ -459,12 +456,6 @@ class Controller:
         journal: bool = True,
     ) -> dict[str, dict[str, Any]]:
         before = self._state.current_codes(list(prepared))
-        ends = {a: code for a, (code, _) in prepared.items()}
-        if self._crosstalk:
-            # Again, with nothing awaited until this move is listed: a neighbour's move checked
-            # while this one waited for its claim did not know where this one ends, nor the reverse.
-            self._check_crosstalk_limits(prepared)
-        self._ramps.append(ends)
 
         async def record(plan: RampPlan) -> None:
             if journal:
@@ -472,25 +463,40 @@ class Controller:
                 rows = [self._state.record(a, code, value, now) for a, (code, value) in prepared.items()]
                 await self._durable(rows, request, client)
 
+        with self._under_way(prepared) as ends:
+            try:
+                await self._motion.run(
+                    claim,
+                    ends,
+                    allow_disarmed=not self.armed,
+                    client=client,
+                    progress=progress,
+                    before_first_write=record,
+                )
+            finally:
+                after = self._state.current_codes(list(prepared))
+                for aid, (code, value) in prepared.items():
+                    if after[aid] == code:
+                        self.actuators[aid].value = self._settled(aid, value)
+                    elif after[aid] != before[aid]:
+                        self.actuators[aid].value = None
+                moved = frozenset(a for a in prepared if after[a] != before[a])
+                self._refresh_neighbours(moved, frozenset(prepared))
+        return {aid: self.describe(aid) for aid in prepared}
+
+    @contextmanager
+    def _under_way(self, prepared: Prepared) -> Iterator[dict[str, int]]:
+        """List where a move ends while it runs, after checking rule 4 with crosstalk once more; nothing
+        is awaited between the two, so a neighbour's move checked while this one waited for its claim
+        (not knowing where this one ends, nor this one where it does) cannot also pass. Yields the codes."""
+        if self._crosstalk:
+            self._check_crosstalk_limits(prepared)
+        ends = {a: code for a, (code, _) in prepared.items()}
+        self._ramps.append(ends)
         try:
-            await self._motion.run(
-                claim,
-                {a: c for a, (c, _) in prepared.items()},
-                allow_disarmed=not self.armed,
-                client=client,
-                progress=progress,
-                before_first_write=record,
-            )
+            yield ends
         finally:
             self._ramps.remove(ends)
-            after = self._state.current_codes(list(prepared))
-            for aid, (code, value) in prepared.items():
-                if after[aid] == code:
-                    self.actuators[aid].value = self._settled(aid, value)
-                elif after[aid] != before[aid]:
-                    self.actuators[aid].value = None
-            self._refresh_neighbours(frozenset(a for a in prepared if after[a] != before[a]), frozenset(prepared))
-        return {aid: self.describe(aid) for aid in prepared}
 
     def _refresh_neighbours(self, moved: frozenset[str], requested: frozenset[str]) -> None:
         """What the actuators a move's crosstalk acts on (and that it did not set) mean now - rule
@@ -501,22 +507,29 @@ class Controller:
             act = self.actuators[aid]
             if act.value is None:
                 continue
-            act.value = self._meaning(aid, self._present_volts([aid, *self._crosstalk.shares.get(aid, {})]))
+            act.value = self._value_now(aid)
 
     def _settled(self, aid: str, asked: float | None) -> float | None:
         """The value of an actuator that reached its target code: the one asked, unless its
         neighbours' crosstalk makes the drive mean another (a neighbour another request moved
         meanwhile, or a request in volts, whose value is its own table's at its own volts)."""
-        by = self._crosstalk.shares.get(aid, {})
-        if not by:
+        if not self._crosstalk.shares.get(aid):
             return asked
-        meaning = self._meaning(aid, self._present_volts([aid, *by]))
+        meaning = self._value_now(aid)
         if asked is None or meaning is None:
             return meaning
-        miss = meaning - asked
-        if self.actuators[aid].config.kind == "phase":
+        return asked if abs(self._miss(aid, meaning, asked)) <= REACH_TOLERANCE else meaning
+
+    def _value_now(self, aid: str) -> float | None:
+        """What ``aid`` means at the volts it and its neighbours hold now."""
+        return self._meaning(aid, self._present_volts([aid, *self._crosstalk.shares.get(aid, {})]))
+
+    def _miss(self, aid: str, reached: float, wanted: float) -> float:
+        """How far ``reached`` is from ``wanted`` (a phase's the short way round the circle)."""
+        miss = reached - wanted
+        if self.actuators[aid].config.kind == "phase" and math.isfinite(miss):
             miss = (miss + math.pi) % (2 * math.pi) - math.pi
-        return asked if abs(miss) <= REACH_TOLERANCE else meaning
+        return miss
 
     def _meaning(self, aid: str, volts: dict[str, float]) -> float | None:
         """The logical value ``aid`` has with every actuator at ``volts``, its neighbours' crosstalk
@@ -586,22 +599,17 @@ class Controller:
         targets = {a: r for a, r in journaled.items() if a in self.actuators and self.actuators[a].board.id in waiting}
         claim = await self.claims.acquire(client or "local", targets, held=False, mover=self)
         try:
-            ends = {a: r.code for a, r in targets.items()}
-            if self._crosstalk:
-                # Rule 4 as for any move: the journaled targets together with what the neighbours
-                # hold now (or another move will end at) must not drive an actuator past its limit.
-                self._check_crosstalk_limits({a: (r.code, r.value) for a, r in targets.items()})
-            self._ramps.append(ends)  # a request on a neighbour meanwhile counts where this ends
-            for b in waiting:  # the restore itself is what these boards wait for
-                self.boards[b].needs_restore = False
-            try:
-                await self._motion.run(claim, ends, allow_disarmed=False)
-            except BaseException:
-                for b in waiting:
-                    self.boards[b].needs_restore = True
-                raise
-            finally:
-                self._ramps.remove(ends)
+            # Rule 4 as for any move: the journaled targets with what the neighbours hold now (or
+            # another move will end at) must not drive an actuator past its limit.
+            with self._under_way({a: (r.code, r.value) for a, r in targets.items()}) as ends:
+                for b in waiting:  # the restore itself is what these boards wait for
+                    self.boards[b].needs_restore = False
+                try:
+                    await self._motion.run(claim, ends, allow_disarmed=False)
+                except BaseException:
+                    for b in waiting:
+                        self.boards[b].needs_restore = True
+                    raise
             for aid, record in targets.items():
                 self.actuators[aid].value = record.value
         finally:
@@ -651,10 +659,9 @@ class Controller:
         for aid, previous in before.items():
             if previous is None:
                 continue
-            volts = self._present_volts([aid, *crosstalk.shares.get(aid, {})])
-            meaning = self._meaning(aid, volts)
+            meaning = self._value_now(aid)
             if meaning is None or abs(meaning - previous) > 1e-6:
-                changed[aid] = {"volts": volts[aid], "before": previous, "now": meaning}
+                changed[aid] = {"volts": self._present_volts([aid])[aid], "before": previous, "now": meaning}
             self.actuators[aid].value = meaning
         return changed
 
